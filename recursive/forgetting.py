@@ -1,0 +1,301 @@
+"""Forgetting policies: how the posterior loses confidence as time passes.
+
+A policy acts on the posterior in square-root information form (see
+:class:`recursive.Posterior`): an upper-triangular ``R`` with ``R^T R = Lambda`` (the
+precision in units of the noise variance), an information vector ``z`` with
+``R^T z = eta = Lambda m``, and the noise statistics ``nu`` (degrees of freedom) and ``ss``
+(weighted residual sum of squares). Each policy offers two operations:
+
+``forget(state, prior, dt)``
+    the exact time update applied before a learning step;
+``widen(state, prior, phit, u, mean, dt, cache)``
+    the predictive mean and leverage ``phi^T V phi`` after a time ``dt`` for a batch of
+    rows, each with its own ``dt``, without touching the state. This is vectorized so that
+    predictions between lab results cost O(n^2) per row.
+
+Adding a policy means writing these two methods, ``to_dict`` and a branch in
+:func:`forgetting_from_dict`; the tests that compare ``widen`` with ``forget`` followed by
+a plain prediction then apply to it too.
+"""
+
+from __future__ import annotations
+
+import math
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+
+import numpy as np
+
+from recursive._linalg import qr_r, solve_upper_t
+
+
+@dataclass(frozen=True)
+class Prior:
+    """The prior in the scaled square-root information form the policies work in.
+
+    Attributes
+    ----------
+    r0 : ndarray, shape (n,)
+        Square root of the prior precision of each weight, in units of the noise
+        variance (zero for a flat prior on that weight).
+    z0 : ndarray, shape (n,)
+        ``r0 * m0``, the prior information vector in square-root form.
+    nu0, ss0 : float
+        Prior degrees of freedom and sum of squares of the noise statistics.
+    ref_var : float
+        The noise variance that the scaled units refer to: the known noise variance, or
+        the prior guess ``sigma0**2`` when the noise is learned.
+    """
+
+    r0: np.ndarray
+    z0: np.ndarray
+    nu0: float
+    ss0: float
+    ref_var: float
+
+
+def _check_half_life(half_life: float) -> float:
+    try:
+        h = float(half_life)
+    except (TypeError, ValueError):
+        raise ValueError(f"half_life must be a positive number, got {half_life!r}") from None
+    if not h > 0.0 or math.isnan(h):
+        raise ValueError(f"half_life must be a positive number, got {half_life!r}")
+    return h
+
+
+def _delta(half_life: float, dt):
+    """``2**(-dt / half_life)``, scalar or array."""
+    return np.exp2(-np.asarray(dt, dtype=float) / half_life)
+
+
+class Forgetting(ABC):
+    """Base class of the forgetting policies."""
+
+    kind = "none"
+
+    @abstractmethod
+    def forget(self, R, z, nu, ss, prior: Prior, dt: float):
+        """Return ``(R, z, nu, ss)`` after a time ``dt``."""
+
+    @abstractmethod
+    def widen(self, R, z, nu, ss, prior: Prior, phit, u, mean, dt, cache: dict):
+        """Return per-row ``(mean, leverage, nu, ss)`` after times ``dt`` (arrays)."""
+
+    @abstractmethod
+    def to_dict(self) -> dict:
+        """Plain-data description, inverse of :func:`forgetting_from_dict`."""
+
+
+@dataclass(frozen=True)
+class Exponential(Forgetting):
+    """Exponential forgetting: discount all information by ``delta = 2**(-dt/half_life)``.
+
+    Parameters
+    ----------
+    half_life : float
+        Time (or number of samples) after which old information counts half.
+
+    Notes
+    -----
+    The time update is ``Lambda <- delta Lambda``, ``eta <- delta eta``,
+    ``nu <- delta nu``, ``ss <- delta ss``: the mean and the noise estimate are unchanged,
+    the covariance grows by ``1/delta``. The prior is discounted too, so directions the
+    data do not excite lose all information and the covariance grows without bound
+    ("windup"). This is the classical baseline; :class:`Stabilized` avoids the windup.
+    """
+
+    half_life: float
+    kind = "exponential"
+
+    def __post_init__(self):
+        object.__setattr__(self, "half_life", _check_half_life(self.half_life))
+
+    def forget(self, R, z, nu, ss, prior, dt):
+        d = float(_delta(self.half_life, dt))
+        s = math.sqrt(d)
+        return R * s, z * s, nu * d, ss * d
+
+    def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
+        d = _delta(self.half_life, dt)
+        with np.errstate(divide="ignore"):
+            lev = np.einsum("ij,ij->j", u, u) / d
+        return mean, lev, nu * d, ss * d
+
+    def to_dict(self):
+        return {"kind": self.kind, "half_life": self.half_life}
+
+
+@dataclass(frozen=True)
+class Stabilized(Forgetting):
+    """Stabilized forgetting: flatten the posterior toward the prior.
+
+    Parameters
+    ----------
+    half_life : float
+        Time (or number of samples) after which old information counts half.
+
+    Notes
+    -----
+    With ``delta = 2**(-dt/half_life)`` the time update is (Kulhavý & Zarrop, 1993)
+
+    .. math::
+
+        \\Lambda \\leftarrow \\delta \\Lambda + (1-\\delta) \\Lambda_0, \\quad
+        \\eta \\leftarrow \\delta \\eta + (1-\\delta) \\eta_0, \\quad
+        \\nu \\leftarrow \\delta \\nu + (1-\\delta) \\nu_0, \\quad
+        ss \\leftarrow \\delta\\, ss + (1-\\delta) ss_0 .
+
+    Since ``Lambda - Lambda_0`` stays positive semi-definite, the covariance never exceeds
+    the prior covariance however long the gap between updates. After updates at times
+    ``t_i`` the precision is ``Lambda_0 + sum_i 2**(-(t_N - t_i)/h) phi_i phi_i^T``:
+    weighted ridge regression with the prior precision as a floor.
+
+    In square-root form the update is one QR factorization of
+    ``[sqrt(delta) R, sqrt(delta) z; sqrt(1-delta) R0, sqrt(1-delta) z0]``.
+
+    For predictions over many rows with different gaps, the pencil
+    ``(Lambda, Lambda_0)`` is diagonalized once: with ``X = R^{-T} D`` (``D = diag(r0)``)
+    and ``X X^T = W diag(kappa) W^T``,
+    ``phi^T V(delta) phi = sum_i g_i^2 / (delta + (1-delta) kappa_i)`` with
+    ``g = W^T R^{-T} phi``, and the mean follows likewise, so each row costs O(n).
+    """
+
+    half_life: float
+    kind = "stabilized"
+
+    def __post_init__(self):
+        object.__setattr__(self, "half_life", _check_half_life(self.half_life))
+
+    def forget(self, R, z, nu, ss, prior, dt):
+        d = float(_delta(self.half_life, dt))
+        if d == 1.0:
+            return R, z, nu, ss
+        n = R.shape[0]
+        a = np.zeros((2 * n, n + 1), order="F")
+        s, c = math.sqrt(d), math.sqrt(1.0 - d)
+        a[:n, :n] = R * s
+        a[:n, n] = z * s
+        a[n:, :n] = np.diag(prior.r0 * c)
+        a[n:, n] = prior.z0 * c
+        r = qr_r(a)
+        return (
+            np.ascontiguousarray(r[:n, :n]),
+            r[:n, n].copy(),
+            d * nu + (1.0 - d) * prior.nu0,
+            d * ss + (1.0 - d) * prior.ss0,
+        )
+
+    def _pencil(self, R, z, prior, cache):
+        if "kappa" not in cache:
+            x = solve_upper_t(R, np.diag(prior.r0))
+            kappa, w = np.linalg.eigh(x @ x.T)
+            cache["kappa"] = np.maximum(kappa, 0.0)
+            cache["w"] = w
+            cache["c"] = w.T @ z
+            cache["c0"] = w.T @ (x @ prior.z0)
+        return cache["kappa"], cache["w"], cache["c"], cache["c0"]
+
+    def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
+        d = _delta(self.half_life, dt)
+        kappa, w, c, c0 = self._pencil(R, z, prior, cache)
+        g = w.T @ u
+        denom = d[None, :] + (1.0 - d)[None, :] * kappa[:, None]
+        mean = np.einsum("ij,ij->j", g, (d[None, :] * c[:, None] + (1.0 - d)[None, :] * c0[:, None])
+                         / denom)
+        lev = np.einsum("ij,ij->j", g, g / denom)
+        return mean, lev, d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
+
+    def to_dict(self):
+        return {"kind": self.kind, "half_life": self.half_life}
+
+
+@dataclass(frozen=True)
+class RandomWalk(Forgetting):
+    """Random-walk weights: process noise added to the covariance (Kalman filter, F = I).
+
+    Parameters
+    ----------
+    q : float
+        Variance added to each weight per time unit (or per sample), in the weights' own
+        units squared.
+    noise_half_life : float, optional
+        If given, the noise statistics ``nu`` and ``ss`` are discounted exponentially with
+        this half-life; otherwise they are kept (the noise level is then assumed
+        constant).
+
+    Notes
+    -----
+    The time update is ``P <- P + q dt I`` with ``P`` the weight covariance. In the scaled
+    units of the state (covariance divided by the reference noise variance
+    ``sigma_ref^2``) this is ``V <- V + (q dt / sigma_ref^2) I``; with learned noise
+    ``sigma_ref`` is the prior guess ``sigma0``, which keeps the update conjugate.
+
+    In square-root information form the update is the SRIF time update: a QR
+    factorization of ``[-Rw, Rw, 0; R, 0, z]`` with ``Rw = (q dt / sigma_ref^2)^{-1/2} I``,
+    whose lower-right block is the new factor. It needs no inverse of ``R``, so it also
+    works before the weights are identified.
+    """
+
+    q: float
+    noise_half_life: float | None = None
+    kind = "random_walk"
+
+    def __post_init__(self):
+        try:
+            q = float(self.q)
+        except (TypeError, ValueError):
+            raise ValueError(f"q must be a positive number, got {self.q!r}") from None
+        if not q > 0.0 or not math.isfinite(q):
+            raise ValueError(f"q must be a positive finite number, got {self.q!r}")
+        object.__setattr__(self, "q", q)
+        if self.noise_half_life is not None:
+            object.__setattr__(self, "noise_half_life", _check_half_life(self.noise_half_life))
+
+    def _noise(self, nu, ss, dt):
+        if self.noise_half_life is None:
+            return nu, ss
+        d = _delta(self.noise_half_life, dt)
+        return nu * d, ss * d
+
+    def forget(self, R, z, nu, ss, prior, dt):
+        if dt <= 0.0:
+            return R, z, nu, ss
+        n = R.shape[0]
+        rw = 1.0 / math.sqrt(self.q * dt / prior.ref_var)
+        a = np.zeros((2 * n, 2 * n + 1), order="F")
+        idx = np.arange(n)
+        a[idx, idx] = -rw
+        a[idx, n + idx] = rw
+        a[n:, :n] = R
+        a[n:, 2 * n] = z
+        r = qr_r(a)
+        nu, ss = self._noise(nu, ss, float(dt))
+        return np.ascontiguousarray(r[n:2 * n, n:2 * n]), r[n:2 * n, 2 * n].copy(), nu, ss
+
+    def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
+        # phi^T (V + c I) phi = |u|^2 + c |phi|^2
+        phi2 = np.einsum("ij,ij->j", phit, phit)
+        lev = np.einsum("ij,ij->j", u, u) + (self.q * np.asarray(dt, float) / prior.ref_var) * phi2
+        nu, ss = self._noise(nu, ss, dt)
+        return mean, lev, nu, ss
+
+    def to_dict(self):
+        return {"kind": self.kind, "q": self.q, "noise_half_life": self.noise_half_life}
+
+
+def forgetting_from_dict(d: dict | None) -> Forgetting | None:
+    """Rebuild a policy from :meth:`Forgetting.to_dict` output (``None`` for no forgetting)."""
+    if d is None:
+        return None
+    if not isinstance(d, dict) or "kind" not in d:
+        raise ValueError(f"forgetting must be a dict with a 'kind', got {d!r}")
+    kind = d["kind"]
+    if kind == "exponential":
+        return Exponential(d["half_life"])
+    if kind == "stabilized":
+        return Stabilized(d["half_life"])
+    if kind == "random_walk":
+        return RandomWalk(d["q"], d.get("noise_half_life"))
+    raise ValueError(f"unknown forgetting kind {kind!r}; expected exponential, stabilized "
+                     "or random_walk")

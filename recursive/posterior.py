@@ -1,0 +1,684 @@
+"""Recursive Bayesian linear regression in square-root information form."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import special
+
+from recursive._linalg import full_rank, qr_r, solve_upper, solve_upper_t
+from recursive.forgetting import Forgetting, Prior, Stabilized, forgetting_from_dict
+
+SCHEMA = 1
+_LOG_2PI = math.log(2.0 * math.pi)
+
+
+class OutOfOrderError(ValueError):
+    """An update carries a time earlier than the last one learned.
+
+    Attributes
+    ----------
+    t, t_last : float
+        The offending time and the time of the last update.
+    """
+
+    def __init__(self, t: float, t_last: float):
+        super().__init__(f"update at t={t!r} is earlier than the last update at t={t_last!r}")
+        self.t = t
+        self.t_last = t_last
+
+
+@dataclass(frozen=True)
+class Gate:
+    """Robust gate on the standardized residual.
+
+    Parameters
+    ----------
+    k : float
+        A sample whose standardized residual satisfies ``|z| > k`` is not learned from.
+    release : int or None
+        After this many consecutive rejections *of the same sign* the gate opens: the
+        samples are then learned from (reported with reason ``"gate_open"``) until one
+        passes the gate again. An isolated outlier (a lab blunder) is rejected, while a real
+        step change in the process, which produces a run of same-sign residuals, is not
+        locked out for ever. ``None`` keeps the gate shut.
+
+    Notes
+    -----
+    Under the model, consecutive residuals are independent, so ``release`` consecutive
+    same-sign exceedances of ``k`` have probability ``(2 * Phi(-k) / 2)**release``; for
+    ``k = 4`` and ``release = 3`` that is about ``3e-14``. Such a run is evidence of a
+    change, not of outliers.
+    """
+
+    k: float
+    release: int | None = 3
+
+    def __post_init__(self):
+        try:
+            k = float(self.k)
+        except (TypeError, ValueError):
+            raise ValueError(f"gate k must be a positive number, got {self.k!r}") from None
+        if not k > 0.0 or math.isnan(k):
+            raise ValueError(f"gate k must be a positive number, got {self.k!r}")
+        object.__setattr__(self, "k", k)
+        if self.release is not None:
+            if isinstance(self.release, bool) or not isinstance(self.release, int | np.integer) \
+                    or self.release < 1:
+                raise ValueError(f"gate release must be a positive integer or None, "
+                                 f"got {self.release!r}")
+            object.__setattr__(self, "release", int(self.release))
+
+    def to_dict(self) -> dict:
+        return {"k": self.k, "release": self.release}
+
+
+@dataclass(frozen=True)
+class Prediction:
+    """Predictive distribution for one row or a batch of rows.
+
+    Attributes
+    ----------
+    mean : float or ndarray
+        Predictive mean ``phi^T m``.
+    scale : float or ndarray
+        Scale of the predictive: the standard deviation for a Gaussian, the scale of the
+        Student-t otherwise.
+    var, std : float or ndarray
+        Predictive variance and its square root (``scale**2 * dof / (dof - 2)`` for a
+        Student-t; infinite for ``dof <= 2``).
+    dof : float or ndarray
+        Degrees of freedom (``inf`` for a Gaussian predictive).
+    leverage : float or ndarray
+        ``phi^T V phi``, the weight uncertainty in units of the noise variance.
+    identified : bool or ndarray
+        False where the model cannot predict yet (flat prior not yet identified by the
+        data); the other fields are then nan.
+    """
+
+    mean: float | np.ndarray
+    scale: float | np.ndarray
+    var: float | np.ndarray
+    std: float | np.ndarray
+    dof: float | np.ndarray
+    leverage: float | np.ndarray
+    identified: bool | np.ndarray
+
+    def interval(self, level: float = 0.95):
+        """Central predictive interval ``(lo, hi)`` with probability ``level``."""
+        level = _check_level(level)
+        q = _quantile(np.asarray(self.dof, float), 0.5 + level / 2.0)
+        half = q * np.asarray(self.scale, float)
+        lo, hi = np.asarray(self.mean) - half, np.asarray(self.mean) + half
+        if np.ndim(self.mean) == 0:
+            return float(lo), float(hi)
+        return lo, hi
+
+
+@dataclass(frozen=True)
+class Step:
+    """The outcome of one :meth:`Posterior.update`.
+
+    Attributes
+    ----------
+    t : float or None
+        Time of the sample (``None`` when counting samples).
+    y : float
+        The target value.
+    mean, scale, std, dof : float
+        One-step-ahead predictive distribution of ``y`` before learning from it.
+    innovation : float
+        ``y - mean``.
+    z : float
+        Standardized residual: the predictive CDF at ``y`` mapped to a standard normal
+        quantile, so thresholds mean the same for Gaussian and Student-t predictives.
+    logpdf : float
+        Log predictive density of ``y`` (nan when not identified).
+    accepted : bool
+        Whether the sample was learned from.
+    reason : str
+        ``"ok"``, ``"not_identified"`` (learned; no prediction was possible), ``"gated"``
+        (rejected by the gate) or ``"gate_open"`` (learned through an opened gate).
+    reject_run : int
+        Signed count of consecutive same-sign gate rejections, after this step.
+    n_updates : int
+        Number of accepted updates after this step.
+    """
+
+    t: float | None
+    y: float
+    mean: float
+    scale: float
+    std: float
+    dof: float
+    innovation: float
+    z: float
+    logpdf: float
+    accepted: bool
+    reason: str
+    reject_run: int
+    n_updates: int
+
+
+def _check_level(level) -> float:
+    try:
+        lv = float(level)
+    except (TypeError, ValueError):
+        raise ValueError(f"level must be a number in (0, 1), got {level!r}") from None
+    if not 0.0 < lv < 1.0:
+        raise ValueError(f"level must be a number in (0, 1), got {level!r}")
+    return lv
+
+
+def _quantile(dof, p):
+    """Standard-normal or Student-t quantile, elementwise over ``dof``."""
+    dof = np.asarray(dof, float)
+    with np.errstate(invalid="ignore"):
+        qt = special.stdtrit(np.where(np.isfinite(dof) & (dof > 0), dof, 1.0), p)
+    return np.where(np.isinf(dof), special.ndtri(p), np.where(dof > 0, qt, np.nan))
+
+
+def _to_normal(r: float, dof: float) -> float:
+    """Map a standardized Student-t variate to the standard normal with the same CDF."""
+    if math.isinf(dof):
+        return r
+    # Work on the lower tail so that large |r| keeps its precision.
+    z = -float(special.ndtri(special.stdtr(dof, -abs(r))))
+    return math.copysign(z, r)
+
+
+def _logpdf(r: float, scale: float, dof: float) -> float:
+    if math.isinf(dof):
+        return -0.5 * (_LOG_2PI + r * r) - math.log(scale)
+    return (math.lgamma((dof + 1.0) / 2.0) - math.lgamma(dof / 2.0)
+            - 0.5 * math.log(dof * math.pi) - math.log(scale)
+            - (dof + 1.0) / 2.0 * math.log1p(r * r / dof))
+
+
+def _as_float(name: str, value) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{name} must be a real number, got {value!r}") from None
+    if not math.isfinite(v):
+        raise ValueError(f"{name} must be finite, got {value!r}")
+    return v
+
+
+class Posterior:
+    """Posterior over the weights of ``y = w^T phi + e`` updated one sample at a time.
+
+    Parameters
+    ----------
+    n_features : int
+        Length of the regressor ``phi``.
+    alpha : float or array_like, default 1.0
+        Prior precision of the weights (per weight if an array). 0 gives a flat (uniform)
+        prior on that weight.
+    prior_mean : array_like, optional
+        Prior mean ``m0`` of the weights (default zeros), e.g. a commissioning model.
+    noise_std : float, optional
+        Known noise standard deviation. If omitted, the noise variance is learned.
+    noise_prior : (float, float), default (1.0, 1.0)
+        ``(sigma0, strength)``: prior guess of the noise standard deviation and its weight in
+        pseudo-observations, used when the noise is learned. ``strength = 0`` is the
+        improper prior ``p(sigma^2) ~ 1/sigma^2``.
+    forgetting : Exponential, Stabilized, RandomWalk or None
+        How old information is discounted; ``None`` keeps everything.
+    gate : float or Gate, optional
+        Robust gate on the standardized residual (a float is ``Gate(k)``).
+
+    Notes
+    -----
+    *Model.* With known noise ``sigma``, the prior is ``w ~ N(m0, alpha^{-1} I)``. With
+    learned noise it is the conjugate Normal–inverse-gamma prior
+    ``w | sigma^2 ~ N(m0, sigma^2 / (alpha sigma0^2) I)``,
+    ``sigma^2 ~ Inv-Gamma(nu0/2, nu0 sigma0^2 / 2)`` with ``nu0 = strength``; at
+    ``sigma = sigma0`` the weight prior is ``N(m0, alpha^{-1} I)``. In both cases the
+    posterior mode is ridge regression with ``lambda = alpha * sigma_ref^2``.
+
+    *State.* The posterior is kept in the units of the noise variance as an
+    upper-triangular ``R`` with ``R^T R = Lambda = alpha sigma_ref^2 I + sum phi phi^T``
+    and ``z`` with ``R^T z = Lambda m``, plus the noise statistics ``nu`` (degrees of
+    freedom) and ``ss`` (residual sum of squares). A sample updates them by one QR
+    factorization of ``[R, z; phi^T, y]`` whose last diagonal entry ``e`` satisfies
+    ``e^2 = (y - phi^T m)^2 / (1 + phi^T V phi)``, ``V = Lambda^{-1}``; then
+    ``nu += 1`` and ``ss += e^2``. Orthogonal updates keep the condition number of ``R``
+    at the square root of that of the covariance, which is what makes ill-conditioned
+    regressors (polynomials, collinear tags) safe.
+
+    *Predictive.* ``u = R^{-T} phi``, mean ``phi^T m = u^T z``, leverage
+    ``phi^T V phi = u^T u``. Known noise: Gaussian with variance
+    ``sigma^2 (1 + phi^T V phi)``. Learned noise: Student-t with
+    ``nu_post = nu - p_flat`` degrees of freedom (``p_flat`` weights with a flat prior)
+    and scale ``s^2 (1 + phi^T V phi)``, ``s^2 = ss / nu_post``. With a flat prior and
+    ``strength = 0`` this is the classical result: ``N - p`` degrees of freedom and
+    ``s^2 = SSE / (N - p)`` (Gelman et al., Bayesian Data Analysis, 3rd ed., sec. 14.2).
+
+    *Time.* Passing ``t`` to :meth:`update` makes forgetting act on elapsed time;
+    otherwise each update is one time unit. Times must not decrease.
+    """
+
+    def __init__(self, n_features: int, *, alpha=1.0, prior_mean=None, noise_std=None,
+                 noise_prior=(1.0, 1.0), forgetting: Forgetting | None = None, gate=None):
+        if isinstance(n_features, bool) or not isinstance(n_features, int | np.integer) \
+                or n_features < 1:
+            raise ValueError(f"n_features must be a positive integer, got {n_features!r}")
+        n = int(n_features)
+        self._n = n
+        a = np.array(alpha, dtype=float, copy=True) if not np.isscalar(alpha) else None
+        if a is None:
+            a = np.full(n, _as_float("alpha", alpha))
+        if a.shape != (n,) or not np.all(np.isfinite(a)) or np.any(a < 0):
+            raise ValueError(f"alpha must be a non-negative finite number or an array of "
+                             f"{n} of them, got {alpha!r}")
+        self._alpha = a
+        if prior_mean is None:
+            m0 = np.zeros(n)
+        else:
+            m0 = np.array(prior_mean, dtype=float, copy=True)
+            if m0.shape != (n,) or not np.all(np.isfinite(m0)):
+                raise ValueError(f"prior_mean must be {n} finite numbers, got {prior_mean!r}")
+        self._m0 = m0
+        if noise_std is not None:
+            s = _as_float("noise_std", noise_std)
+            if s <= 0:
+                raise ValueError(f"noise_std must be positive, got {noise_std!r}")
+            self._noise_std = s
+            ref_var = s * s
+            nu0 = ss0 = 0.0
+        else:
+            self._noise_std = None
+            try:
+                sigma0, strength = noise_prior
+            except (TypeError, ValueError):
+                raise ValueError(f"noise_prior must be (sigma0, strength), "
+                                 f"got {noise_prior!r}") from None
+            sigma0 = _as_float("noise_prior sigma0", sigma0)
+            strength = _as_float("noise_prior strength", strength)
+            if sigma0 <= 0 or strength < 0:
+                raise ValueError(f"noise_prior needs sigma0 > 0 and strength >= 0, "
+                                 f"got {noise_prior!r}")
+            ref_var = sigma0 * sigma0
+            nu0, ss0 = strength, strength * ref_var
+        self._noise_prior = None if noise_std is not None else (sigma0, strength)
+        if forgetting is not None and not isinstance(forgetting, Forgetting):
+            raise ValueError(f"forgetting must be Exponential, Stabilized, RandomWalk or None, "
+                             f"got {forgetting!r}")
+        self._forgetting = forgetting
+        if gate is not None and not isinstance(gate, Gate):
+            gate = Gate(gate)
+        self._gate = gate
+        r0 = np.sqrt(a * ref_var)
+        self._prior = Prior(r0=r0, z0=r0 * m0, nu0=nu0, ss0=ss0, ref_var=ref_var)
+        self._p_flat = int(np.count_nonzero(a == 0.0))
+        self.reset()
+
+    # ------------------------------------------------------------------ state
+    def reset(self) -> None:
+        """Return to the prior (the configuration is kept)."""
+        self._R = np.diag(self._prior.r0)
+        self._z = self._prior.z0.copy()
+        self._nu = self._prior.nu0
+        self._ss = self._prior.ss0
+        self._t_last: float | None = None
+        self._clock: str | None = None
+        self._n_updates = 0
+        self._reject_run = 0
+        self._refresh()
+
+    def _refresh(self) -> None:
+        self._cache: dict = {}
+        self._ident = self._identified(self._R, self._nu)
+        self._m = solve_upper(self._R, self._z) if self._ident else np.full(self._n, np.nan)
+
+    def _identified(self, R, nu) -> bool:
+        if self._noise_std is None and not nu - self._p_flat > 0.0:
+            return False
+        return full_rank(R)
+
+    @property
+    def n_features(self) -> int:
+        return self._n
+
+    @property
+    def mean(self) -> np.ndarray:
+        """Posterior mean of the weights (nan until identified)."""
+        return self._m.copy()
+
+    @property
+    def dof(self) -> float:
+        """Degrees of freedom of the marginal posterior (inf with known noise)."""
+        if self._noise_std is not None:
+            return math.inf
+        return self._nu - self._p_flat
+
+    @property
+    def noise_var(self) -> float:
+        """Point estimate of the noise variance (known value, or ``ss / nu_post``)."""
+        if self._noise_std is not None:
+            return self._noise_std ** 2
+        d = self._nu - self._p_flat
+        return self._ss / d if d > 0 else math.nan
+
+    @property
+    def unit_cov(self) -> np.ndarray:
+        """``V = Lambda^{-1}``: the weight covariance in units of the noise variance."""
+        if not full_rank(self._R):
+            return np.full((self._n, self._n), np.nan)
+        ri = solve_upper(self._R, np.eye(self._n))
+        return ri @ ri.T
+
+    @property
+    def scale_matrix(self) -> np.ndarray:
+        """``noise_var * V``: the covariance (known noise) or the Student-t scale matrix."""
+        return self.noise_var * self.unit_cov
+
+    @property
+    def cov(self) -> np.ndarray:
+        """Marginal posterior covariance of the weights.
+
+        ``sigma^2 V`` for known noise; ``dof / (dof - 2) * s^2 V`` for learned noise
+        (the covariance of the multivariate Student-t; infinite for ``dof <= 2``).
+        """
+        d = self.dof
+        if math.isinf(d):
+            return self.scale_matrix
+        if d <= 2:
+            return np.full((self._n, self._n), np.inf)
+        return d / (d - 2.0) * self.scale_matrix
+
+    @property
+    def n_updates(self) -> int:
+        return self._n_updates
+
+    @property
+    def t_last(self) -> float | None:
+        """Time of the last accepted update (None before the first, or when counting)."""
+        return self._t_last
+
+    @property
+    def identified(self) -> bool:
+        return self._ident
+
+    @property
+    def reject_run(self) -> int:
+        return self._reject_run
+
+    @property
+    def forgetting(self) -> Forgetting | None:
+        return self._forgetting
+
+    @property
+    def gate(self) -> Gate | None:
+        return self._gate
+
+    # ------------------------------------------------------------------ predict
+    def predict(self, Phi, t=None) -> Prediction:
+        """Predictive distribution for one regressor ``(n,)`` or a batch ``(k, n)``.
+
+        Parameters
+        ----------
+        Phi : array_like
+            Regressor vector or matrix.
+        t : float or array_like, optional
+            Time(s) of the prediction. When given and later than the last update, the
+            forgetting policy widens the prediction for the time elapsed (the state is not
+            changed). An array gives each row its own time.
+        """
+        P = np.asarray(Phi, dtype=float)
+        single = P.ndim == 1
+        if single:
+            P = P[None, :]
+        if P.ndim != 2 or P.shape[1] != self._n:
+            raise ValueError(f"Phi must have shape ({self._n},) or (k, {self._n}), "
+                             f"got {np.shape(Phi)}")
+        k = P.shape[0]
+        if not self._ident:
+            nan = np.full(k, np.nan)
+            out = Prediction(nan, nan, nan, nan, nan, nan, np.zeros(k, bool))
+            return _squeeze(out) if single else out
+        u = solve_upper_t(self._R, np.ascontiguousarray(P.T))
+        if u.ndim == 1:
+            u = u[:, None]
+        mean = P @ self._m
+        nu, ss = self._nu, self._ss
+        dt = self._elapsed(t, k)
+        if dt is not None and self._forgetting is not None:
+            mean, lev, nu, ss = self._forgetting.widen(
+                self._R, self._z, nu, ss, self._prior, P.T, u, mean, dt, self._cache)
+        else:
+            lev = np.einsum("ij,ij->j", u, u)
+        out = self._distribution(mean, lev, nu, ss)
+        return _squeeze(out) if single else out
+
+    def _elapsed(self, t, k):
+        if t is None or self._t_last is None:
+            return None
+        if self._clock == "samples":
+            raise ValueError("this posterior counts samples (updates were made without t); "
+                             "predict without t")
+        ta = np.asarray(t, dtype=float)
+        if ta.ndim == 0:
+            ta = np.full(k, float(ta))
+        if ta.shape != (k,) or not np.all(np.isfinite(ta)):
+            raise ValueError(f"t must be a finite number or {k} finite numbers, got {t!r}")
+        dt = np.maximum(ta - self._t_last, 0.0)
+        return dt if np.any(dt > 0) else None
+
+    def _distribution(self, mean, lev, nu, ss) -> Prediction:
+        k = np.shape(mean)[0]
+        if self._noise_std is not None:
+            s2 = np.full(k, self._prior.ref_var)
+            dof = np.full(k, np.inf)
+            ident = np.ones(k, bool)
+            scale = np.sqrt(s2 * (1.0 + lev))
+            var = scale * scale
+        else:
+            dof = np.broadcast_to(np.asarray(nu, float) - self._p_flat, (k,)).copy()
+            ss = np.broadcast_to(np.asarray(ss, float), (k,))
+            ident = dof > 0
+            with np.errstate(divide="ignore", invalid="ignore"):
+                s2 = np.where(ident, ss / np.where(ident, dof, 1.0), np.nan)
+                scale = np.sqrt(s2 * (1.0 + lev))
+                var = np.where(dof > 2, scale * scale * dof / (dof - 2.0), np.inf)
+            dof = np.where(ident, dof, np.nan)
+            var = np.where(ident, var, np.nan)
+            mean = np.where(ident, mean, np.nan)
+        return Prediction(mean=mean, scale=scale, var=var, std=np.sqrt(var), dof=dof,
+                          leverage=lev, identified=ident)
+
+    # ------------------------------------------------------------------ update
+    def update(self, phi, y, t=None) -> Step:
+        """Learn from one sample ``(phi, y)`` observed at time ``t``.
+
+        Raises
+        ------
+        ValueError
+            On a wrong shape, non-finite values, or a mix of timed and untimed updates.
+        OutOfOrderError
+            If ``t`` is earlier than the last accepted update.
+        """
+        phi = np.asarray(phi, dtype=float)
+        if phi.shape != (self._n,):
+            raise ValueError(f"phi must have shape ({self._n},), got {phi.shape}")
+        if not np.all(np.isfinite(phi)):
+            raise ValueError(f"phi must be finite, got {phi.tolist()!r}")
+        y = _as_float("y", y)
+        if t is None:
+            if self._clock == "time":
+                raise ValueError("this posterior was updated with times; pass t")
+            dt = 1.0 if self._n_updates > 0 else 0.0
+        else:
+            t = _as_float("t", t)
+            if self._clock == "samples":
+                raise ValueError("this posterior was updated without times; omit t")
+            if self._t_last is not None and t < self._t_last:
+                raise OutOfOrderError(t, self._t_last)
+            dt = 0.0 if self._t_last is None else t - self._t_last
+        R, z, nu, ss = self._R, self._z, self._nu, self._ss
+        if self._forgetting is not None and dt > 0.0:
+            R, z, nu, ss = self._forgetting.forget(R, z, nu, ss, self._prior, dt)
+        ident = self._identified(R, nu)
+        nan = math.nan
+        pm = scale = std = dof = zs = logp = nan
+        innov = nan
+        reason = "not_identified"
+        run = self._reject_run
+        if ident:
+            u = solve_upper_t(R, phi)
+            pm = float(u @ z)
+            lev = float(u @ u)
+            dof = self.dof if self._noise_std is not None else nu - self._p_flat
+            s2 = self._prior.ref_var if self._noise_std is not None else ss / dof
+            scale = math.sqrt(s2 * (1.0 + lev))
+            std = scale if math.isinf(dof) else (
+                scale * math.sqrt(dof / (dof - 2.0)) if dof > 2 else math.inf)
+            innov = y - pm
+            r = innov / scale
+            zs = _to_normal(r, dof)
+            logp = _logpdf(r, scale, dof)
+            reason = "ok"
+            if self._gate is not None:
+                if abs(zs) > self._gate.k:
+                    sign = 1 if zs > 0 else -1
+                    run = run + sign if run * sign > 0 else sign
+                    rel = self._gate.release
+                    if rel is None or abs(run) <= rel:
+                        self._reject_run = run
+                        return Step(t, y, pm, scale, std, dof, innov, zs, logp, False,
+                                    "gated", run, self._n_updates)
+                    reason = "gate_open"
+                else:
+                    run = 0
+        n = self._n
+        a = np.empty((n + 1, n + 1), order="F")
+        a[:n, :n] = R
+        a[:n, n] = z
+        a[n, :n] = phi
+        a[n, n] = y
+        r = qr_r(a)
+        e = r[n, n]
+        self._R = np.ascontiguousarray(r[:n, :n])
+        self._z = r[:n, n].copy()
+        self._nu = nu + 1.0
+        self._ss = ss + e * e
+        if t is None:
+            self._clock = "samples"
+        else:
+            self._clock = "time"
+            self._t_last = t
+        self._n_updates += 1
+        self._reject_run = run
+        self._refresh()
+        return Step(t, y, pm, scale, std, dof, innov, zs, logp, True, reason, run,
+                    self._n_updates)
+
+    def flatten(self, keep: float) -> None:
+        """Partially reset toward the prior, as one stabilized-forgetting step.
+
+        ``Lambda <- keep * Lambda + (1 - keep) * Lambda_0`` (and likewise the information
+        vector and noise statistics), whatever the configured policy. Used to re-learn
+        quickly after a confirmed change in the process.
+        """
+        keep = _as_float("keep", keep)
+        if not 0.0 <= keep <= 1.0:
+            raise ValueError(f"keep must be in [0, 1], got {keep!r}")
+        if keep == 1.0:
+            return
+        if keep == 0.0:
+            self._R = np.diag(self._prior.r0)
+            self._z = self._prior.z0.copy()
+            self._nu, self._ss = self._prior.nu0, self._prior.ss0
+        else:
+            # half_life chosen so that one unit of time gives delta = keep
+            policy = Stabilized(-1.0 / math.log2(keep))
+            self._R, self._z, self._nu, self._ss = policy.forget(
+                self._R, self._z, self._nu, self._ss, self._prior, 1.0)
+        self._refresh()
+
+    # ------------------------------------------------------------------ persistence
+    def config(self) -> dict:
+        """The constructor arguments as plain data."""
+        return {
+            "n_features": self._n,
+            "alpha": self._alpha.tolist(),
+            "prior_mean": self._m0.tolist(),
+            "noise_std": self._noise_std,
+            "noise_prior": None if self._noise_prior is None else list(self._noise_prior),
+            "forgetting": None if self._forgetting is None else self._forgetting.to_dict(),
+            "gate": None if self._gate is None else self._gate.to_dict(),
+        }
+
+    def to_state(self) -> dict:
+        """Plain-data snapshot (numbers, lists, str, None) with a schema version.
+
+        ``Posterior.from_state(p.to_state())`` restores a posterior whose every later
+        result is bit-identical to the original's.
+        """
+        return {
+            "schema": SCHEMA,
+            "config": self.config(),
+            "R": self._R.tolist(),
+            "z": self._z.tolist(),
+            "nu": float(self._nu),
+            "ss": float(self._ss),
+            "t_last": self._t_last,
+            "clock": self._clock,
+            "n_updates": self._n_updates,
+            "reject_run": self._reject_run,
+        }
+
+    @classmethod
+    def from_config(cls, cfg: dict) -> Posterior:
+        """Build a fresh posterior from :meth:`config` output."""
+        try:
+            gate = cfg["gate"]
+            return cls(
+                cfg["n_features"], alpha=cfg["alpha"], prior_mean=cfg["prior_mean"],
+                noise_std=cfg["noise_std"],
+                noise_prior=cfg["noise_prior"] if cfg["noise_prior"] is not None else (1.0, 1.0),
+                forgetting=forgetting_from_dict(cfg["forgetting"]),
+                gate=None if gate is None else Gate(gate["k"], gate["release"]))
+        except (KeyError, TypeError) as exc:
+            raise ValueError(f"bad posterior config: {exc!r}") from None
+
+    @classmethod
+    def from_state(cls, d: dict) -> Posterior:
+        """Rebuild a posterior from :meth:`to_state` output."""
+        if not isinstance(d, dict) or d.get("schema") != SCHEMA:
+            got = d.get("schema") if isinstance(d, dict) else type(d).__name__
+            raise ValueError(f"posterior state schema must be {SCHEMA}, got {got!r}")
+        try:
+            p = cls.from_config(d["config"])
+            n = p._n
+            R = np.array(d["R"], dtype=float)
+            z = np.array(d["z"], dtype=float)
+            if R.shape != (n, n) or z.shape != (n,):
+                raise ValueError(f"state arrays have shapes {R.shape}, {z.shape}; "
+                                 f"expected ({n}, {n}) and ({n},)")
+            if not (np.all(np.isfinite(R)) and np.all(np.isfinite(z))):
+                raise ValueError("state arrays contain non-finite values")
+            if np.any(np.tril(R, -1) != 0.0):
+                raise ValueError("state R is not upper triangular")
+            clock = d["clock"]
+            if clock not in (None, "time", "samples"):
+                raise ValueError(f"state clock must be None, 'time' or 'samples', got {clock!r}")
+            t_last = d["t_last"]
+            p._R, p._z = R, z
+            p._nu, p._ss = float(d["nu"]), float(d["ss"])
+            p._t_last = None if t_last is None else float(t_last)
+            p._clock = clock
+            p._n_updates = int(d["n_updates"])
+            p._reject_run = int(d["reject_run"])
+        except (KeyError, TypeError) as exc:
+            raise ValueError(f"bad posterior state: {exc!r}") from None
+        p._refresh()
+        return p
+
+
+def _squeeze(p: Prediction) -> Prediction:
+    return Prediction(float(p.mean[0]), float(p.scale[0]), float(p.var[0]), float(p.std[0]),
+                      float(p.dof[0]), float(p.leverage[0]), bool(p.identified[0]))
