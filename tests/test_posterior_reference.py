@@ -75,7 +75,7 @@ def test_posterior_mean_equals_sklearn_ridge():
 
 
 def test_stabilized_mean_equals_weighted_ridge_sklearn():
-    """Stabilized forgetting == Ridge with sample_weight 2**(-(t_N - t_i)/half_life) (scikit-learn)."""
+    """Stabilized forgetting == Ridge, sample_weight 2**(-(t_N - t_i)/h) (scikit-learn)."""
     from sklearn.linear_model import Ridge
 
     rng = np.random.default_rng(3)
@@ -259,7 +259,7 @@ def test_prequential_sum_equals_log_evidence_normal_gamma():
 # --------------------------------------------------------------------------- calibration
 @pytest.mark.parametrize("noise", ["known", "learned"])
 def test_calibration_coverage_and_pit(noise):
-    """On data drawn from the model: 95% coverage inside the binomial 99.9% band (scipy.stats.binom),
+    """On data drawn from the model: 95% coverage in the binomial 99.9% band (scipy.stats.binom),
     PIT uniform by Kolmogorov-Smirnov (scipy.stats.kstest)."""
     rng = np.random.default_rng(9 if noise == "known" else 10)
     n, N, sigma, alpha = 3, 2000, 0.4, 1.0
