@@ -1,0 +1,230 @@
+"""The wire format: msgpack maps in two-frame ZeroMQ messages. The one place msgpack is used.
+
+Nothing is ever unpickled; msgpack extension types (including timestamps) are refused, and
+every container and string has a size limit so a hostile message cannot exhaust memory.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import msgpack
+
+# Rejection reasons: a bounded set, so they can be metric label values.
+REASONS = (
+    "frames",          # not exactly two frames
+    "too_large",       # over the configured size
+    "msgpack",         # not valid msgpack, or an extension type
+    "not_a_map",       # payload is not a map
+    "unknown_model",   # topic names no configured model
+    "bad_time",        # t missing, not a number, or not finite
+    "bad_x",           # x of the wrong type, wrong length, unknown tag or non-finite value
+    "bad_y",           # y not a finite number
+    "bad_id",          # id neither int nor short string
+    "bad_block",       # block lists of mismatched lengths or too long
+    "out_of_order",    # feature sample older than the last one of its model
+    "duplicate",       # feature sample at the same time as the last one
+    "lab_unmatched",   # lab result with no buffered features within the tolerance
+    "lab_too_old",     # lab result older than the feature buffer
+    "lab_out_of_order",  # lab result drawn before the last learned one
+    "frozen",          # learning is frozen for this model
+    "gated",           # robust gate rejected the lab result as an outlier
+)
+
+MAX_ID_LEN = 128
+MAX_BLOCK = 65536
+
+
+class WireError(ValueError):
+    """A message that cannot be used; ``reason`` is one of :data:`REASONS`."""
+
+    def __init__(self, reason: str, detail: str):
+        super().__init__(f"{reason}: {detail}")
+        self.reason = reason
+        self.detail = detail
+
+
+def _refuse_ext(code, data):
+    raise WireError("msgpack", f"extension type {code} refused")
+
+
+def unpack(payload: bytes, max_bytes: int):
+    """Decode one msgpack payload with limits; raises :class:`WireError`."""
+    if len(payload) > max_bytes:
+        raise WireError("too_large", f"{len(payload)} bytes > {max_bytes}")
+    try:
+        return msgpack.unpackb(
+            payload, raw=False, strict_map_key=False, ext_hook=_refuse_ext,
+            max_buffer_size=max_bytes, max_str_len=max_bytes, max_bin_len=max_bytes,
+            max_array_len=max_bytes, max_map_len=max_bytes, max_ext_len=0)
+    except WireError:
+        raise
+    except (ValueError, TypeError, msgpack.ExtraData, msgpack.FormatError,
+            msgpack.StackError, RecursionError) as exc:
+        raise WireError("msgpack", type(exc).__name__) from None
+
+
+def pack(obj) -> bytes:
+    """Encode plain data (dicts, lists, str, numbers, None, bool, bytes)."""
+    return msgpack.packb(obj, use_bin_type=True)
+
+
+_packer = msgpack.Packer(use_bin_type=True)
+packb = _packer.pack
+
+
+# ------------------------------------------------------------------ feed messages
+@dataclass(frozen=True)
+class Feed:
+    """One decoded feed message, normalized to blocks of rows.
+
+    ``x`` is a list of rows (each a list of floats in input order, or None where the row
+    carries no features) and ``y`` a list of floats or None, both as long as ``t``.
+    """
+
+    model: str
+    t: list
+    x: list
+    y: list
+    ids: list
+    seq: int | None
+    block: bool
+
+
+def _num(v) -> float | None:
+    if isinstance(v, bool) or not isinstance(v, int | float):
+        return None
+    f = float(v)
+    return f if math.isfinite(f) else None
+
+
+def _time(v) -> float:
+    f = _num(v)
+    if f is None:
+        raise WireError("bad_time", f"t must be a finite number, got {v!r:.60}")
+    return f
+
+
+def _id(v):
+    if v is None:
+        return None
+    if isinstance(v, bool):
+        raise WireError("bad_id", "id must be an int or a string")
+    if isinstance(v, int):
+        return v
+    if isinstance(v, str) and 0 < len(v) <= MAX_ID_LEN:
+        return v
+    raise WireError("bad_id", f"id must be an int or a string of at most {MAX_ID_LEN} "
+                              f"characters, got {v!r:.60}")
+
+
+def _row(v, tags: tuple[str, ...], index: dict[str, int]) -> list[float]:
+    n = len(tags)
+    if isinstance(v, list | tuple):
+        if len(v) != n:
+            raise WireError("bad_x", f"x has {len(v)} values, expected {n} ({', '.join(tags)})")
+        row = [_num(e) for e in v]
+        if None in row:
+            bad = tags[row.index(None)]
+            raise WireError("bad_x", f"x value for {bad} is not a finite number")
+        return row
+    if isinstance(v, dict):
+        row = [math.nan] * n
+        for k, e in v.items():
+            i = index.get(k)
+            if i is None:
+                raise WireError("bad_x", f"unknown tag {k!r:.60}")
+            f = _num(e)
+            if f is None:
+                raise WireError("bad_x", f"x value for {k} is not a finite number")
+            row[i] = f
+        missing = [tags[i] for i, f in enumerate(row) if math.isnan(f)]
+        if missing:
+            raise WireError("bad_x", f"x lacks {', '.join(missing)}")
+        return row
+    raise WireError("bad_x", f"x must be a list or a map, got {type(v).__name__}")
+
+
+def _y(v) -> float:
+    f = _num(v)
+    if f is None:
+        raise WireError("bad_y", f"y must be a finite number, got {v!r:.60}")
+    return f
+
+
+def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
+    """Decode a feed message.
+
+    Parameters
+    ----------
+    frames : list of bytes
+        The ZeroMQ message parts.
+    models : dict
+        Model name -> ``(tags, tag_index)`` of the configured models.
+    max_bytes : int
+        Size limit of the payload.
+    """
+    if len(frames) != 2:
+        raise WireError("frames", f"{len(frames)} frames, expected 2 (topic, payload)")
+    try:
+        name = bytes(frames[0]).decode("utf-8")
+    except UnicodeDecodeError:
+        raise WireError("unknown_model", "topic is not UTF-8") from None
+    spec = models.get(name)
+    if spec is None:
+        raise WireError("unknown_model", f"no model named {name!r:.80}")
+    msg = unpack(bytes(frames[1]), max_bytes)
+    if not isinstance(msg, dict):
+        raise WireError("not_a_map", f"payload is a {type(msg).__name__}, expected a map")
+    tags, index = spec
+    seq = msg.get("seq")
+    if seq is not None and (isinstance(seq, bool) or not isinstance(seq, int)):
+        raise WireError("bad_id", "seq must be an integer")
+    t = msg.get("t")
+    if isinstance(t, list):
+        return _decode_block(name, msg, t, tags, index, seq)
+    x = msg.get("x")
+    y = msg.get("y")
+    ident = _id(msg.get("id"))
+    if x is None and y is None:
+        raise WireError("bad_x", "message has neither x nor y")
+    if t is None:
+        if x is not None or ident is None:
+            raise WireError("bad_time", "t is required (a lab result may give id instead)")
+        tt = math.nan  # matched by id
+    else:
+        tt = _time(t)
+    row = None if x is None else _row(x, tags, index)
+    yy = None if y is None else _y(y)
+    return Feed(name, [tt], [row], [yy], [ident], seq, False)
+
+
+def _decode_block(name, msg, t, tags, index, seq) -> Feed:
+    k = len(t)
+    if k == 0 or k > MAX_BLOCK:
+        raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k}")
+    ts = [_time(v) for v in t]
+    x = msg.get("x")
+    y = msg.get("y")
+    ids = msg.get("id")
+    if x is not None and (not isinstance(x, list) or len(x) != k):
+        raise WireError("bad_block", f"x must be a list of {k} rows")
+    if y is not None and (not isinstance(y, list) or len(y) != k):
+        raise WireError("bad_block", f"y must be a list of {k} values (nil for none)")
+    if ids is not None and (not isinstance(ids, list) or len(ids) != k):
+        raise WireError("bad_block", f"id must be a list of {k} values")
+    if x is None and y is None:
+        raise WireError("bad_block", "a block needs x, y or both")
+    rows = [None] * k if x is None else [_row(r, tags, index) for r in x]
+    ys = [None] * k if y is None else [None if v is None else _y(v) for v in y]
+    idl = [None] * k if ids is None else [_id(v) for v in ids]
+    return Feed(name, ts, rows, ys, idl, seq, True)
+
+
+# ------------------------------------------------------------------ control
+def decode_control(payload: bytes, max_bytes: int) -> dict:
+    msg = unpack(payload, max_bytes)
+    if not isinstance(msg, dict) or not isinstance(msg.get("cmd"), str):
+        raise WireError("not_a_map", 'a command is a map with a string "cmd"')
+    return msg
