@@ -120,6 +120,14 @@ def _check_state(state: Any, kind: str) -> dict:
     return state
 
 
+def _construct(cls: type, params: dict) -> Any:
+    """Build a detector from saved parameters; unknown or missing names are a ValueError."""
+    try:
+        return cls(**params)
+    except TypeError as exc:
+        raise ValueError(f"bad parameters for {cls.__name__}: {params!r} ({exc})") from None
+
+
 def _get(state: dict, key: str) -> Any:
     try:
         return state[key]
@@ -248,7 +256,7 @@ class Cusum:
     def from_state(cls, state: dict) -> "Cusum":
         """Rebuild a detector from :meth:`to_state` output."""
         state = _check_state(state, "cusum")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         obj._upper = _nonnegative("upper", _get(state, "upper"))
         obj._lower = _nonnegative("lower", _get(state, "lower"))
         obj._run_length = _count("run_length", _get(state, "run_length"), 0)
@@ -352,7 +360,7 @@ class PageHinkley:
     def from_state(cls, state: dict) -> "PageHinkley":
         """Rebuild a detector from :meth:`to_state` output."""
         state = _check_state(state, "page_hinkley")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         cumsum = _finite("cumsum", _get(state, "cumsum"))
         minimum = _finite("minimum", _get(state, "minimum"))
         if minimum > 0.0 or minimum > cumsum:
@@ -438,7 +446,7 @@ class SpreadCusum:
     def from_state(cls, state: dict) -> "SpreadCusum":
         """Rebuild a detector from :meth:`to_state` output."""
         state = _check_state(state, "spread_cusum")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         obj._s = _nonnegative("s", _get(state, "s"))
         return obj
 
@@ -549,7 +557,7 @@ class Ewma:
     def from_state(cls, state: dict) -> "Ewma":
         """Rebuild a detector from :meth:`to_state` output."""
         state = _check_state(state, "ewma")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         obj._e = _finite("e", _get(state, "e"))
         obj._t = _count("t", _get(state, "t"), 0)
         return obj
@@ -966,7 +974,7 @@ class Calibration:
     def from_state(cls, state: dict) -> "Calibration":
         """Rebuild from :meth:`to_state` output."""
         state = _check_state(state, "calibration")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         obj._wsum = _nonnegative("weight_sum", _get(state, "weight_sum"))
         obj._cov = _nonnegative("covered_sum", _get(state, "covered_sum"))
         obj._ls = _finite("log_score_sum", _get(state, "log_score_sum"))
@@ -1092,7 +1100,7 @@ class StdBaseline:
     def from_state(cls, state: dict) -> "StdBaseline":
         """Rebuild from :meth:`to_state` output."""
         state = _check_state(state, "std_baseline")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         obj._wsum = _nonnegative("weight_sum", _get(state, "weight_sum"))
         obj._lsum = _finite("log_sum", _get(state, "log_sum"))
         obj._n = _count("count", _get(state, "count"), 0)
@@ -1288,7 +1296,7 @@ class InputRegion:
     def from_state(cls, state: dict) -> "InputRegion":
         """Rebuild from :meth:`to_state` output."""
         state = _check_state(state, "input_region")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         n = obj._n_inputs
         obj._v1 = _nonnegative("v1", _get(state, "v1"))
         obj._v2 = _nonnegative("v2", _get(state, "v2"))
@@ -1447,7 +1455,7 @@ class ParamDrift:
     def from_state(cls, state: dict) -> "ParamDrift":
         """Rebuild from :meth:`to_state` output."""
         state = _check_state(state, "param_drift")
-        obj = cls(**state["params"])
+        obj = _construct(cls, state["params"])
         last_t = _finite("last_t", _get(state, "last_t"))
         obj._last_t = last_t if _get(state, "started") else -_INF
         if _get(state, "has_reference"):
@@ -1671,7 +1679,7 @@ class Trust:
         p = dict(state["params"])
         if "levels" in p:
             p["levels"] = tuple(p["levels"])
-        obj = cls(**p)
+        obj = _construct(cls, p)
         top = len(obj._levels) - 1
         reasons = _get(state, "reasons")
         if not isinstance(reasons, dict):

@@ -768,31 +768,53 @@ def test_round_trip_param_drift(seed, n, split):
     check_round_trip(lambda: ParamDrift(3.0), lambda d, x: d.step(*x), items, split)
 
 
+def _trust_feed(tr, item):
+    t, active, ack = item
+    r = tr.step(t, active)
+    if ack:
+        tr.acknowledge()
+    return r
+
+
 @RT
 @given(
     st.lists(
-        st.dictionaries(
-            st.sampled_from(["mean_shift", "stale", "spread"]),
-            st.tuples(st.integers(1, 2), st.floats(-1e3, 1e3), st.floats(-1e3, 1e3)),
-            max_size=3,
+        st.tuples(
+            st.dictionaries(
+                st.sampled_from(["mean_shift", "stale", "spread"]),
+                st.tuples(st.integers(1, 2), st.floats(-1e3, 1e3), st.floats(-1e3, 1e3)),
+                max_size=3,
+            ),
+            st.booleans(),
         ),
         min_size=1,
         max_size=40,
     ),
     st.integers(0, 40),
-    st.sets(st.integers(0, 40)),
 )
-def test_round_trip_trust(actives, split, ack_at):
-    items = list(enumerate(actives))
+def test_round_trip_trust(steps, split):
+    items = [(0.7 * i, active, ack) for i, (active, ack) in enumerate(steps)]
+    check_round_trip(
+        lambda: Trust(clear_after_count=2, clear_after_time=1.0), _trust_feed, items, split
+    )
 
-    def feed(tr, item):
-        i, active = item
-        r = tr.step(float(i) * 0.7, active)
-        if i in ack_at:
-            tr.acknowledge()
-        return r
 
-    check_round_trip(lambda: Trust(clear_after_count=2, clear_after_time=1.0), feed, items, split)
+def test_trust_round_trip_mid_countdown_with_acknowledgement():
+    items = [
+        (0.0, {"a": (2, 5.0, 4.0), "b": (1, 1.0, 0.5)}, True),
+        (1.0, {"a": (1, 4.5, 4.0)}, False),  # a counting down from 2, b counting down
+        (1.5, {"c": (1, 0.2, 0.1)}, False),
+    ] + [(2.0 + i, {"c": (1, 0.3, 0.1)} if i % 3 == 0 else {}, False) for i in range(12)]
+    make = lambda: Trust(clear_after_count=3, clear_after_time=2.0)  # noqa: E731
+    for split in range(1, len(items)):
+        check_round_trip(make, _trust_feed, items, split)
+    # the acknowledgement survives the round trip
+    tr = make()
+    for item in items[:2]:
+        _trust_feed(tr, item)
+    back = Trust.from_state(json_round_trip(tr.to_state()))
+    r = back.step(1.2, {"a": (1, 4.0, 4.0), "b": (1, 1.0, 0.5)})
+    assert r.acknowledged and r.state == "untrusted"
 
 
 # ----------------------------------------------------------------------------------------------
@@ -822,6 +844,7 @@ BAD_CALLS = {
     ),
     "cusum state negative": lambda: Cusum.from_state({**Cusum().to_state(), "upper": -1.0}),
     "cusum state not dict": lambda: Cusum.from_state([1, 2]),
+    "cusum state params": lambda: Cusum.from_state({**Cusum().to_state(), "params": {"x": 1}}),
     "ph delta<0": lambda: PageHinkley(0.0, -0.1, 1.0),
     "ph threshold 0": lambda: PageHinkley(0.0, 0.1, 0.0),
     "ph mu inf": lambda: PageHinkley(math.inf, 0.1, 1.0),
