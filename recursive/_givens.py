@@ -1,0 +1,399 @@
+"""Per-sample kernels of the square-root information form, in numpy and plain Python.
+
+This module is the reference implementation of :mod:`recursive._kernel`, the optional C
+extension with the identical API, and the fallback when that extension is not built::
+
+    try:
+        from recursive import _kernel as kernel
+    except ImportError:
+        from recursive import _givens as kernel
+
+The posterior is an upper-triangular ``R`` with ``R^T R = Lambda`` (the precision) and a
+vector ``z`` with ``R^T z = Lambda m`` (``m`` the mean). Every function takes arrays that
+export a C-contiguous float64 buffer (numpy arrays, ``array.array("d")``, ...), changes the
+output arrays in place and allocates nothing the caller sees. Only the upper triangle of
+``R`` is read or written. Argument errors raise ``TypeError`` (not a float64 buffer, not a
+number) or ``ValueError`` (dimensions, shapes, layout, read-only output, outputs sharing
+memory with another argument, ``n > MAX_N``, values out of range). Both implementations
+perform the same rotations in the same order, so they agree to rounding.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
+           "update"]
+
+#: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
+MAX_N = 256
+
+_FLOAT64_FORMATS = ("d", "@d", "=d", "<d" if np.little_endian else ">d")
+
+
+def _array(obj, name: str, ndim: int, n: int | None, writable: bool) -> np.ndarray:
+    """View ``obj`` as an ndarray after the checks the C kernel makes."""
+    try:
+        mv = memoryview(obj)
+    except TypeError:
+        raise TypeError(f"{name} must be a float64 array, got {type(obj).__name__}") from None
+    if mv.format not in _FLOAT64_FORMATS or mv.itemsize != 8:
+        raise TypeError(f"{name} must be a float64 array (buffer format 'd'), "
+                        f"got format {mv.format!r}")
+    if mv.ndim != ndim:
+        raise ValueError(f"{name} must have {ndim} dimension(s), got {mv.ndim}")
+    if n is None:
+        n = mv.shape[0]
+    if mv.shape != (n,) * ndim:
+        raise ValueError(f"{name} must have shape {(n,) * ndim}, got {mv.shape}")
+    if not mv.c_contiguous:
+        raise ValueError(f"{name} must be C-contiguous")
+    if writable and mv.readonly:
+        raise ValueError(f"{name} must be writable, got a read-only buffer")
+    return np.asarray(mv)
+
+
+def _check_n(n: int) -> None:
+    if n > MAX_N:
+        raise ValueError(f"n must be at most {MAX_N}, got {n}")
+
+
+def _check_disjoint(outputs: dict, inputs: dict) -> None:
+    """Refuse an output that overlaps another argument: it would be read after writing."""
+    items = list(outputs.items())
+    for i, (name, a) in enumerate(items):
+        for other, b in items[i + 1:] + list(inputs.items()):
+            if np.may_share_memory(a, b):
+                raise ValueError(f"{name} and {other} must not share memory")
+
+
+def _real(value, name: str) -> float:
+    # The same values as the C API's PyFloat_AsDouble: numbers, not strings that parse.
+    t = type(value)
+    if not (hasattr(t, "__float__") or hasattr(t, "__index__")):
+        raise TypeError(f"{name} must be a real number, got {value!r}")
+    return float(value)
+
+
+def _rotate_in(R: np.ndarray, z: np.ndarray, w: np.ndarray, y: float, i0: int) -> float:
+    """Rotate the row ``[w, y]`` (zero before column ``i0``) into ``[R | z]``; return ``y``."""
+    n = z.shape[0]
+    for i in range(i0, n):
+        a, b = float(R[i, i]), float(w[i])
+        if a == 0.0 and b == 0.0:
+            continue
+        r = math.hypot(a, b)
+        c, s = a / r, b / r
+        R[i, i] = r
+        w[i] = 0.0
+        t = R[i, i + 1:].copy()
+        R[i, i + 1:] = c * t + s * w[i + 1:]
+        w[i + 1:] = c * w[i + 1:] - s * t
+        zi = float(z[i])
+        z[i] = c * zi + s * y
+        y = c * y - s * zi
+    return y
+
+
+def update(R, z, phi, y, /) -> float:
+    """Rotate the observation row ``[phi^T, y]`` into ``[R | z]`` in place.
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular square-root information factor; overwritten.
+    z : float64 buffer, shape (n,)
+        Square-root information vector; overwritten.
+    phi : float64 buffer, shape (n,)
+        Regressor; used as workspace and left as zeros.
+    y : float
+        Target value.
+
+    Returns
+    -------
+    float
+        The signed residual ``e``.
+
+    Notes
+    -----
+    Afterwards ``[R z; 0 e] = Q^T [R0 z0; phi^T y]`` with ``Q`` a product of Givens
+    rotations, so
+
+    .. math::
+
+        R^T R = R_0^T R_0 + \\phi \\phi^T, \\qquad R^T z = R_0^T z_0 + \\phi y .
+
+    In column ``i`` the rotation is ``c = R_ii / r``, ``s = phi_i / r``,
+    ``r = hypot(R_ii, phi_i)`` (skipped when both are 0): it zeroes ``phi_i`` and makes the
+    new diagonal ``r >= 0`` whatever the sign of the old one.
+
+    Since ``det Q = 1``, comparing determinants of the two sides gives
+    ``prod(R0_ii) (y - phi^T m) = prod(R_ii) e``, and the matrix determinant lemma gives
+    ``prod(R_ii)^2 / prod(R0_ii)^2 = 1 + phi^T V phi`` (``V = (R0^T R0)^{-1}``). Hence for
+    ``R0`` with a positive diagonal
+
+    .. math::
+
+        e = \\frac{y - \\phi^T m}{\\sqrt{1 + \\phi^T V \\phi}},
+
+    the standardized one-step-ahead prediction error, with its sign.
+    """
+    y = _real(y, "y")
+    zv = _array(z, "z", 1, None, True)
+    n = zv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, True)
+    pv = _array(phi, "phi", 1, n, True)
+    _check_disjoint({"z": zv, "R": Rv, "phi": pv}, {})
+    return float(_rotate_in(Rv, zv, pv, y, 0))
+
+
+def stabilize(R, z, r0, z0, delta, /) -> None:
+    """Flatten ``[R | z]`` toward the prior in place (stabilized forgetting).
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular factor; overwritten.
+    z : float64 buffer, shape (n,)
+        Information vector; overwritten.
+    r0, z0 : float64 buffers, shape (n,)
+        Prior square-root precisions (per weight) and prior information vector.
+    delta : float
+        Weight kept on the current information, ``0 <= delta <= 1``.
+
+    Notes
+    -----
+    ``[R | z]`` becomes the triangular factor of the stacked matrix
+
+    .. math::
+
+        \\begin{bmatrix} \\sqrt{\\delta} R & \\sqrt{\\delta} z \\\\
+        \\sqrt{1-\\delta}\\, \\mathrm{diag}(r_0) & \\sqrt{1-\\delta}\\, z_0 \\end{bmatrix},
+
+    so ``R^T R = delta R^T R + (1-delta) diag(r0^2)`` and
+    ``R^T z = delta R^T z + (1-delta) r0 * z0``. After the scaling, prior row ``i`` is zero
+    before column ``i`` and is rotated in from there as in :func:`update`. A row with
+    ``r0_i = 0`` carries no information and is skipped (its ``z0_i`` could only add to the
+    residual, which is not kept).
+    """
+    d = _real(delta, "delta")
+    if not 0.0 <= d <= 1.0:
+        raise ValueError(f"delta must be in [0, 1], got {delta!r}")
+    zv = _array(z, "z", 1, None, True)
+    n = zv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, True)
+    r0v = _array(r0, "r0", 1, n, False)
+    z0v = _array(z0, "z0", 1, n, False)
+    _check_disjoint({"z": zv, "R": Rv}, {"r0": r0v, "z0": z0v})
+    sd, sc = math.sqrt(d), math.sqrt(1.0 - d)
+    if sd != 1.0:
+        iu = np.triu_indices(n)
+        Rv[iu] *= sd
+        zv *= sd
+    w = np.zeros(n)
+    for i in range(n):
+        di = sc * float(r0v[i])
+        if di == 0.0:
+            continue
+        w[i:] = 0.0
+        w[i] = di
+        _rotate_in(Rv, zv, w, sc * float(z0v[i]), i)
+
+
+def random_walk(R, z, c, /) -> None:
+    """Time update for weights that follow a random walk, in place.
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular factor; overwritten. May be singular.
+    z : float64 buffer, shape (n,)
+        Information vector; overwritten.
+    c : float
+        Covariance increment per weight (``w <- w + noise``, ``cov(noise) = c I``),
+        positive and finite.
+
+    Notes
+    -----
+    With ``w = c^{-1/2}``, the square-root information time update triangularizes
+
+    .. math::
+
+        \\begin{bmatrix} -w I & w I & 0 \\\\ R & 0 & z \\end{bmatrix}
+
+    (columns: old weights, new weights, 1) and keeps the lower-right block. Its Gram matrix
+    is the Schur complement
+
+    .. math::
+
+        w^2 I - w^4 (w^2 I + \\Lambda)^{-1} = \\Lambda (I + c \\Lambda)^{-1}
+        = (\\Lambda^{-1} + c I)^{-1},
+
+    the last form only when ``Lambda`` is invertible; the new information vector is
+    ``(I + c Lambda)^{-1} eta``, which leaves the mean unchanged. No inverse of ``R`` is
+    needed, so a singular ``R`` (weights not yet identified) is fine.
+
+    Column ``k`` of the left block is cleared by rotating the pivot row ``k``, still
+    ``[-w e_k, w e_k, 0]`` at that point, with each lower row ``i <= k`` holding a nonzero
+    ``R_ik``. Taking those rows from ``i = k`` down to 0 keeps the middle block of the
+    lower rows upper triangular (row ``i`` only receives entries in columns ``>= i``), so
+    no further factorization is needed. Rows with a negative diagonal are negated at the
+    end (an orthogonal change) so that the diagonal is non-negative.
+    """
+    cv = _real(c, "c")
+    if not (cv > 0.0 and math.isfinite(cv)):
+        raise ValueError(f"c must be positive and finite, got {c!r}")
+    zv = _array(z, "z", 1, None, True)
+    n = zv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, True)
+    _check_disjoint({"z": zv, "R": Rv}, {})
+    w = 1.0 / math.sqrt(cv)
+    M = np.zeros((n, n))
+    for k in range(n):
+        pl = np.zeros(n)
+        pm = np.zeros(n)
+        pl[k], pm[k] = -w, w
+        pz = 0.0
+        for i in range(k, -1, -1):
+            b = float(Rv[i, k])
+            if b == 0.0:
+                continue
+            a = float(pl[k])
+            r = math.hypot(a, b)
+            cs, sn = a / r, b / r
+            pl[k] = r
+            Rv[i, k] = 0.0
+            t = pl[k + 1:].copy()
+            pl[k + 1:] = cs * t + sn * Rv[i, k + 1:]
+            Rv[i, k + 1:] = cs * Rv[i, k + 1:] - sn * t
+            t = pm[i:].copy()
+            pm[i:] = cs * t + sn * M[i, i:]
+            M[i, i:] = cs * M[i, i:] - sn * t
+            zi = float(zv[i])
+            pz, zv[i] = cs * pz + sn * zi, cs * zi - sn * pz
+    for i in range(n):
+        sign = -1.0 if M[i, i] < 0.0 else 1.0
+        Rv[i, i:] = sign * M[i, i:]
+        zv[i] *= sign
+
+
+def predict(R, z, phi, /) -> tuple[float, float]:
+    """Predictive mean and leverage of the regressor ``phi``; nothing is modified.
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular factor.
+    z : float64 buffer, shape (n,)
+        Information vector.
+    phi : float64 buffer, shape (n,)
+        Regressor.
+
+    Returns
+    -------
+    mean, lev : float
+        ``phi^T m`` and ``phi^T V phi``; ``(nan, nan)`` if a diagonal entry of ``R`` is
+        exactly 0 (the weights are not identified).
+
+    Notes
+    -----
+    With ``u = R^{-T} phi`` (forward substitution),
+    ``phi^T m = phi^T R^{-1} z = u^T z`` and
+    ``phi^T V phi = phi^T R^{-1} R^{-T} phi = u^T u``.
+    """
+    zv = _array(z, "z", 1, None, False)
+    n = zv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, False)
+    pv = _array(phi, "phi", 1, n, False)
+    u = pv.copy()
+    mean = lev = 0.0
+    for i in range(n):
+        d = float(Rv[i, i])
+        if d == 0.0:
+            return math.nan, math.nan
+        ui = float(u[i]) / d
+        mean += ui * float(zv[i])
+        lev += ui * ui
+        u[i + 1:] -= Rv[i, i + 1:] * ui
+    return mean, lev
+
+
+def solve_upper(R, b, /) -> None:
+    """Overwrite ``b`` with ``R^{-1} b`` (back substitution).
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular matrix.
+    b : float64 buffer, shape (n,)
+        Right-hand side; overwritten with the solution.
+
+    Raises
+    ------
+    ZeroDivisionError
+        If a diagonal entry of ``R`` is exactly 0 (``b`` is then unchanged).
+
+    Notes
+    -----
+    ``x_i = (b_i - sum_{j > i} R_ij x_j) / R_ii`` for ``i = n-1, ..., 0``.
+    """
+    bv = _array(b, "b", 1, None, True)
+    n = bv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, False)
+    _check_disjoint({"b": bv}, {"R": Rv})
+    zero = np.flatnonzero(np.diagonal(Rv) == 0.0)
+    if zero.size:
+        i = int(zero[0])
+        raise ZeroDivisionError(f"R is singular: R[{i}, {i}] == 0")
+    for i in range(n - 1, -1, -1):
+        bv[i] = (float(bv[i]) - float(Rv[i, i + 1:] @ bv[i + 1:])) / float(Rv[i, i])
+
+
+def rank_ratio(R, /) -> float:
+    """Scale-invariant rank measure of an upper-triangular ``R``.
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular matrix (the strict lower triangle is ignored).
+
+    Returns
+    -------
+    float
+        ``min_i |R_ii| / ||R[:i+1, i]||`` in ``[0, 1]``, with ``0/0`` counted as 0; 1.0
+        for ``n = 0`` and nan if the triangle holds a nan.
+
+    Notes
+    -----
+    ``|R_ii|`` is the norm of the part of column ``i`` of ``A`` (any ``A`` with
+    ``A^T A = R^T R``) orthogonal to the columns before it, and ``||R[:i+1, i]||`` is the
+    norm of the whole column, so the ratio is the sine of the angle between column ``i`` and
+    the span of the others before it. It does not change when a column is rescaled, so a
+    regressor in large units is not mistaken for a missing one. Each column is divided by
+    its largest entry before squaring so that the norm cannot overflow.
+    """
+    Rv = _array(R, "R", 2, None, False)
+    n = Rv.shape[0]
+    _check_n(n)
+    best = 1.0
+    for i in range(n):
+        col = np.abs(Rv[:i + 1, i])
+        big = float(np.max(col))
+        if math.isnan(big):
+            return math.nan
+        if big == 0.0:
+            ratio = 0.0
+        else:
+            s = col / big
+            ratio = float(col[i]) / big / math.sqrt(float(s @ s))
+        if math.isnan(ratio):
+            return math.nan
+        best = min(best, ratio)
+    return best
