@@ -1,0 +1,599 @@
+/*
+ * recursive._kernel: the per-sample linear algebra of the square-root information form.
+ *
+ * The posterior is an upper-triangular R (R^T R = Lambda, the precision) and a vector z
+ * (R^T z = Lambda m).  For the small n this package works with, a call into numpy or
+ * LAPACK costs more in argument handling than in arithmetic, so the few operations done on
+ * every sample are written out here with Givens rotations and triangular substitutions.
+ *
+ * Arrays come in through the buffer protocol (any exporter of a C-contiguous float64
+ * buffer; numpy is not needed to build this) and are modified in place.  Only the upper
+ * triangle of R is ever read or written.  recursive/_givens.py is the same API in Python
+ * and is the reference for what each function computes.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+
+#include <float.h>
+#include <math.h>
+#include <string.h>
+
+/* Largest n accepted: bounds the stack workspaces below (2 KiB each). */
+#define MAX_N 256
+/* Up to this n, random_walk keeps its n x n workspace on the stack. */
+#define SMALL_N 16
+
+/* ------------------------------------------------------------------ argument checks */
+
+/* A set of buffers acquired by one call, released together on every exit path. */
+typedef struct {
+    Py_buffer view[5];
+    int count;
+} Buffers;
+
+static void
+release_all(Buffers *b)
+{
+    for (int i = 0; i < b->count; i++) {
+        PyBuffer_Release(&b->view[i]);
+    }
+    b->count = 0;
+}
+
+static int
+is_float64(const Py_buffer *v)
+{
+    const char *f = v->format;
+    if (f == NULL || v->itemsize != (Py_ssize_t)sizeof(double)) {
+        return 0;
+    }
+    /* '@', '=' and no prefix mean native byte order; '<' is native on little-endian. */
+#if PY_LITTLE_ENDIAN
+    if (f[0] == '@' || f[0] == '=' || f[0] == '<') {
+        f++;
+    }
+#else
+    if (f[0] == '@' || f[0] == '=' || f[0] == '>' || f[0] == '!') {
+        f++;
+    }
+#endif
+    return f[0] == 'd' && f[1] == '\0';
+}
+
+/*
+ * Acquire obj as a C-contiguous float64 array with `ndim` dimensions, each of length n
+ * (n < 0: the first dimension may have any length).  On success the buffer is added to
+ * `bufs` and its data pointer returned; on failure an exception is set, nothing is held,
+ * and NULL is returned.
+ */
+static double *
+get_array(Buffers *bufs, PyObject *obj, const char *name, int ndim, Py_ssize_t n,
+          int writable)
+{
+    Py_buffer *v = &bufs->view[bufs->count];
+    if (PyObject_GetBuffer(obj, v, PyBUF_RECORDS_RO) < 0) {
+        if (PyErr_ExceptionMatches(PyExc_BufferError)) {
+            PyErr_Clear();
+            PyErr_Format(PyExc_ValueError, "%s: cannot get a strided buffer from %.100s",
+                         name, Py_TYPE(obj)->tp_name);
+        }
+        else if (PyErr_ExceptionMatches(PyExc_TypeError)) {
+            PyErr_Clear();
+            PyErr_Format(PyExc_TypeError, "%s must be a float64 array, got %.100s", name,
+                         Py_TYPE(obj)->tp_name);
+        }
+        return NULL;
+    }
+    if (!is_float64(v)) {
+        PyErr_Format(PyExc_TypeError, "%s must be a float64 array (buffer format 'd'), "
+                     "got format '%s'", name, v->format ? v->format : "B");
+        goto fail;
+    }
+    if (v->ndim != ndim) {
+        PyErr_Format(PyExc_ValueError, "%s must have %d dimension(s), got %d", name, ndim,
+                     v->ndim);
+        goto fail;
+    }
+    if (n < 0) {
+        n = v->shape[0];
+    }
+    for (int d = 0; d < ndim; d++) {
+        if (v->shape[d] != n) {
+            if (ndim == 1) {
+                PyErr_Format(PyExc_ValueError, "%s must have shape (%zd,), got (%zd,)", name,
+                             n, v->shape[0]);
+            }
+            else {
+                PyErr_Format(PyExc_ValueError, "%s must have shape (%zd, %zd), got (%zd, %zd)",
+                             name, n, n, v->shape[0], v->shape[1]);
+            }
+            goto fail;
+        }
+    }
+    if (!PyBuffer_IsContiguous(v, 'C')) {
+        PyErr_Format(PyExc_ValueError, "%s must be C-contiguous", name);
+        goto fail;
+    }
+    if (writable && v->readonly) {
+        PyErr_Format(PyExc_ValueError, "%s must be writable, got a read-only buffer", name);
+        goto fail;
+    }
+    bufs->count++;
+    return (double *)v->buf;
+fail:
+    PyBuffer_Release(v);
+    return NULL;
+}
+
+/* Raise if n is too large for the stack workspaces. */
+static int
+check_n(Py_ssize_t n)
+{
+    if (n > MAX_N) {
+        PyErr_Format(PyExc_ValueError, "n must be at most %d, got %zd", MAX_N, n);
+        return -1;
+    }
+    return 0;
+}
+
+/*
+ * Raise if a buffer that is written (the first n_out of them) shares memory with any other
+ * buffer: it would be overwritten while still being read.
+ */
+static int
+check_disjoint(const Buffers *b, const char *const *names, int n_out)
+{
+    for (int i = 0; i < n_out && i < b->count; i++) {
+        const char *lo_i = (const char *)b->view[i].buf, *hi_i = lo_i + b->view[i].len;
+        for (int j = i + 1; j < b->count; j++) {
+            const char *lo_j = (const char *)b->view[j].buf, *hi_j = lo_j + b->view[j].len;
+            if (lo_i < hi_j && lo_j < hi_i) {
+                PyErr_Format(PyExc_ValueError, "%s and %s must not share memory", names[i],
+                             names[j]);
+                return -1;
+            }
+        }
+    }
+    return 0;
+}
+
+static int
+get_double(PyObject *obj, const char *name, double *out)
+{
+    double v = PyFloat_AsDouble(obj);
+    if (v == -1.0 && PyErr_Occurred()) {
+        PyErr_Clear();
+        PyErr_Format(PyExc_TypeError, "%s must be a real number, got %R", name, obj);
+        return -1;
+    }
+    *out = v;
+    return 0;
+}
+
+static int
+check_nargs(const char *fname, Py_ssize_t nargs, Py_ssize_t want)
+{
+    if (nargs != want) {
+        PyErr_Format(PyExc_TypeError, "%s() takes %zd positional arguments, got %zd", fname,
+                     want, nargs);
+        return -1;
+    }
+    return 0;
+}
+
+/* ------------------------------------------------------------------ numerics */
+
+/*
+ * Rotate the row [w, y] (zero before column i0) into the rows i0.. of the triangular
+ * [R | z], one Givens rotation per column, and return what is left of y.
+ *
+ * In column i the rotation [c s; -s c] with r = hypot(R_ii, w_i), c = R_ii / r,
+ * s = w_i / r maps (R_ii, w_i) to (r, 0): the new diagonal is non-negative whatever the
+ * sign of the old one, and w_i becomes exactly 0, so w ends as zeros.  When both are zero
+ * there is nothing to rotate in that column.  hypot avoids overflow in r.
+ */
+static double
+rotate_in(double *R, double *z, double *w, double y, Py_ssize_t n, Py_ssize_t i0)
+{
+    for (Py_ssize_t i = i0; i < n; i++) {
+        double *Ri = R + i * n;
+        double a = Ri[i], b = w[i];
+        if (a == 0.0 && b == 0.0) {
+            continue;
+        }
+        double r = hypot(a, b), c = a / r, s = b / r;
+        Ri[i] = r;
+        w[i] = 0.0;
+        for (Py_ssize_t j = i + 1; j < n; j++) {
+            double t = Ri[j];
+            Ri[j] = c * t + s * w[j];
+            w[j] = c * w[j] - s * t;
+        }
+        double t = z[i];
+        z[i] = c * t + s * y;
+        y = c * y - s * t;
+    }
+    return y;
+}
+
+/*
+ * SRIF time update for a random walk with covariance increment c I (w = c^{-1/2}):
+ * triangularize
+ *
+ *     [ -w I   w I   0 ]   <- "pivot" rows, one per old weight
+ *     [   R     0    z ]   <- "bottom" rows
+ *
+ * with columns (old weights, new weights, 1).  Column k of the left block is cleared by
+ * rotating pivot row k (untouched until then, so still [-w e_k, w e_k, 0]) with every
+ * bottom row i <= k that has R_ik != 0.  Taking those rows from i = k down to 0 keeps the
+ * middle block M of the bottom rows upper triangular: row i only ever receives entries in
+ * columns >= i.  The bottom rows then read [0, M, z'] with [M | z'] triangular, which is
+ * the new [R | z]: its Gram matrix is the Schur complement
+ * w^2 I - w^4 (w^2 I + Lambda)^{-1} = Lambda (I + c Lambda)^{-1}, defined even for a
+ * singular Lambda.  Rows with a negative diagonal are negated at the end (orthogonal, so
+ * allowed) to keep the diagonal non-negative.  The left block of the bottom rows is held
+ * in R itself, which is all zero when the loop ends.  Returns -1 on memory error.
+ */
+static int
+random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
+{
+    double stack[SMALL_N * SMALL_N + 2 * SMALL_N];
+    double *work = stack;
+    if (n > SMALL_N) {
+        work = PyMem_Malloc(((size_t)n * (size_t)n + 2 * (size_t)n) * sizeof(double));
+        if (work == NULL) {
+            PyErr_NoMemory();
+            return -1;
+        }
+    }
+    double *M = work, *pl = work + n * n, *pm = pl + n;
+    double w = 1.0 / sqrt(c);
+    memset(M, 0, (size_t)(n * n) * sizeof(double));
+    for (Py_ssize_t k = 0; k < n; k++) {
+        memset(pl + k, 0, (size_t)(n - k) * sizeof(double));
+        memset(pm, 0, (size_t)n * sizeof(double));
+        pl[k] = -w;
+        pm[k] = w;
+        double pz = 0.0;
+        for (Py_ssize_t i = k; i >= 0; i--) {
+            double *Ri = R + i * n, *Mi = M + i * n;
+            double b = Ri[k];
+            if (b == 0.0) {
+                continue;
+            }
+            double a = pl[k];
+            double r = hypot(a, b), cs = a / r, sn = b / r;
+            pl[k] = r;
+            Ri[k] = 0.0;
+            for (Py_ssize_t j = k + 1; j < n; j++) {
+                double t = pl[j];
+                pl[j] = cs * t + sn * Ri[j];
+                Ri[j] = cs * Ri[j] - sn * t;
+            }
+            for (Py_ssize_t j = i; j < n; j++) {
+                double t = pm[j];
+                pm[j] = cs * t + sn * Mi[j];
+                Mi[j] = cs * Mi[j] - sn * t;
+            }
+            double t = pz;
+            pz = cs * t + sn * z[i];
+            z[i] = cs * z[i] - sn * t;
+        }
+    }
+    for (Py_ssize_t i = 0; i < n; i++) {
+        double *Ri = R + i * n, *Mi = M + i * n;
+        double sign = Mi[i] < 0.0 ? -1.0 : 1.0;
+        for (Py_ssize_t j = i; j < n; j++) {
+            Ri[j] = sign * Mi[j];
+        }
+        z[i] *= sign;
+    }
+    if (work != stack) {
+        PyMem_Free(work);
+    }
+    return 0;
+}
+
+/* ------------------------------------------------------------------ module functions */
+
+PyDoc_STRVAR(update_doc,
+"update($module, R, z, phi, y, /)\n--\n\n"
+"Rotate the row [phi^T, y] into the triangular [R | z] in place; return e.\n\n"
+"Afterwards [R z; 0 e] = Q^T [R0 z0; phi^T y] with Q orthogonal (det Q = 1), so\n"
+"R^T R gains phi phi^T, R^T z gains phi y, and e = (y - phi^T m) / sqrt(1 + phi^T V phi)\n"
+"when R0 has a positive diagonal. phi is clobbered (left as zeros).");
+
+static PyObject *
+kernel_update(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"z", "R", "phi"};
+    Buffers b = {.count = 0};
+    double y, *R, *z, *phi;
+    if (check_nargs("update", nargs, 4) < 0 || get_double(args[3], "y", &y) < 0) {
+        return NULL;
+    }
+    if ((z = get_array(&b, args[1], "z", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (R = get_array(&b, args[0], "R", 2, n, 1)) == NULL ||
+        (phi = get_array(&b, args[2], "phi", 1, n, 1)) == NULL ||
+        check_disjoint(&b, names, 3) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    double e = rotate_in(R, z, phi, y, n, 0);
+    release_all(&b);
+    return PyFloat_FromDouble(e);
+}
+
+PyDoc_STRVAR(stabilize_doc,
+"stabilize($module, R, z, r0, z0, delta, /)\n--\n\n"
+"Replace [R | z] in place by the triangular factor of\n"
+"[sqrt(delta) R, sqrt(delta) z; sqrt(1-delta) diag(r0), sqrt(1-delta) z0],\n"
+"so that R^T R = delta R^T R + (1-delta) diag(r0^2). 0 <= delta <= 1.");
+
+static PyObject *
+kernel_stabilize(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"z", "R", "r0", "z0"};
+    Buffers b = {.count = 0};
+    double delta, *R, *z, *r0, *z0;
+    if (check_nargs("stabilize", nargs, 5) < 0 || get_double(args[4], "delta", &delta) < 0) {
+        return NULL;
+    }
+    if (!(delta >= 0.0 && delta <= 1.0)) {
+        PyErr_Format(PyExc_ValueError, "delta must be in [0, 1], got %R", args[4]);
+        return NULL;
+    }
+    if ((z = get_array(&b, args[1], "z", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (R = get_array(&b, args[0], "R", 2, n, 1)) == NULL ||
+        (r0 = get_array(&b, args[2], "r0", 1, n, 0)) == NULL ||
+        (z0 = get_array(&b, args[3], "z0", 1, n, 0)) == NULL ||
+        check_disjoint(&b, names, 2) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    double sd = sqrt(delta), sc = sqrt(1.0 - delta), w[MAX_N];
+    if (sd != 1.0) {
+        for (Py_ssize_t i = 0; i < n; i++) {
+            for (Py_ssize_t j = i; j < n; j++) {
+                R[i * n + j] *= sd;
+            }
+            z[i] *= sd;
+        }
+    }
+    /* Prior row i is sqrt(1-delta) [r0_i e_i, z0_i]: zero before column i. */
+    for (Py_ssize_t i = 0; i < n; i++) {
+        double d = sc * r0[i];
+        if (d == 0.0) {
+            /* No information in this row; its z0 part would only be residual. */
+            continue;
+        }
+        memset(w + i, 0, (size_t)(n - i) * sizeof(double));
+        w[i] = d;
+        rotate_in(R, z, w, sc * z0[i], n, i);
+    }
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(random_walk_doc,
+"random_walk($module, R, z, c, /)\n--\n\n"
+"Square-root information time update for weights w <- w + noise, cov(noise) = c I.\n\n"
+"In place: R^T R becomes Lambda (I + c Lambda)^{-1} (= (Lambda^{-1} + c I)^{-1} when\n"
+"Lambda = R^T R is invertible) and the mean R^{-1} z is unchanged. Works for a singular R.\n"
+"c must be positive and finite.");
+
+static PyObject *
+kernel_random_walk(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"z", "R"};
+    Buffers b = {.count = 0};
+    double c, *R, *z;
+    if (check_nargs("random_walk", nargs, 3) < 0 || get_double(args[2], "c", &c) < 0) {
+        return NULL;
+    }
+    if (!(c > 0.0 && c <= DBL_MAX)) {
+        PyErr_Format(PyExc_ValueError, "c must be positive and finite, got %R", args[2]);
+        return NULL;
+    }
+    if ((z = get_array(&b, args[1], "z", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (R = get_array(&b, args[0], "R", 2, n, 1)) == NULL ||
+        check_disjoint(&b, names, 2) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    int rc = random_walk_impl(R, z, n, c);
+    release_all(&b);
+    if (rc < 0) {
+        return NULL;
+    }
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(predict_doc,
+"predict($module, R, z, phi, /)\n--\n\n"
+"Return (mean, lev) = (u.z, u.u) with u = R^{-T} phi; nothing is modified.\n\n"
+"mean = phi^T m and lev = phi^T V phi. If a diagonal entry of R is exactly 0 the\n"
+"weights are not identified and (nan, nan) is returned.");
+
+static PyObject *
+kernel_predict(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    double *R, *z, *phi, u[MAX_N];
+    if (check_nargs("predict", nargs, 3) < 0) {
+        return NULL;
+    }
+    if ((z = get_array(&b, args[1], "z", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (R = get_array(&b, args[0], "R", 2, n, 0)) == NULL ||
+        (phi = get_array(&b, args[2], "phi", 1, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    /* Forward substitution R^T u = phi, row by row of R so memory is read in order:
+     * once u_i is known, its contribution R_ij u_i is removed from every later u_j. */
+    double mean = 0.0, lev = 0.0;
+    memcpy(u, phi, (size_t)n * sizeof(double));
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *Ri = R + i * n;
+        if (Ri[i] == 0.0) {
+            mean = lev = Py_NAN;
+            break;
+        }
+        double ui = u[i] / Ri[i];
+        mean += ui * z[i];
+        lev += ui * ui;
+        for (Py_ssize_t j = i + 1; j < n; j++) {
+            u[j] -= Ri[j] * ui;
+        }
+    }
+    release_all(&b);
+    return Py_BuildValue("(dd)", mean, lev);
+}
+
+PyDoc_STRVAR(solve_upper_doc,
+"solve_upper($module, R, b, /)\n--\n\n"
+"b <- R^{-1} b in place (back substitution).\n\n"
+"Raises ZeroDivisionError, leaving b unchanged, if a diagonal entry of R is exactly 0.");
+
+static PyObject *
+kernel_solve_upper(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"b", "R"};
+    Buffers bufs = {.count = 0};
+    double *R, *x;
+    if (check_nargs("solve_upper", nargs, 2) < 0) {
+        return NULL;
+    }
+    if ((x = get_array(&bufs, args[1], "b", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = bufs.view[0].shape[0];
+    if (check_n(n) < 0 || (R = get_array(&bufs, args[0], "R", 2, n, 0)) == NULL ||
+        check_disjoint(&bufs, names, 1) < 0) {
+        release_all(&bufs);
+        return NULL;
+    }
+    for (Py_ssize_t i = 0; i < n; i++) {
+        if (R[i * n + i] == 0.0) {
+            release_all(&bufs);
+            PyErr_Format(PyExc_ZeroDivisionError, "R is singular: R[%zd, %zd] == 0", i, i);
+            return NULL;
+        }
+    }
+    for (Py_ssize_t i = n - 1; i >= 0; i--) {
+        const double *Ri = R + i * n;
+        double s = x[i];
+        for (Py_ssize_t j = i + 1; j < n; j++) {
+            s -= Ri[j] * x[j];
+        }
+        x[i] = s / Ri[i];
+    }
+    release_all(&bufs);
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(rank_ratio_doc,
+"rank_ratio($module, R, /)\n--\n\n"
+"min over columns i of |R_ii| / ||R[:i+1, i]|| (0/0 counts as 0; 1.0 when n = 0).\n\n"
+"The part of column i not explained by the columns before it, relative to the column's\n"
+"own size: a scale-invariant rank test. nan if the triangle holds a nan.");
+
+static PyObject *
+kernel_rank_ratio(PyObject *self, PyObject *arg)
+{
+    Buffers b = {.count = 0};
+    const double *R;
+    if ((R = get_array(&b, arg, "R", 2, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    double best = 1.0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        /* Scale by the largest entry so the sum of squares cannot overflow or underflow. */
+        double big = 0.0, ratio;
+        for (Py_ssize_t k = 0; k <= i; k++) {
+            double a = fabs(R[k * n + i]);
+            if (a > big || isnan(a)) {
+                big = a;
+            }
+        }
+        if (big == 0.0) {
+            ratio = 0.0;
+        }
+        else {
+            double ss = 0.0;
+            for (Py_ssize_t k = 0; k <= i; k++) {
+                double a = R[k * n + i] / big;
+                ss += a * a;
+            }
+            ratio = fabs(R[i * n + i]) / big / sqrt(ss);
+        }
+        if (isnan(ratio)) {
+            best = Py_NAN;
+            break;
+        }
+        if (ratio < best) {
+            best = ratio;
+        }
+    }
+    release_all(&b);
+    return PyFloat_FromDouble(best);
+}
+
+static PyMethodDef kernel_methods[] = {
+    {"update", (PyCFunction)(void (*)(void))kernel_update, METH_FASTCALL, update_doc},
+    {"stabilize", (PyCFunction)(void (*)(void))kernel_stabilize, METH_FASTCALL,
+     stabilize_doc},
+    {"random_walk", (PyCFunction)(void (*)(void))kernel_random_walk, METH_FASTCALL,
+     random_walk_doc},
+    {"predict", (PyCFunction)(void (*)(void))kernel_predict, METH_FASTCALL, predict_doc},
+    {"solve_upper", (PyCFunction)(void (*)(void))kernel_solve_upper, METH_FASTCALL,
+     solve_upper_doc},
+    {"rank_ratio", kernel_rank_ratio, METH_O, rank_ratio_doc},
+    {NULL, NULL, 0, NULL},
+};
+
+static int
+kernel_exec(PyObject *module)
+{
+    return PyModule_AddIntConstant(module, "MAX_N", MAX_N);
+}
+
+static PyModuleDef_Slot kernel_slots[] = {
+    {Py_mod_exec, kernel_exec},
+    {0, NULL},
+};
+
+PyDoc_STRVAR(module_doc,
+"Square-root information kernels in C (see recursive._givens for the same API in Python).");
+
+static struct PyModuleDef kernel_module = {
+    PyModuleDef_HEAD_INIT,
+    .m_name = "recursive._kernel",
+    .m_doc = module_doc,
+    .m_size = 0,
+    .m_methods = kernel_methods,
+    .m_slots = kernel_slots,
+};
+
+PyMODINIT_FUNC
+PyInit__kernel(void)
+{
+    return PyModuleDef_Init(&kernel_module);
+}
