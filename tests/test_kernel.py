@@ -1,0 +1,520 @@
+"""Tests of the square-root information kernels: the C extension and its Python twin.
+
+Every computation is checked against numpy / scipy (LAPACK) or filterpy, for both
+implementations; the two are also compared with each other.
+"""
+
+from __future__ import annotations
+
+import array
+import math
+import os
+
+import numpy as np
+import pytest
+from filterpy.kalman import KalmanFilter
+from numpy.testing import assert_allclose
+from scipy.linalg import solve_triangular
+
+from recursive import _givens
+
+try:
+    from recursive import _kernel
+    _KERNEL_ERROR = None
+except ImportError as exc:  # the extension is optional
+    _kernel = None
+    _KERNEL_ERROR = exc
+
+SIZES = [0, 1, 2, 5, 8, 17, 32]
+FUNCS = ("update", "stabilize", "random_walk", "predict", "solve_upper", "rank_ratio")
+
+
+@pytest.fixture(params=["c", "py"])
+def K(request):
+    if request.param == "c":
+        if _kernel is None:
+            pytest.skip(f"recursive._kernel is not built ({_KERNEL_ERROR}); "
+                        "only the Python fallback is tested")
+        return _kernel
+    return _givens
+
+
+def test_kernel_is_built_when_required():
+    if os.environ.get("POSTERIORD_REQUIRE_KERNEL") != "1":
+        pytest.skip("POSTERIORD_REQUIRE_KERNEL is not set to 1")
+    assert _kernel is not None, f"recursive._kernel cannot be imported: {_KERNEL_ERROR}"
+
+
+def _tri(rng, n, positive=True):
+    """Well-conditioned upper-triangular factor (diagonal positive unless told)."""
+    R = np.triu(rng.normal(scale=0.4, size=(n, n)), 1)
+    d = rng.uniform(0.5, 2.0, n)
+    if not positive:
+        d *= rng.choice([-1.0, 1.0], n)
+    R[np.diag_indices(n)] = d
+    return R
+
+
+def _tol(*arrays):
+    return 1e-12 * max([1.0] + [float(np.max(np.abs(a))) for a in arrays if np.size(a)])
+
+
+# ------------------------------------------------------------------ update
+@pytest.mark.parametrize("n", SIZES)
+@pytest.mark.parametrize("positive", [True, False])
+def test_update_adds_the_row_to_the_gram_matrix(K, n, positive):
+    rng = np.random.default_rng(100 + n)
+    R0, z0 = _tri(rng, n, positive), rng.normal(size=n)
+    phi, y = rng.normal(size=n), float(rng.normal())
+    R, z, p = R0.copy(), z0.copy(), phi.copy()
+    e = K.update(R, z, p, y)
+    assert isinstance(e, float)
+    # numpy reference: R^T R = R0^T R0 + phi phi^T, R^T z = R0^T z0 + phi y
+    lam = R0.T @ R0 + np.outer(phi, phi)
+    assert_allclose(R.T @ R, lam, atol=_tol(lam))
+    assert_allclose(R.T @ z, R0.T @ z0 + phi * y, atol=_tol(lam, z0))
+    assert np.all(np.tril(R, -1) == 0.0)
+    assert np.all(np.diagonal(R) >= 0.0)
+    assert np.all(p == 0.0)
+    # e^2 is the last diagonal entry of the LAPACK QR (numpy.linalg.qr) of the stack
+    stack = np.block([[R0, z0[:, None]], [phi[None, :], np.array([[y]])]])
+    r = np.linalg.qr(stack, mode="r")
+    assert abs(e) == pytest.approx(abs(r[n, n]), rel=1e-11, abs=1e-12)
+    # and the whole stack is preserved: [R z; 0 e] has the same Gram matrix
+    out = np.block([[R, z[:, None]], [np.zeros((1, n)), np.array([[e]])]])
+    assert_allclose(out.T @ out, stack.T @ stack, atol=_tol(stack.T @ stack))
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 32])
+def test_update_residual_is_standardized_prediction_error(K, n):
+    # Standard identity: e = (y - phi^T m) / sqrt(1 + phi^T V phi), V = (R0^T R0)^{-1},
+    # here with its sign (R0 has a positive diagonal).
+    rng = np.random.default_rng(200 + n)
+    for _ in range(5):
+        R0, z0 = _tri(rng, n), rng.normal(size=n)
+        phi, y = rng.normal(size=n), float(rng.normal(scale=3.0))
+        m = np.linalg.solve(R0, z0)
+        V = np.linalg.inv(R0.T @ R0)
+        expected = (y - phi @ m) / math.sqrt(1.0 + phi @ V @ phi)
+        e = K.update(R0.copy(), z0.copy(), phi.copy(), y)
+        assert e == pytest.approx(expected, rel=1e-11, abs=1e-13)
+
+
+@pytest.mark.parametrize("n", [1, 2, 6, 20])
+def test_update_from_flat_prior_gives_least_squares(K, n):
+    rng = np.random.default_rng(300 + n)
+    N = n + 4
+    X = rng.normal(size=(N, n))
+    Y = X @ rng.normal(size=n) + 0.1 * rng.normal(size=N)
+    R, z = np.zeros((n, n)), np.zeros(n)
+    ss = 0.0
+    for k in range(N):
+        if k < n:
+            # fewer samples than weights: a zero pivot, so not identified yet
+            assert K.rank_ratio(R) == 0.0
+            assert all(math.isnan(v) for v in K.predict(R, z, X[k]))
+        ss += K.update(R, z, X[k].copy(), float(Y[k])) ** 2
+    assert K.rank_ratio(R) > 1e-3
+    m = solve_triangular(R, z)
+    coef, res, _rank, _sv = np.linalg.lstsq(X, Y, rcond=None)  # numpy.linalg.lstsq
+    assert_allclose(m, coef, rtol=1e-10, atol=1e-12)
+    assert ss == pytest.approx(float(res[0]), rel=1e-9)
+
+
+# ------------------------------------------------------------------ stabilize
+@pytest.mark.parametrize("n", SIZES)
+@pytest.mark.parametrize("delta", [0.0, 0.3, 0.9, 1.0])
+def test_stabilize_mixes_information_with_the_prior(K, n, delta):
+    rng = np.random.default_rng(400 + n)
+    R0, z0 = _tri(rng, n, positive=False), rng.normal(size=n)
+    r0 = rng.uniform(0.1, 2.0, n) * rng.choice([-1.0, 1.0], n)
+    r0[::3] = 0.0  # flat prior on some weights
+    zp = r0 * rng.normal(size=n)
+    R, z = R0.copy(), z0.copy()
+    K.stabilize(R, z, r0, zp, delta)
+    # numpy reference: Lambda <- delta Lambda + (1-delta) diag(r0^2), likewise eta
+    lam = delta * (R0.T @ R0) + (1.0 - delta) * np.diag(r0 ** 2)
+    eta = delta * (R0.T @ z0) + (1.0 - delta) * r0 * zp
+    assert_allclose(R.T @ R, lam, atol=_tol(lam))
+    assert_allclose(R.T @ z, eta, atol=_tol(lam, eta))
+    assert np.all(np.tril(R, -1) == 0.0)
+    if delta == 1.0:
+        assert np.array_equal(R, R0) and np.array_equal(z, z0)
+    if delta == 0.0:
+        assert_allclose(R, np.diag(np.abs(r0)), atol=1e-15)
+
+
+def test_stabilize_from_zero_information_and_zero_prior(K):
+    n = 4
+    R, z = np.zeros((n, n)), np.zeros(n)
+    K.stabilize(R, z, np.zeros(n), np.zeros(n), 0.5)
+    assert np.all(R == 0.0) and np.all(z == 0.0)
+    r0 = np.array([1.0, 0.0, 2.0, 0.0])
+    z0 = np.array([0.5, 0.0, -1.0, 0.0])
+    K.stabilize(R, z, r0, z0, 0.75)
+    assert_allclose(R.T @ R, 0.25 * np.diag(r0 ** 2), atol=1e-15)
+    assert_allclose(R.T @ z, 0.25 * r0 * z0, atol=1e-15)
+
+
+# ------------------------------------------------------------------ random_walk
+@pytest.mark.parametrize("n", SIZES + [40])
+@pytest.mark.parametrize("c", [1e-4, 0.3, 50.0])
+def test_random_walk_against_covariance_form(K, n, c):
+    rng = np.random.default_rng(500 + n)
+    R0, z0 = _tri(rng, n, positive=False), rng.normal(size=n)
+    R, z = R0.copy(), z0.copy()
+    K.random_walk(R, z, c)
+    lam = R0.T @ R0
+    # numpy reference: Lambda <- inv(inv(Lambda) + c I), mean unchanged
+    expected = np.linalg.inv(np.linalg.inv(lam) + c * np.eye(n)) if n else lam
+    assert_allclose(R.T @ R, expected, atol=_tol(expected))
+    assert_allclose(np.linalg.solve(R, z) if n else z, np.linalg.solve(R0, z0) if n else z0,
+                    rtol=1e-10, atol=1e-12)
+    assert np.all(np.tril(R, -1) == 0.0)
+    assert np.all(np.diagonal(R) >= 0.0)
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 20])
+def test_random_walk_matches_filterpy_kalman_predict(K, n):
+    rng = np.random.default_rng(600 + n)
+    c = 0.05
+    R, z = _tri(rng, n), rng.normal(size=n)
+    kf = KalmanFilter(dim_x=n, dim_z=1)
+    kf.x = np.linalg.solve(R, z).reshape(n, 1)
+    kf.P = np.linalg.inv(R.T @ R)
+    kf.F = np.eye(n)
+    kf.Q = c * np.eye(n)
+    kf.predict()  # filterpy: x <- F x, P <- F P F^T + Q
+    K.random_walk(R, z, c)
+    Rinv = solve_triangular(R, np.eye(n))
+    assert_allclose(Rinv @ Rinv.T, kf.P, rtol=1e-11, atol=1e-13)
+    assert_allclose(solve_triangular(R, z), kf.x[:, 0], rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("n", [2, 5, 17])
+@pytest.mark.parametrize("kind", ["zero_pivot", "zero_row", "few_samples"])
+def test_random_walk_singular_information_equals_exact_limit(K, n, kind):
+    rng = np.random.default_rng(700 + n)
+    c = 0.7
+    if kind == "few_samples":  # n - 1 samples: rank n - 1 up to rounding
+        R0 = np.linalg.qr(np.vstack([rng.normal(size=(n - 1, n)), np.zeros((1, n))]),
+                          mode="r")
+    else:
+        R0 = _tri(rng, n, positive=False)
+        j = n // 2
+        if kind == "zero_pivot":  # exactly singular, off-diagonal entries still present
+            R0[j, j] = 0.0
+        else:
+            R0[j, :] = 0.0
+    z0 = rng.normal(size=n)
+    R, z = R0.copy(), z0.copy()
+    K.random_walk(R, z, c)
+    assert np.all(np.isfinite(R)) and np.all(np.isfinite(z))
+    lam, eta = R0.T @ R0, R0.T @ z0
+    # exact limit (numpy): Lambda (I + c Lambda)^{-1} and (I + c Lambda)^{-1} eta, which are
+    # the Schur complement w^2 I - w^4 (w^2 I + Lambda)^{-1} etc. and need no inverse of Lambda
+    A = np.eye(n) + c * lam
+    assert_allclose(R.T @ R, lam @ np.linalg.inv(A), atol=1e-12)
+    assert_allclose(R.T @ z, np.linalg.solve(A, eta), atol=1e-12)
+    assert K.rank_ratio(R) < 1e-8
+
+
+def test_random_walk_of_zero_information_stays_zero(K):
+    R, z = np.zeros((6, 6)), np.zeros(6)
+    K.random_walk(R, z, 2.0)
+    assert np.all(R == 0.0) and np.all(z == 0.0)
+
+
+# ------------------------------------------------------------------ predict, solve, rank
+@pytest.mark.parametrize("n", SIZES)
+def test_predict_against_scipy_solve_triangular(K, n):
+    rng = np.random.default_rng(800 + n)
+    R, z, phi = _tri(rng, n, positive=False), rng.normal(size=n), rng.normal(size=n)
+    phi0 = phi.copy()
+    mean, lev = K.predict(R, z, phi)
+    u = solve_triangular(R, phi, trans="T") if n else phi
+    assert mean == pytest.approx(float(u @ z), rel=1e-12, abs=1e-13)
+    assert lev == pytest.approx(float(u @ u), rel=1e-12, abs=1e-13)
+    assert np.array_equal(phi, phi0)
+
+
+def test_predict_with_zero_pivot_is_nan(K):
+    R = np.diag([1.0, 0.0, 2.0])
+    R[0, 1] = 0.5
+    mean, lev = K.predict(R, np.ones(3), np.ones(3))
+    assert math.isnan(mean) and math.isnan(lev)
+
+
+@pytest.mark.parametrize("n", SIZES)
+def test_solve_upper_against_scipy_solve_triangular(K, n):
+    rng = np.random.default_rng(900 + n)
+    R, b = _tri(rng, n, positive=False), rng.normal(size=n)
+    expected = solve_triangular(R, b) if n else b.copy()
+    K.solve_upper(R, b)
+    assert_allclose(b, expected, rtol=1e-12, atol=1e-13)
+
+
+def test_solve_upper_zero_pivot_raises_and_keeps_b(K):
+    R = np.triu(np.ones((3, 3)))
+    R[2, 2] = 0.0
+    b = np.array([1.0, 2.0, 3.0])
+    with pytest.raises(ZeroDivisionError, match=r"R\[2, 2\]"):
+        K.solve_upper(R, b)
+    assert np.array_equal(b, [1.0, 2.0, 3.0])
+
+
+def _rank_ratio_numpy(R):
+    d = np.abs(np.diagonal(R))
+    norms = np.linalg.norm(np.triu(R), axis=0)
+    with np.errstate(invalid="ignore"):
+        r = np.where(norms > 0, d / np.where(norms > 0, norms, 1.0), 0.0)
+    return float(min(1.0, r.min())) if R.size else 1.0
+
+
+@pytest.mark.parametrize("n", SIZES)
+def test_rank_ratio_against_numpy(K, n):
+    rng = np.random.default_rng(1000 + n)
+    for _ in range(3):
+        R = _tri(rng, n, positive=False) * rng.uniform(1e-3, 1e3, n)[None, :]
+        assert K.rank_ratio(R) == pytest.approx(_rank_ratio_numpy(R), rel=1e-13)
+        if n > 1:
+            R[n - 1, n - 1] = 0.0
+            assert K.rank_ratio(R) == 0.0
+            R[:, n - 1] = 0.0  # 0/0 counts as 0
+            assert K.rank_ratio(R) == 0.0
+
+
+def test_rank_ratio_is_scale_invariant_and_robust(K):
+    R = np.array([[1.0, 1.0], [0.0, 1e-6]])
+    base = K.rank_ratio(R)
+    assert base == pytest.approx(1e-6 / math.hypot(1.0, 1e-6), rel=1e-13)
+    R2 = R * np.array([1.0, 1e200])[None, :]  # squares would overflow without scaling
+    assert K.rank_ratio(R2) == pytest.approx(base, rel=1e-13)
+    assert K.rank_ratio(np.eye(3)) == 1.0
+    assert K.rank_ratio(np.zeros((0, 0))) == 1.0
+    assert math.isnan(K.rank_ratio(np.array([[1.0, np.nan], [0.0, 1.0]])))
+
+
+# ------------------------------------------------------------------ layout and agreement
+def test_strict_lower_triangle_is_never_read_or_written(K):
+    rng = np.random.default_rng(1100)
+    n = 6
+    R0, z0, phi = _tri(rng, n), rng.normal(size=n), rng.normal(size=n)
+    r0, zp = rng.uniform(0.5, 1.0, n), rng.normal(size=n)
+    junk = R0.copy()
+    junk[np.tril_indices(n, -1)] = np.nan
+
+    def run(R):
+        z = z0.copy()
+        out = [K.update(R, z, phi.copy(), 0.3)]
+        K.stabilize(R, z, r0, zp, 0.6)
+        K.random_walk(R, z, 0.2)
+        out += list(K.predict(R, z, phi))
+        b = phi.copy()
+        K.solve_upper(R, b)
+        out += list(b) + [K.rank_ratio(R)] + list(z)
+        return np.array(out)
+
+    clean = R0.copy()
+    expected = run(clean)
+    got = run(junk)
+    assert np.array_equal(got, expected)
+    assert np.array_equal(np.triu(junk), np.triu(clean))
+    assert np.all(np.isnan(junk[np.tril_indices(n, -1)]))
+
+
+def test_any_float64_buffer_is_accepted(K):
+    n = 3
+    R = memoryview(bytearray(8 * n * n)).cast("B").cast("d", (n, n))
+    for i in range(n):
+        R[i, i] = 1.0
+    z = array.array("d", [1.0, 2.0, 3.0])
+    phi = array.array("d", [1.0, 0.0, 0.0])
+    e = K.update(R, z, phi, 2.0)
+    Rn = np.asarray(R)
+    assert_allclose(Rn.T @ Rn, np.eye(3) + np.diag([1.0, 0.0, 0.0]), atol=1e-15)
+    assert e == pytest.approx((2.0 - 1.0) / math.sqrt(2.0), rel=1e-14)
+    assert np.asarray(phi).tolist() == [0.0, 0.0, 0.0]
+
+
+def test_c_and_python_agree():
+    if _kernel is None:
+        pytest.skip(f"recursive._kernel is not built ({_KERNEL_ERROR})")
+    rng = np.random.default_rng(1200)
+    for trial in range(40):
+        n = int(rng.choice([1, 2, 4, 8, 16, 17, 32]))
+        R0 = _tri(rng, n, positive=bool(trial % 2))
+        if trial % 5 == 0:
+            R0[rng.integers(n), :] = 0.0  # singular: exercises the zero branches
+        z0, phi = rng.normal(size=n), rng.normal(size=n)
+        r0, zp = rng.uniform(0.0, 2.0, n), rng.normal(size=n)
+        y, delta, c = float(rng.normal()), float(rng.uniform()), float(rng.uniform(0.01, 5))
+        res = {}
+        for name, K in (("c", _kernel), ("py", _givens)):
+            R, z = R0.copy(), z0.copy()
+            e = K.update(R, z, phi.copy(), y)
+            a = (R.copy(), z.copy())
+            K.stabilize(R, z, r0, zp, delta)
+            b = (R.copy(), z.copy())
+            K.random_walk(R, z, c)
+            pr = K.predict(R, z, phi)
+            x = phi.copy()
+            if np.all(np.diagonal(R) != 0.0):
+                K.solve_upper(R, x)
+            res[name] = [np.array([e]), *a, *b, R, z, np.array(pr), x,
+                         np.array([K.rank_ratio(R0)])]
+        for u, v in zip(res["c"], res["py"], strict=True):
+            assert_allclose(u, v, rtol=1e-13, atol=1e-13 * max(1.0, np.max(np.abs(v))))
+
+
+# ------------------------------------------------------------------ bad arguments
+def _good(n=3):
+    R = np.eye(n)
+    return {"R": R, "z": np.ones(n), "phi": np.ones(n), "r0": np.ones(n), "z0": np.ones(n)}
+
+
+_DEFAULT = object()
+
+
+def _call(K, fn, a, scalar=_DEFAULT):
+    if fn == "update":
+        return K.update(a["R"], a["z"], a["phi"], 1.0 if scalar is _DEFAULT else scalar)
+    if fn == "stabilize":
+        return K.stabilize(a["R"], a["z"], a["r0"], a["z0"],
+                           0.5 if scalar is _DEFAULT else scalar)
+    if fn == "random_walk":
+        return K.random_walk(a["R"], a["z"], 0.1 if scalar is _DEFAULT else scalar)
+    if fn == "predict":
+        return K.predict(a["R"], a["z"], a["phi"])
+    if fn == "solve_upper":
+        return K.solve_upper(a["R"], a["z"])
+    return K.rank_ratio(a["R"])
+
+
+_USES = {"update": {"R", "z", "phi"}, "stabilize": {"R", "z", "r0", "z0"},
+         "random_walk": {"R", "z"}, "predict": {"R", "z", "phi"}, "solve_upper": {"R", "z"},
+         "rank_ratio": {"R"}}
+# The array each function checks last: failing on it means the others are already held.
+_LAST = {"update": "phi", "stabilize": "z0", "random_walk": "R", "predict": "phi",
+         "solve_upper": "R", "rank_ratio": "R"}
+_WRITES = {"update": ("R", "z", "phi"), "stabilize": ("R", "z"), "random_walk": ("R", "z"),
+           "predict": (), "solve_upper": ("z",), "rank_ratio": ()}
+
+
+def _bad_cases():
+    f32 = np.eye(3, dtype=np.float32)
+    big_endian = np.eye(3).astype(">f8")
+    strided = np.zeros((3, 6))[:, ::2]
+    fortran = np.asfortranarray(np.triu(np.ones((3, 3))))
+    return [
+        ("R", f32, TypeError, "float64"),
+        ("R", big_endian, TypeError, "float64"),
+        ("R", [[1.0, 0, 0], [0, 1, 0], [0, 0, 1]], TypeError, "float64"),
+        ("R", None, TypeError, "float64"),
+        ("R", b"x" * 72, TypeError, "float64"),
+        ("R", np.ones(9), ValueError, "dimension"),
+        ("R", np.eye(4), ValueError, "shape"),
+        ("R", np.ones((3, 4)), ValueError, "shape"),
+        ("R", strided, ValueError, "contiguous"),
+        ("R", fortran, ValueError, "contiguous"),
+        ("z", np.ones(3, dtype=np.int64), TypeError, "float64"),
+        ("z", np.ones((3, 1)), ValueError, "dimension"),
+        ("z", np.ones(300), ValueError, "256"),
+        ("phi", np.ones(4), ValueError, "shape"),
+        ("phi", np.ones(6)[::2], ValueError, "contiguous"),
+        ("r0", np.ones(2), ValueError, "shape"),
+        ("z0", np.ones((3, 3)), ValueError, "dimension"),
+    ]
+
+
+def _bad_calls():
+    for fn in FUNCS:
+        for i, (key, bad, exc, msg) in enumerate(_bad_cases()):
+            if key not in _USES[fn]:
+                continue
+            if fn == "rank_ratio" and np.shape(bad) == (4, 4):
+                continue  # a 4x4 R is valid on its own for rank_ratio
+            yield pytest.param(fn, key, bad, exc, msg, id=f"{fn}-{key}-{i}")
+
+
+@pytest.mark.parametrize("fn, key, bad, exc, msg", list(_bad_calls()))
+def test_bad_arrays_raise_and_change_nothing(K, fn, key, bad, exc, msg):
+    a = _good()
+    a[key] = bad
+    before = {k: np.array(v, copy=True) for k, v in a.items() if isinstance(v, np.ndarray)}
+    with pytest.raises(exc, match=msg):
+        _call(K, fn, a)
+    for k, v in before.items():
+        assert np.array_equal(a[k], v)
+
+
+@pytest.mark.parametrize("fn", FUNCS)
+def test_read_only_outputs_are_refused_inputs_accepted(K, fn):
+    for key in ("R", "z", "phi", "r0", "z0"):
+        a = _good()
+        a[key].flags.writeable = False
+        if key in _WRITES[fn]:
+            with pytest.raises(ValueError, match="read-only"):
+                _call(K, fn, a)
+        else:
+            _call(K, fn, a)
+
+
+@pytest.mark.parametrize("fn", ["update", "stabilize", "random_walk", "solve_upper"])
+def test_outputs_sharing_memory_are_refused(K, fn):
+    a = _good()
+    buf = np.ones(12)
+    a["R"] = buf[:9].reshape(3, 3)
+    a["z"] = buf[8:11]  # overlaps the last entry of R
+    with pytest.raises(ValueError, match="share memory"):
+        _call(K, fn, a)
+    if fn == "update":
+        a = _good()
+        a["phi"] = a["z"]
+        with pytest.raises(ValueError, match="share memory"):
+            _call(K, fn, a)
+
+
+@pytest.mark.parametrize("fn, value, exc", [
+    ("update", "1.0", TypeError), ("update", None, TypeError),
+    ("stabilize", -0.1, ValueError), ("stabilize", 1.5, ValueError),
+    ("stabilize", float("nan"), ValueError), ("stabilize", "0.5", TypeError),
+    ("random_walk", 0.0, ValueError), ("random_walk", -1.0, ValueError),
+    ("random_walk", float("inf"), ValueError), ("random_walk", float("nan"), ValueError),
+])
+def test_bad_scalars_raise(K, fn, value, exc):
+    a = _good()
+    with pytest.raises(exc, match=("real number" if exc is TypeError else repr(value)[:3])):
+        _call(K, fn, a, scalar=value)
+
+
+def test_wrong_argument_count_raises(K):
+    R, z = np.eye(2), np.ones(2)
+    with pytest.raises(TypeError):
+        K.update(R, z, z.copy())
+    with pytest.raises(TypeError):
+        K.random_walk(R, z)
+    with pytest.raises(TypeError):
+        K.rank_ratio(R, z)
+
+
+@pytest.mark.parametrize("fn", FUNCS)
+def test_buffers_are_released_on_success_and_error(K, fn):
+    # A memoryview cannot be released while a buffer taken from it is still held.
+    n = 3
+    for fail in (False, True):
+        views = {k: memoryview(bytearray(8 * n * (n if k == "R" else 1))).cast("B")
+                 .cast("d", (n, n) if k == "R" else (n,)) for k in ("R", "z", "phi", "r0", "z0")}
+        for i in range(n):
+            views["R"][i, i] = 1.0
+            views["r0"][i] = 1.0
+        a = dict(views)
+        if fail:
+            a[_LAST[fn]] = np.ones(7, dtype=np.float32)
+            with pytest.raises(TypeError) as info:
+                _call(K, fn, a)
+            del info  # drop the traceback (and any frames holding array views)
+        else:
+            _call(K, fn, a)
+        for v in views.values():
+            v.release()
