@@ -6,8 +6,9 @@ precision in units of the noise variance), an information vector ``z`` with
 ``R^T z = eta = Lambda m``, and the noise statistics ``nu`` (degrees of freedom) and ``ss``
 (weighted residual sum of squares). Each policy offers two operations:
 
-``forget(state, prior, dt)``
-    the exact time update applied before a learning step;
+``forget(R, z, nu, ss, prior, dt)``
+    the exact time update applied before a learning step: ``R`` and ``z`` are changed in
+    place, the new ``(nu, ss)`` are returned;
 ``widen(state, prior, phit, u, mean, dt, cache)``
     the predictive mean and leverage ``phi^T V phi`` after a time ``dt`` for a batch of
     rows, each with its own ``dt``, without touching the state. This is vectorized so that
@@ -26,7 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from recursive._linalg import qr_r, solve_upper_t
+from recursive import _linalg
+from recursive._linalg import solve_upper_t
 
 
 @dataclass(frozen=True)
@@ -73,10 +75,12 @@ class Forgetting(ABC):
     """Base class of the forgetting policies."""
 
     kind = "none"
+    #: whether a time update can make an identified posterior unidentified (underflow)
+    may_lose_rank = False
 
     @abstractmethod
     def forget(self, R, z, nu, ss, prior: Prior, dt: float):
-        """Return ``(R, z, nu, ss)`` after a time ``dt``."""
+        """Apply a time ``dt`` to ``R`` and ``z`` in place; return the new ``(nu, ss)``."""
 
     @abstractmethod
     def widen(self, R, z, nu, ss, prior: Prior, phit, u, mean, dt, cache: dict):
@@ -107,6 +111,7 @@ class Exponential(Forgetting):
 
     half_life: float
     kind = "exponential"
+    may_lose_rank = True
 
     def __post_init__(self):
         object.__setattr__(self, "half_life", _check_half_life(self.half_life))
@@ -114,7 +119,9 @@ class Exponential(Forgetting):
     def forget(self, R, z, nu, ss, prior, dt):
         d = float(_delta(self.half_life, dt))
         s = math.sqrt(d)
-        return R * s, z * s, nu * d, ss * d
+        R *= s
+        z *= s
+        return nu * d, ss * d
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
         d = _delta(self.half_life, dt)
@@ -169,22 +176,9 @@ class Stabilized(Forgetting):
 
     def forget(self, R, z, nu, ss, prior, dt):
         d = float(_delta(self.half_life, dt))
-        if d == 1.0:
-            return R, z, nu, ss
-        n = R.shape[0]
-        a = np.zeros((2 * n, n + 1), order="F")
-        s, c = math.sqrt(d), math.sqrt(1.0 - d)
-        a[:n, :n] = R * s
-        a[:n, n] = z * s
-        a[n:, :n] = np.diag(prior.r0 * c)
-        a[n:, n] = prior.z0 * c
-        r = qr_r(a)
-        return (
-            np.ascontiguousarray(r[:n, :n]),
-            r[:n, n].copy(),
-            d * nu + (1.0 - d) * prior.nu0,
-            d * ss + (1.0 - d) * prior.ss0,
-        )
+        if d < 1.0:
+            _linalg.stabilize(R, z, prior.r0, prior.z0, d)
+        return d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
 
     def _pencil(self, R, z, prior, cache):
         if "kappa" not in cache:
@@ -260,18 +254,9 @@ class RandomWalk(Forgetting):
 
     def forget(self, R, z, nu, ss, prior, dt):
         if dt <= 0.0:
-            return R, z, nu, ss
-        n = R.shape[0]
-        rw = 1.0 / math.sqrt(self.q * dt / prior.ref_var)
-        a = np.zeros((2 * n, 2 * n + 1), order="F")
-        idx = np.arange(n)
-        a[idx, idx] = -rw
-        a[idx, n + idx] = rw
-        a[n:, :n] = R
-        a[n:, 2 * n] = z
-        r = qr_r(a)
-        nu, ss = self._noise(nu, ss, float(dt))
-        return np.ascontiguousarray(r[n:2 * n, n:2 * n]), r[n:2 * n, 2 * n].copy(), nu, ss
+            return nu, ss
+        _linalg.random_walk(R, z, self.q * dt / prior.ref_var)
+        return self._noise(nu, ss, float(dt))
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
         # phi^T (V + c I) phi = |u|^2 + c |phi|^2

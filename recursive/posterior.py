@@ -8,7 +8,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from recursive._linalg import full_rank, qr_r, solve_upper, solve_upper_t
+from recursive import _linalg
+from recursive._linalg import full_rank, solve_upper, solve_upper_t
 from recursive.forgetting import Forgetting, Prior, Stabilized, forgetting_from_dict
 
 SCHEMA = 1
@@ -319,7 +320,7 @@ class Posterior:
     # ------------------------------------------------------------------ state
     def reset(self) -> None:
         """Return to the prior (the configuration is kept)."""
-        self._R = np.diag(self._prior.r0)
+        self._R = np.ascontiguousarray(np.diag(self._prior.r0))
         self._z = self._prior.z0.copy()
         self._nu = self._prior.nu0
         self._ss = self._prior.ss0
@@ -329,14 +330,26 @@ class Posterior:
         self._reject_run = 0
         self._refresh()
 
-    def _refresh(self) -> None:
+    def _refresh(self, ident: bool | None = None) -> None:
         self._cache: dict = {}
-        self._ident = self._identified(self._R, self._nu)
-        self._m = solve_upper(self._R, self._z) if self._ident else np.full(self._n, np.nan)
+        self._ident = self._identified(self._R, self._nu) if ident is None else ident
+        self._m_cache = None
 
-    def _identified(self, R, nu) -> bool:
+    @property
+    def _m(self) -> np.ndarray:
+        # the mean is only needed by batch predictions and views: solved on demand
+        if self._m_cache is None:
+            self._m_cache = (solve_upper(self._R, self._z) if self._ident
+                             else np.full(self._n, np.nan))
+        return self._m_cache
+
+    def _identified(self, R, nu, was: bool = False) -> bool:
         if self._noise_std is None and not nu - self._p_flat > 0.0:
             return False
+        # information only grows in an update, and the rank-keeping policies keep the rank
+        # of a time update, so an identified posterior needs no new rank test
+        if was and (self._forgetting is None or not self._forgetting.may_lose_rank):
+            return True
         return full_rank(R)
 
     @property
@@ -501,7 +514,7 @@ class Posterior:
         OutOfOrderError
             If ``t`` is earlier than the last accepted update.
         """
-        phi = np.asarray(phi, dtype=float)
+        phi = np.ascontiguousarray(phi, dtype=float)
         if phi.shape != (self._n,):
             raise ValueError(f"phi must have shape ({self._n},), got {phi.shape}")
         if not np.all(np.isfinite(phi)):
@@ -518,24 +531,25 @@ class Posterior:
             if self._t_last is not None and t < self._t_last:
                 raise OutOfOrderError(t, self._t_last)
             dt = 0.0 if self._t_last is None else t - self._t_last
-        R, z, nu, ss = self._R, self._z, self._nu, self._ss
+        # work on copies: a gated sample must leave the state exactly as it was
+        R, z, nu, ss = self._R.copy(), self._z.copy(), self._nu, self._ss
         if self._forgetting is not None and dt > 0.0:
-            R, z, nu, ss = self._forgetting.forget(R, z, nu, ss, self._prior, dt)
-        ident = self._identified(R, nu)
+            nu, ss = self._forgetting.forget(R, z, nu, ss, self._prior, dt)
+        ident = self._identified(R, nu, self._ident)
         nan = math.nan
-        pm = scale = std = dof = zs = logp = nan
-        innov = nan
+        pm = scale = std = dof = zs = logp = innov = nan
         reason = "not_identified"
         run = self._reject_run
         if ident:
-            u = solve_upper_t(R, phi)
-            pm = float(u @ z)
-            lev = float(u @ u)
-            dof = self.dof if self._noise_std is not None else nu - self._p_flat
-            s2 = self._prior.ref_var if self._noise_std is not None else ss / dof
-            scale = math.sqrt(s2 * (1.0 + lev))
-            std = scale if math.isinf(dof) else (
-                scale * math.sqrt(dof / (dof - 2.0)) if dof > 2 else math.inf)
+            pm, lev = _linalg.predict(R, z, phi)
+            if self._noise_std is not None:
+                dof = math.inf
+                scale = math.sqrt(self._prior.ref_var * (1.0 + lev))
+                std = scale
+            else:
+                dof = nu - self._p_flat
+                scale = math.sqrt(ss / dof * (1.0 + lev))
+                std = scale * math.sqrt(dof / (dof - 2.0)) if dof > 2 else math.inf
             innov = y - pm
             r = innov / scale
             zs = _to_normal(r, dof)
@@ -553,16 +567,8 @@ class Posterior:
                     reason = "gate_open"
                 else:
                     run = 0
-        n = self._n
-        a = np.empty((n + 1, n + 1), order="F")
-        a[:n, :n] = R
-        a[:n, n] = z
-        a[n, :n] = phi
-        a[n, n] = y
-        r = qr_r(a)
-        e = r[n, n]
-        self._R = np.ascontiguousarray(r[:n, :n])
-        self._z = r[:n, n].copy()
+        e = _linalg.update(R, z, phi.copy(), y)
+        self._R, self._z = R, z
         self._nu = nu + 1.0
         self._ss = ss + e * e
         if t is None:
@@ -572,7 +578,7 @@ class Posterior:
             self._t_last = t
         self._n_updates += 1
         self._reject_run = run
-        self._refresh()
+        self._refresh(ident or None)
         return Step(t, y, pm, scale, std, dof, innov, zs, logp, True, reason, run,
                     self._n_updates)
 
@@ -589,14 +595,15 @@ class Posterior:
         if keep == 1.0:
             return
         if keep == 0.0:
-            self._R = np.diag(self._prior.r0)
+            self._R = np.ascontiguousarray(np.diag(self._prior.r0))
             self._z = self._prior.z0.copy()
             self._nu, self._ss = self._prior.nu0, self._prior.ss0
         else:
             # half_life chosen so that one unit of time gives delta = keep
             policy = Stabilized(-1.0 / math.log2(keep))
-            self._R, self._z, self._nu, self._ss = policy.forget(
-                self._R, self._z, self._nu, self._ss, self._prior, 1.0)
+            R, z = self._R.copy(), self._z.copy()
+            self._nu, self._ss = policy.forget(R, z, self._nu, self._ss, self._prior, 1.0)
+            self._R, self._z = R, z
         self._refresh()
 
     # ------------------------------------------------------------------ persistence
@@ -667,7 +674,7 @@ class Posterior:
             if clock not in (None, "time", "samples"):
                 raise ValueError(f"state clock must be None, 'time' or 'samples', got {clock!r}")
             t_last = d["t_last"]
-            p._R, p._z = R, z
+            p._R, p._z = np.ascontiguousarray(R), np.ascontiguousarray(z)
             p._nu, p._ss = float(d["nu"]), float(d["ss"])
             p._t_last = None if t_last is None else float(t_last)
             p._clock = clock
