@@ -56,7 +56,7 @@ def unpack(payload: bytes, max_bytes: int):
     try:
         return msgpack.unpackb(
             payload, raw=False, strict_map_key=False, ext_hook=_refuse_ext,
-            max_buffer_size=max_bytes, max_str_len=max_bytes, max_bin_len=max_bytes,
+            max_str_len=max_bytes, max_bin_len=max_bytes,
             max_array_len=max_bytes, max_map_len=max_bytes, max_ext_len=0)
     except WireError:
         raise
