@@ -591,9 +591,28 @@ class Aligner:
             raise ValueError(f"t={t!r} is not after the previous row at {self._t[-1]!r}")
         self._t.append(t)
         self._x.append(tuple(float(v) for v in x))
-        cutoff = t - self.history_s
-        head = self._head
+        self._trim()
+
+    def push_trusted(self, t: float, x: list) -> None:
+        """`push` without the checks, for callers that validated ``t`` and ``x`` already.
+
+        ``t`` must be a finite float after the newest row and ``x`` a sequence of floats in
+        `tags` order that the caller will not modify.
+        """
+        self._t.append(t)
+        self._x.append(x)
+        self._trim()
+
+    def push_many_trusted(self, ts: list, xs: list) -> None:
+        """Several `push_trusted` rows at once (times increasing)."""
+        self._t.extend(ts)
+        self._x.extend(xs)
+        self._trim()
+
+    def _trim(self) -> None:
         times = self._t
+        cutoff = times[-1] - self.history_s
+        head = self._head
         while times[head] < cutoff:
             head += 1
         head = max(head, len(times) - self.max_rows)

@@ -106,11 +106,34 @@ class ModelRunner:
                 raise Rejected("duplicate", f"second sample at t={t!r}")
         self.last_x_t = t
         self.n_features += 1
-        self.aligner.push(t, row)
+        # a tuple of floats drops out of the cyclic GC's sight, which keeps collections short
+        self.aligner.push_trusted(t, tuple(row))
         if ident is not None:
-            self.ids[ident] = t
-            while len(self.ids) > self.cfg.keep_count:
-                self.ids.popitem(last=False)
+            self._remember_id(ident, t)
+
+    def _remember_id(self, ident, t: float) -> None:
+        self.ids[ident] = t
+        while len(self.ids) > self.cfg.keep_count:
+            self.ids.popitem(last=False)
+
+    def add_block(self, ts: list, X: np.ndarray, ids: list | None, increasing: bool) -> bool:
+        """Buffer a block of samples at once if its times are increasing and new.
+
+        Returns False (nothing done) otherwise; the caller then adds the rows one by one so
+        that each bad row is rejected on its own.
+        """
+        if not increasing:
+            return False
+        if self.last_x_t is not None and ts[0] <= self.last_x_t:
+            return False
+        self.last_x_t = ts[-1]
+        self.n_features += len(ts)
+        self.aligner.push_many_trusted(ts, list(X))
+        if ids is not None:
+            for ident, t in zip(ids, ts, strict=True):
+                if ident is not None:
+                    self._remember_id(ident, t)
+        return True
 
     def status_at(self, t: float) -> str:
         if not self.post.identified:

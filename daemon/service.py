@@ -8,6 +8,7 @@ context. Signal handlers only queue an event and wake the poller; the loop acts 
 
 from __future__ import annotations
 
+import gc
 import logging
 import math
 import signal
@@ -16,6 +17,7 @@ import threading
 import time
 from collections import Counter, deque
 
+import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry, start_http_server
 
@@ -146,6 +148,8 @@ class Service:
             self.open()
         log.info("ready: %d model(s), publishing on %s, control on %s", len(self.runners),
                  self.publish_endpoint, self.control_endpoint)
+        # start-up objects never become garbage: keep them out of every later collection
+        gc.freeze()
         self.ready.set()
         try:
             while not self._stop:
@@ -215,6 +219,13 @@ class Service:
         elif seg[4] != msg.block:
             self._flush(runner, seg)
             seg[4] = msg.block
+        if msg.block and not msg.has_y and isinstance(msg.x, np.ndarray) and runner.add_block(
+                msg.t, msg.x, msg.ids if msg.has_id else None, msg.increasing):
+            # the common block: features only, in order; predicted in one call
+            self._flush(runner, seg)
+            self._publish(runner, msg.t, msg.ids, runner.predict(msg.t, msg.x, msg.ids),
+                          True, msg.has_id)
+            return
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
             if row is not None:
                 try:
@@ -236,26 +247,31 @@ class Service:
         ts, rows, ids = seg[0], seg[1], seg[2]
         if not ts:
             return
-        batch = runner.predict(ts, rows, ids)
+        self._publish(runner, ts, ids, runner.predict(ts, rows, ids), seg[4],
+                      any(i is not None for i in ids))
+        seg[0], seg[1], seg[2] = [], [], []
+
+    def _publish(self, runner: ModelRunner, ts: list, ids: list, batch, block: bool,
+                 has_id: bool) -> None:
         topic = b"pred/" + runner.name.encode()
         level = runner.cfg.level
         mean, std, var = batch.mean.tolist(), batch.std.tolist(), batch.var.tolist()
         lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
         send = self.pub.send_multipart
-        if seg[4]:
+        if block:
             body = {"t": ts, "mean": mean, "std": std, "var": var, "lo": lo, "hi": hi,
                     "level": level, "dof": dof, "status": batch.status}
-            if any(i is not None for i in ids):
+            if has_id:
                 body["id"] = ids
             send([topic, wire.packb(body)])
         else:
+            status = batch.status
             for i, t in enumerate(ts):
                 body = {"t": t, "mean": mean[i], "std": std[i], "var": var[i], "lo": lo[i],
-                        "hi": hi[i], "level": level, "dof": dof[i], "status": batch.status[i]}
-                if ids[i] is not None:
+                        "hi": hi[i], "level": level, "dof": dof[i], "status": status[i]}
+                if has_id and ids[i] is not None:
                     body["id"] = ids[i]
                 send([topic, wire.packb(body)])
-        seg[0], seg[1], seg[2] = [], [], []
 
     def _learn(self, runner: ModelRunner, t: float, y: float, ident) -> None:
         try:

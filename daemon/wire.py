@@ -10,6 +10,7 @@ import math
 from dataclasses import dataclass
 
 import msgpack
+import numpy as np
 
 # Rejection reasons: a bounded set, so they can be metric label values.
 REASONS = (
@@ -80,7 +81,9 @@ class Feed:
     """One decoded feed message, normalized to blocks of rows.
 
     ``x`` is a list of rows (each a list of floats in input order, or None where the row
-    carries no features) and ``y`` a list of floats or None, both as long as ``t``.
+    carries no features), or for a block with features a (k, n) float array; ``y`` is a
+    list of floats or None; all as long as ``t``. In a block, booleans in ``x`` count as
+    0 and 1 (they are numbers to the array conversion used there).
     """
 
     model: str
@@ -90,6 +93,9 @@ class Feed:
     ids: list
     seq: int | None
     block: bool
+    has_y: bool = True
+    has_id: bool = True
+    increasing: bool = True
 
 
 def _num(v) -> float | None:
@@ -119,11 +125,19 @@ def _id(v):
                               f"characters, got {v!r:.60}")
 
 
+_FLOATS = {float}
+
+
 def _row(v, tags: tuple[str, ...], index: dict[str, int]) -> list[float]:
     n = len(tags)
     if isinstance(v, list | tuple):
         if len(v) != n:
             raise WireError("bad_x", f"x has {len(v)} values, expected {n} ({', '.join(tags)})")
+        if set(map(type, v)) == _FLOATS:
+            # fast path: all floats; a finite sum means every value is finite
+            total = sum(v)
+            if total - total == 0.0:
+                return v
         row = [_num(e) for e in v]
         if None in row:
             bad = tags[row.index(None)]
@@ -197,14 +211,23 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
         tt = _time(t)
     row = None if x is None else _row(x, tags, index)
     yy = None if y is None else _y(y)
-    return Feed(name, [tt], [row], [yy], [ident], seq, False)
+    return Feed(name, [tt], [row], [yy], [ident], seq, False, has_y=yy is not None,
+                has_id=ident is not None)
 
 
 def _decode_block(name, msg, t, tags, index, seq) -> Feed:
     k = len(t)
     if k == 0 or k > MAX_BLOCK:
         raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k}")
-    ts = [_time(v) for v in t]
+    try:
+        tarr = np.array(t, dtype=float)
+    except (TypeError, ValueError):
+        tarr = None
+    if tarr is not None and tarr.shape == (k,) and np.isfinite(tarr).all():
+        ts = tarr.tolist()
+    else:
+        ts = [_time(v) for v in t]
+        tarr = np.array(ts)
     x = msg.get("x")
     y = msg.get("y")
     ids = msg.get("id")
@@ -216,10 +239,26 @@ def _decode_block(name, msg, t, tags, index, seq) -> Feed:
         raise WireError("bad_block", f"id must be a list of {k} values")
     if x is None and y is None:
         raise WireError("bad_block", "a block needs x, y or both")
-    rows = [None] * k if x is None else [_row(r, tags, index) for r in x]
+    rows = [None] * k if x is None else _block_rows(x, k, tags, index)
     ys = [None] * k if y is None else [None if v is None else _y(v) for v in y]
     idl = [None] * k if ids is None else [_id(v) for v in ids]
-    return Feed(name, ts, rows, ys, idl, seq, True)
+    increasing = k == 1 or bool(np.all(tarr[1:] > tarr[:-1]))
+    return Feed(name, ts, rows, ys, idl, seq, True, has_y=y is not None,
+                has_id=ids is not None, increasing=increasing)
+
+
+def _block_rows(x: list, k: int, tags, index):
+    """Rows of a block as a (k, n) float array, or a list of rows on the careful path."""
+    n = len(tags)
+    try:
+        arr = np.array(x, dtype=float)
+    except (TypeError, ValueError):
+        arr = None
+    if arr is not None and arr.shape == (k, n) and np.isfinite(arr).all():
+        return arr
+    # ragged, dict rows, non-numbers or non-finite values: find and name the culprit
+    rows = [_row(r, tags, index) for r in x]
+    return np.array(rows, dtype=float)
 
 
 # ------------------------------------------------------------------ control

@@ -501,6 +501,12 @@ class Polynomial(Basis):
 
     def _evaluate(self, X: np.ndarray) -> np.ndarray:
         U = ((X - self._lo) - (self._hi - X)) / self._width if self.scale else X
+        if self.degree == 1:
+            # every family has p_1(u) = u and the terms are 1, u_1, ..., u_d in order
+            out = np.empty((X.shape[0], self.n_features), dtype=np.float64)
+            out[:, 0] = 1.0
+            out[:, 1:] = U
+            return out
         tab = self._tables(U)
         out = np.ones((X.shape[0], self.n_features), dtype=np.float64)
         for i, cols, powers in self._plan:

@@ -174,8 +174,27 @@ def _check_level(level) -> float:
 
 
 def _quantile(dof, p):
-    """Standard-normal or Student-t quantile, elementwise over ``dof``."""
+    """Standard-normal or Student-t quantile, elementwise over ``dof``.
+
+    A batch predicted between two lab results has degrees of freedom that differ only in
+    far decimals (forgetting moves them slowly); the quantile is then interpolated in
+    ``1/dof`` through three exact values, which agrees with the exact inverse to about
+    1e-13 relative and saves an iterative inversion per row.
+    """
     dof = np.asarray(dof, float)
+    if dof.ndim == 1 and dof.size > 8:
+        lo, hi = dof.min(), dof.max()
+        if lo >= 1.0 and np.isfinite(hi) and hi - lo <= 1e-4 * lo:
+            if hi == lo:
+                return np.full(dof.shape, float(special.stdtrit(lo, p)))
+            x0, x2 = 1.0 / hi, 1.0 / lo
+            x1 = 0.5 * (x0 + x2)
+            q0, q1, q2 = special.stdtrit(np.array([hi, 1.0 / x1, lo]), p)
+            x = 1.0 / dof
+            h = x1 - x0
+            s = (x - x1) / h
+            # quadratic Lagrange interpolation on the equally spaced nodes x0, x1, x2
+            return q1 + s * (q2 - q0) / 2.0 + s * s * (q2 - 2.0 * q1 + q0) / 2.0
     with np.errstate(invalid="ignore"):
         qt = special.stdtrit(np.where(np.isfinite(dof) & (dof > 0), dof, 1.0), p)
     return np.where(np.isinf(dof), special.ndtri(p), np.where(dof > 0, qt, np.nan))

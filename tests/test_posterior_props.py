@@ -170,8 +170,23 @@ def test_bad_arguments_raise_value_error_with_the_value():
         Posterior.from_state(state)
 
 
+def test_batch_quantile_interpolation_matches_scipy_stdtrit():
+    """The interpolated Student-t quantile of a batch equals scipy.special.stdtrit."""
+    from scipy import special
+
+    from recursive.posterior import _quantile
+
+    rng = np.random.default_rng(5)
+    for base in (1.5, 4.0, 37.0, 2e3, 1e6):
+        dof = base * (1 + 1e-4 * rng.random(100))
+        for p in (0.55, 0.975, 0.9995):
+            np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p), rtol=1e-12)
+    wide = np.linspace(2.0, 50.0, 40)  # too spread for interpolation: exact path
+    np.testing.assert_allclose(_quantile(wide, 0.975), special.stdtrit(wide, 0.975), rtol=1e-14)
+
+
 def test_recursive_imports_no_daemon_dependency():
-    code = ("import sys, recursive, recursive.basis, recursive.forgetting\n"
+    code = ("import sys, recursive, recursive.basis, recursive.forgetting, recursive.detect\n"
             "bad = {'zmq', 'msgpack', 'prometheus_client', 'daemon'} & set(sys.modules)\n"
             "print(sorted(bad))\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
