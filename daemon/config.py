@@ -425,6 +425,8 @@ GT0 = _Check("> 0", lambda v: v > 0)
 GE0 = _Check(">= 0", lambda v: v >= 0)
 GE1 = _Check(">= 1", lambda v: v >= 1)
 OPEN01 = _Check("in (0, 1)", lambda v: 0 < v < 1)
+GT1 = _Check("> 1", lambda v: v > 1)
+UNIT01 = _Check("in [0, 1]", lambda v: 0 <= v <= 1)
 
 
 # ---------------------------------------------------------------------------------- the table
@@ -543,6 +545,10 @@ SECTIONS: tuple[Section, ...] = (
     Section("model.lab", "[model.lab]",
             "Matching late lab results with the input readings of the time the sample was "
             "drawn, and the stale status."),
+    Section("model.alerts", "[model.alerts]",
+            "Drift detectors and the trust state (normal / caution / untrusted) published on "
+            "`alert/<model>`. Detectors on lab results work on the standardized residual z; "
+            "those on predictions on the predictive std and the inputs."),
 )
 
 _day = 86400.0
@@ -659,8 +665,66 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("model.lab", "tolerance", "tolerance", DURATION, 120.0,
             "Largest gap between a lab sample time and the input row matched with it.", GE0),
     Setting("model.lab", "stale_after", "stale_after", DURATION, 12 * _hour,
-            'Predictions are marked "stale" when no lab result was accepted for this long.',
+            'Predictions are marked "stale" when no lab result was accepted for this long '
+            "(also the staleness alert, reason `stale`).", GT0),
+    # [model.alerts]
+    Setting("model.alerts", "enabled", "alerts", BOOLEAN, True,
+            "Run the detectors and the trust state; false publishes no alerts."),
+    Setting("model.alerts", "cusum_k", "cusum_k", NUMBER, 0.5,
+            "Reference value k of the two-sided tabular CUSUM on z (mean shift), in units "
+            "of z.", GT0),
+    Setting("model.alerts", "cusum_h", "cusum_h", NUMBER, 5.0,
+            "Decision interval h of the mean-shift CUSUM (reason `mean_shift`, untrusted).",
             GT0),
+    Setting("model.alerts", "head_start", "head_start", NUMBER, 0.0,
+            "Fast-initial-response head start of the CUSUM, in [0, h).", GE0),
+    Setting("model.alerts", "spread_sigma", "spread_sigma", NUMBER, 1.5,
+            "Standard deviation of z the spread CUSUM is tuned to detect (reason `spread`, "
+            "caution).", GT1),
+    Setting("model.alerts", "spread_h", "spread_h", NUMBER, 5.0,
+            "Decision interval of the spread CUSUM.", GT0),
+    Setting("model.alerts", "hold", "hold", INTEGER, 5,
+            "Lab results during which a CUSUM signal stays an active reason.", GE1),
+    Setting("model.alerts", "calibration_half_life", "calibration_half_life", NUMBER, 50.0,
+            "Half-life, in lab results, of the weighted interval coverage, log score and "
+            "CRPS.", GT0),
+    Setting("model.alerts", "coverage_min", "coverage_min", NUMBER, 0.8,
+            "Weighted coverage of the interval below which the model is `miscalibrated` "
+            "(caution); judged after 20 lab results.", UNIT01),
+    Setting("model.alerts", "std_limit", "std_limit", NUMBER, None,
+            "Predictive std above which the model is untrusted (reason `uncertainty`), in "
+            "the target's units; not set: no absolute limit.", GT0),
+    Setting("model.alerts", "std_ratio", "std_ratio", NUMBER, 3.0,
+            "Predictive std over its own typical value above which the model is in caution "
+            "(reason `uncertainty_ratio`); 0 disables.", GE0),
+    Setting("model.alerts", "std_half_life", "std_half_life", NUMBER, 50.0,
+            "Half-life, in lab results, of the typical predictive std (taken at lab times).",
+            GT0),
+    Setting("model.alerts", "leverage_limit", "leverage_limit", NUMBER, 1.0,
+            "Leverage phi'V phi (weight uncertainty in units of the noise variance) above "
+            "which the inputs are an extrapolation (reason `extrapolation`, caution); 0 "
+            "disables.", GE0),
+    Setting("model.alerts", "region_limit", "region_limit", NUMBER, 5.0,
+            "Mahalanobis distance of the inputs from those the model learned on above which "
+            "they are outside the learned region (reason `outside_region`, caution); 0 "
+            "disables.", GE0),
+    Setting("model.alerts", "region_half_life", "region_half_life", NUMBER, 200.0,
+            "Half-life, in lab results, of the learned-region mean and covariance.", GT0),
+    Setting("model.alerts", "drift_window", "drift_window", DURATION, 7 * _day,
+            "Window over which the movement of the weight posterior is measured.", GT0),
+    Setting("model.alerts", "drift_limit", "drift_limit", NUMBER, 6.0,
+            "Mahalanobis distance of the weight change over the window, in the older "
+            "posterior's metric, above which the model is drifting (reason `param_drift`, "
+            "caution); 0 disables.", GE0),
+    Setting("model.alerts", "clear_count", "clear_count", INTEGER, 3,
+            "Evaluations a reason must be absent before it clears (hysteresis).", GE1),
+    Setting("model.alerts", "clear_time", "clear_time", DURATION, _hour,
+            "Time a reason must also be absent before it clears.", GE0),
+    Setting("model.alerts", "auto_flatten", "auto_flatten", BOOLEAN, False,
+            "On a mean-shift signal, apply one extra forgetting step toward the prior so the "
+            "model re-learns quickly, and publish that it did.", learning=True),
+    Setting("model.alerts", "flatten_keep", "flatten_keep", NUMBER, 0.2,
+            "Share of the learned information kept by that step.", UNIT01, learning=True),
 )
 
 # Rules that involve more than one key; checked in _finish_model / _finish_daemon.
@@ -675,6 +739,7 @@ RULES: tuple[str, ...] = (
     "`forgetting.q` is required with `policy = \"random_walk\"` and not allowed otherwise; "
     "`forgetting.half_life` is not allowed with `policy = \"none\"`.",
     "`gate.release` is not allowed with `gate.k = 0`.",
+    "`alerts.head_start` < `alerts.cusum_h`.",
 )
 
 _BY_SECTION: dict[str, tuple[Setting, ...]] = {
@@ -753,6 +818,27 @@ class ModelConfig:
     keep_count: int = _default("model.lab", "keep_count")
     tolerance: float = _default("model.lab", "tolerance")
     stale_after: float = _default("model.lab", "stale_after")
+    alerts: bool = _default("model.alerts", "enabled")
+    cusum_k: float = _default("model.alerts", "cusum_k")
+    cusum_h: float = _default("model.alerts", "cusum_h")
+    head_start: float = _default("model.alerts", "head_start")
+    spread_sigma: float = _default("model.alerts", "spread_sigma")
+    spread_h: float = _default("model.alerts", "spread_h")
+    hold: int = _default("model.alerts", "hold")
+    calibration_half_life: float = _default("model.alerts", "calibration_half_life")
+    coverage_min: float = _default("model.alerts", "coverage_min")
+    std_limit: float | None = _default("model.alerts", "std_limit")
+    std_ratio: float = _default("model.alerts", "std_ratio")
+    std_half_life: float = _default("model.alerts", "std_half_life")
+    leverage_limit: float = _default("model.alerts", "leverage_limit")
+    region_limit: float = _default("model.alerts", "region_limit")
+    region_half_life: float = _default("model.alerts", "region_half_life")
+    drift_window: float = _default("model.alerts", "drift_window")
+    drift_limit: float = _default("model.alerts", "drift_limit")
+    clear_count: int = _default("model.alerts", "clear_count")
+    clear_time: float = _default("model.alerts", "clear_time")
+    auto_flatten: bool = _default("model.alerts", "auto_flatten")
+    flatten_keep: float = _default("model.alerts", "flatten_keep")
 
     def build_basis(self) -> Basis:
         """The basis: :class:`Identity`, or :class:`Polynomial` on inputs scaled to [-1, 1]."""
@@ -988,6 +1074,9 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
         if "gate_release" in present:
             raise not_allowed("gate_release", "gate.k = 0 turns the gate off")
         values["gate"] = None
+    if values["head_start"] >= values["cusum_h"]:
+        raise ctx.error("alerts.head_start", f"a number in [0, cusum_h = {values['cusum_h']:g})",
+                        _show(_given(raw, "head_start")))
     model = ModelConfig(**values)
     if model.prior_mean is not None:
         names = model.build_basis().names

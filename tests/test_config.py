@@ -130,6 +130,27 @@ MODEL_DEFAULTS = {
     "keep_count": 5000,
     "tolerance": 120.0,
     "stale_after": 12 * HOUR,
+    "alerts": True,
+    "cusum_k": 0.5,
+    "cusum_h": 5.0,
+    "head_start": 0.0,
+    "spread_sigma": 1.5,
+    "spread_h": 5.0,
+    "hold": 5,
+    "calibration_half_life": 50.0,
+    "coverage_min": 0.8,
+    "std_limit": None,
+    "std_ratio": 3.0,
+    "std_half_life": 50.0,
+    "leverage_limit": 1.0,
+    "region_limit": 5.0,
+    "region_half_life": 200.0,
+    "drift_window": 7 * DAY,
+    "drift_limit": 6.0,
+    "clear_count": 3,
+    "clear_time": HOUR,
+    "auto_flatten": False,
+    "flatten_keep": 0.2,
 }
 
 
@@ -318,7 +339,8 @@ def test_every_setting_rejects_wrong_type(row):
     assert f"expected {e.expected}, got {{bad = 1}}" in str(e)
 
 
-_VIOLATING = {"> 0": "0", ">= 0": "-1", ">= 1": "0", "in (0, 1)": "1.0"}
+_VIOLATING = {"> 0": "0", ">= 0": "-1", ">= 1": "0", "in (0, 1)": "1.0", "> 1": "1.0",
+              "in [0, 1]": "1.5"}
 
 
 @pytest.mark.parametrize("row", [r for r in SETTINGS if r.check is not None],
@@ -806,3 +828,16 @@ def test_docs_list_every_setting_and_section():
         assert f"## `{sec.noun if sec.noun.startswith('[') else sec.name}`" in text
     for row in SETTINGS:
         assert f"| `{row.key}` |" in text, row.key
+
+
+def test_alerts_head_start_must_be_below_the_decision_interval():
+    e = _err(MINIMAL + "[model.alerts]\ncusum_h = 4.0\nhead_start = 4.0\n")
+    assert e.key == "model[0].alerts.head_start"
+    assert e.expected == "a number in [0, cusum_h = 4)"
+    assert e.got == "4.0"
+    m = loads(MINIMAL + "[model.alerts]\ncusum_h = 4.0\nhead_start = 2.0\nauto_flatten = true\n")
+    assert (m.models[0].cusum_h, m.models[0].head_start) == (4.0, 2.0)
+    # the automatic response changes what is learned; a detector limit does not
+    base = loads(MINIMAL).models[0].fingerprint()
+    assert m.models[0].fingerprint() != base
+    assert loads(MINIMAL + "[model.alerts]\ncusum_h = 4.0\n").models[0].fingerprint() == base
