@@ -1,0 +1,1051 @@
+"""Durable state folder: a write-ahead log (WAL) of records plus periodic checkpoints.
+
+No service logic lives here: records and checkpoint bodies are dicts of plain data handed in by
+the caller and handed back, unchanged, by :meth:`StateDir.recover`. Encoding goes through
+:mod:`daemon.wire` (``wire.pack`` / ``wire.unpack``). Not thread-safe: one loop owns a
+:class:`StateDir`.
+
+Folder layout
+-------------
+::
+
+    LOCK                             flock()ed by the owning process, which writes its pid there
+    wal-<first seq>.log              WAL segments (sequence numbers written with 16 digits)
+    checkpoint-<seq>.ckpt            checkpoints: the newest and the previous one
+    checkpoint-<seq>.ckpt.tmp        a checkpoint being written; removed by the next recovery
+    <file>.corrupt-<n>               a file found corrupt and moved aside
+    wal-<seq>.log.corrupt-<n>.accepted   a moved-aside segment whose loss was accepted
+    wal-<seq>.log.dropped-<n>        a readable segment after a corrupt one, dropped with it
+
+The folder is created with mode 0700 and every file with mode 0600. A folder that group or
+others may write to is refused; one they may read is accepted with a note.
+
+Formats (all integers little-endian u32)
+----------------------------------------
+Record: ``[length][crc32 of payload][payload]`` with
+``payload = wire.pack({"seq": n, **record})``; ``"seq"`` is therefore the first key of the
+payload map, a property the reader uses to find record starts after damage.
+
+Checkpoint file: ``b"PSDCKPT1" [length][crc32 of payload][payload]`` with
+``payload = wire.pack({"seq": n, "body": body})`` and nothing after it. The magic carries the
+format version.
+
+Sequence numbers start at 1 and are contiguous. A checkpoint with sequence number ``n``
+covers records ``1..n`` (``n`` is the last record appended before it; 0 when there was none).
+
+Durability
+----------
+``fsync="always"``: :meth:`StateDir.append` returns only after the record is fsynced.
+``fsync="group"``: records are written to the file at once (a crash of the process loses
+nothing) but fsynced by :meth:`StateDir.maybe_sync`, at most once per ``group_ms``; after a power
+loss up to ``group_ms`` worth of records may be missing. A segment is fsynced before the next one
+is created, the folder is fsynced after a file is created or renamed, and a checkpoint is made
+durable by writing a temporary file, fsyncing it, renaming it over its final name and fsyncing
+the folder. Any failed write or fsync raises :class:`DurabilityError` and the
+:class:`StateDir` refuses every later write: after a failed fsync the state of the page cache is
+unknown, so retrying and carrying on could silently lose records.
+
+Torn tail versus corruption
+---------------------------
+A record is bad when its header is incomplete, its length is zero or too large, its payload is
+incomplete, its CRC does not match, its payload does not decode to a map with an integer
+``"seq"``, or its ``"seq"`` is not the next one. When a bad record is found the reader looks for
+any later good record in the same segment (a position whose header, CRC and payload are valid
+and whose ``"seq"`` is not below the expected one). None found, in the last segment: a torn
+tail, as left by a crash in the middle of a write; it is reported and the file is truncated to
+the end of the last good record. Otherwise (good records after it, or any bad record in a
+segment that is not the last, or a sequence number missing between segments) the segment is
+corrupt. With ``fsync="group"`` a power loss can in rare cases leave damage before records that
+did reach the disk; that too reads as corruption.
+
+Recovery policies
+-----------------
+``"refuse"``: a corrupt segment is moved aside (``.corrupt-<n>``) and :class:`CorruptionError`
+is raised. As long as such a moved-aside segment is there, every later recovery with
+``"refuse"`` raises again, so that a restart cannot silently run on without those records.
+
+``"checkpoint"``: the corrupt segment is moved aside with the ``.accepted`` suffix, the
+segments after it are moved aside as ``.dropped-<n>``, and the records from that segment onwards
+are dropped: recovery continues from the checkpoint and the intact segments before the corrupt
+one. Earlier moved-aside segments still waiting for a decision are accepted as well.
+:attr:`Recovery.dropped_after_seq` and the notes say what happened. The records of the corrupt
+segment that precede the damage are dropped too: the segment has been moved aside, so keeping
+them would leave a hole in the WAL for the next recovery. The caller should write a checkpoint
+soon after such a recovery.
+
+Checkpoints: the newest one that reads back intact is used. A corrupt one is moved aside and
+the previous one is used instead (:attr:`Recovery.fallback_checkpoint`); one that cannot be read
+at all (an ``OSError``) is left in place and skipped.
+
+Retention rule
+--------------
+After a new checkpoint is durable, every checkpoint file other than it and the previous one is
+deleted. A WAL segment is deleted only when all its records are covered by the *previous*
+checkpoint, the one recovery falls back to if the newest cannot be read: segment ``i`` is
+deleted when a later segment exists and starts at or before ``previous_seq + 1``. With a single
+checkpoint (no previous one) no segment is deleted. The last segment is never deleted. Deleting
+is tidying only: a file that survives a crash or fails to unlink is removed at a later
+checkpoint and is harmless meanwhile. A checkpoint written with no record appended since the
+newest one replaces that file (same name); the previous one stays the fallback.
+"""
+
+from __future__ import annotations
+
+import errno
+import fcntl
+import math
+import os
+import re
+import stat
+import struct
+import time
+import zlib
+from dataclasses import dataclass
+
+from daemon import wire
+
+__all__ = [
+    "CHECKPOINT_MAGIC",
+    "MAX_RECORD_BYTES",
+    "POLICIES",
+    "CorruptionError",
+    "DurabilityError",
+    "LockedError",
+    "OsFs",
+    "Recovery",
+    "SegmentScan",
+    "StateDir",
+    "StoreError",
+    "decode_checkpoint",
+    "encode_checkpoint",
+    "encode_record",
+    "inspect",
+    "scan_segment",
+]
+
+CHECKPOINT_MAGIC = b"PSDCKPT1"
+MAX_RECORD_BYTES = 64 * 1024 * 1024
+DEFAULT_SEGMENT_BYTES = 16 * 1024 * 1024
+POLICIES = ("refuse", "checkpoint")
+FSYNC_MODES = ("group", "always")
+
+_HEADER = struct.Struct("<II")
+_SEQ_KEY = b"\xa3seq"  # msgpack fixstr "seq", the first key of every record payload
+# map header bytes that may precede it: fixmap (1 byte), map16 (3 bytes), map32 (5 bytes)
+_MAP_HEADERS = ((1, range(0x80, 0x90)), (3, (0xDE,)), (5, (0xDF,)))
+
+_SEG_RE = re.compile(r"wal-(\d{16})\.log")
+_CKPT_RE = re.compile(r"checkpoint-(\d{16})\.ckpt")
+_TMP_RE = re.compile(r"checkpoint-(\d{16})\.ckpt\.tmp")
+_ASIDE_RE = re.compile(r"(?P<base>.+)\.(?P<kind>corrupt|dropped)-(?P<n>\d+)(?P<acc>\.accepted)?")
+LOCK_NAME = "LOCK"
+
+
+# ------------------------------------------------------------------ errors
+class StoreError(Exception):
+    """Something is wrong with the state folder."""
+
+
+class LockedError(StoreError):
+    """Another open file description holds the folder's lock."""
+
+    def __init__(self, path: str, holder_pid: int | None):
+        who = f"process {holder_pid}" if holder_pid is not None else "another process (pid unknown)"
+        super().__init__(f"state folder {path} is locked by {who}")
+        self.path = path
+        self.holder_pid = holder_pid
+
+
+class CorruptionError(StoreError):
+    """A bad record with good ones after it (or missing records) in a WAL segment."""
+
+    def __init__(self, message: str, segment: str, offset: int | None,
+                 moved_to: str | None = None):
+        super().__init__(message)
+        self.segment = segment
+        self.offset = offset
+        self.moved_to = moved_to
+
+
+class DurabilityError(StoreError):
+    """A write or fsync failed; the caller must stop (the folder refuses further writes)."""
+
+
+# ------------------------------------------------------------------ file system hook
+class OsFs:
+    """The file system calls that change the folder; tests pass a subclass that fails on cue."""
+
+    def open(self, path: str, flags: int, mode: int = 0o600) -> int:
+        return os.open(path, flags, mode)
+
+    def write(self, fd: int, data) -> int:
+        return os.write(fd, data)
+
+    def fsync(self, fd: int) -> None:
+        os.fsync(fd)
+
+    def close(self, fd: int) -> None:
+        os.close(fd)
+
+    def truncate(self, fd: int, length: int) -> None:
+        os.ftruncate(fd, length)
+
+    def rename(self, src: str, dst: str) -> None:
+        os.rename(src, dst)
+
+    def unlink(self, path: str) -> None:
+        os.unlink(path)
+
+    def mkdir(self, path: str, mode: int) -> None:
+        os.mkdir(path, mode)
+
+
+# ------------------------------------------------------------------ formats
+def _pack(obj, what: str) -> bytes:
+    try:
+        return wire.pack(obj)
+    except (TypeError, ValueError, OverflowError) as exc:
+        raise ValueError(f"{what} is not plain data: {exc}") from None
+
+
+def encode_record(seq: int, record: dict) -> bytes:
+    """The bytes of one framed WAL record."""
+    if not isinstance(record, dict):
+        raise ValueError(f"a record must be a dict, got {type(record).__name__}")
+    if "seq" in record:
+        raise ValueError(f"a record may not carry its own 'seq' (got {record['seq']!r:.60})")
+    payload = _pack({"seq": seq, **record}, "record")
+    if len(payload) > MAX_RECORD_BYTES:
+        raise ValueError(f"record of {len(payload)} bytes is over the {MAX_RECORD_BYTES} limit")
+    return _HEADER.pack(len(payload), zlib.crc32(payload)) + payload
+
+
+def encode_checkpoint(seq: int, body: dict) -> bytes:
+    """The bytes of one checkpoint file."""
+    if not isinstance(body, dict):
+        raise ValueError(f"a checkpoint body must be a dict, got {type(body).__name__}")
+    payload = _pack({"seq": seq, "body": body}, "checkpoint body")
+    if len(payload) > 0xFFFFFFFF:
+        raise ValueError(f"checkpoint of {len(payload)} bytes does not fit a u32 length")
+    return CHECKPOINT_MAGIC + _HEADER.pack(len(payload), zlib.crc32(payload)) + payload
+
+
+def decode_checkpoint(data: bytes) -> tuple[int, dict]:
+    """``(seq, body)`` of a checkpoint file's bytes; raises :class:`StoreError` if damaged."""
+    data = bytes(data)
+    head = len(CHECKPOINT_MAGIC) + _HEADER.size
+    if len(data) < head:
+        raise StoreError(f"checkpoint too short: {len(data)} bytes")
+    if data[:len(CHECKPOINT_MAGIC)] != CHECKPOINT_MAGIC:
+        raise StoreError(f"checkpoint magic is {data[:8]!r}, expected {CHECKPOINT_MAGIC!r}")
+    length, crc = _HEADER.unpack_from(data, len(CHECKPOINT_MAGIC))
+    if len(data) != head + length:
+        raise StoreError(f"checkpoint is {len(data)} bytes, its header says {head + length}")
+    payload = data[head:]
+    if zlib.crc32(payload) != crc:
+        raise StoreError("checkpoint CRC mismatch")
+    try:
+        obj = wire.unpack(payload, max(length, 1))
+    except wire.WireError as exc:
+        raise StoreError(f"checkpoint payload does not decode: {exc}") from None
+    if not isinstance(obj, dict) or set(obj) != {"seq", "body"}:
+        raise StoreError("checkpoint payload is not a map of 'seq' and 'body'")
+    seq, body = obj["seq"], obj["body"]
+    if type(seq) is not int or seq < 0:
+        raise StoreError(f"checkpoint seq must be a non-negative integer, got {seq!r:.60}")
+    if not isinstance(body, dict):
+        raise StoreError(f"checkpoint body must be a map, got {type(body).__name__}")
+    return seq, body
+
+
+@dataclass(frozen=True)
+class SegmentScan:
+    """What :func:`scan_segment` found in one segment's bytes.
+
+    ``status`` is ``"ok"`` (every byte belongs to a good record), ``"torn"`` (a bad record with
+    no good one after it) or ``"corrupt"`` (a bad record followed by a good one, or a good
+    record with the wrong sequence number). ``good_bytes`` is the end of the last good record
+    before the damage.
+    """
+
+    records: list
+    good_bytes: int
+    size: int
+    status: str
+    bad_offset: int | None
+    reason: str | None
+
+
+def _parse_at(data: bytes, pos: int):
+    """``(record, end)`` of the record at ``pos``, or ``(None, reason)``."""
+    n = len(data)
+    if n - pos < _HEADER.size:
+        return None, "incomplete record header"
+    length, crc = _HEADER.unpack_from(data, pos)
+    if length == 0 or length > MAX_RECORD_BYTES:
+        return None, f"implausible record length {length}"
+    end = pos + _HEADER.size + length
+    if end > n:
+        return None, f"incomplete payload ({n - pos - _HEADER.size} of {length} bytes)"
+    payload = data[pos + _HEADER.size:end]
+    if zlib.crc32(payload) != crc:
+        return None, "CRC mismatch"
+    try:
+        obj = wire.unpack(payload, length)
+    except wire.WireError as exc:
+        return None, f"payload does not decode ({exc})"
+    if not isinstance(obj, dict) or type(obj.get("seq")) is not int:
+        return None, "payload is not a map with an integer 'seq'"
+    return obj, end
+
+
+def _good_record_after(data: bytes, start: int, min_seq: int) -> int | None:
+    """Offset of the first good record at or after ``start`` with ``seq >= min_seq``."""
+    # Candidates are found by the "seq" key every payload starts with, so the cost stays near
+    # a byte search instead of one CRC per offset.
+    q = data.find(_SEQ_KEY, start)
+    while q != -1:
+        for head_len, first_bytes in _MAP_HEADERS:
+            p = q - head_len - _HEADER.size
+            if p >= start and data[q - head_len] in first_bytes:
+                rec, _ = _parse_at(data, p)
+                if rec is not None and rec["seq"] >= min_seq:
+                    return p
+        q = data.find(_SEQ_KEY, q + 1)
+    return None
+
+
+def scan_segment(data: bytes, first_seq: int) -> SegmentScan:
+    """Read the records of one segment whose first record should carry ``first_seq``.
+
+    Never raises on any input; damage is described by the returned :class:`SegmentScan`.
+    """
+    data = bytes(data)
+    n = len(data)
+    pos, expected, records = 0, first_seq, []
+    while pos < n:
+        rec, end = _parse_at(data, pos)
+        if rec is None:
+            reason = end
+            break
+        if rec["seq"] != expected:
+            # a well-formed record out of sequence is never a torn write
+            return SegmentScan(records, pos, n, "corrupt", pos,
+                               f"record has seq {rec['seq']}, expected {expected}")
+        records.append(rec)
+        pos = end
+        expected += 1
+    else:
+        return SegmentScan(records, pos, n, "ok", None, None)
+    later = _good_record_after(data, pos + 1, expected)
+    if later is not None:
+        return SegmentScan(records, pos, n, "corrupt", pos,
+                           f"{reason}; a good record follows at byte {later}")
+    return SegmentScan(records, pos, n, "torn", pos, reason)
+
+
+# ------------------------------------------------------------------ names
+def _seg_name(first_seq: int) -> str:
+    return f"wal-{first_seq:016d}.log"
+
+
+def _ckpt_name(seq: int) -> str:
+    return f"checkpoint-{seq:016d}.ckpt"
+
+
+def _numbered(names, pattern: re.Pattern) -> list[int]:
+    out = []
+    for name in names:
+        m = pattern.fullmatch(name)
+        if m:
+            out.append(int(m.group(1)))
+    return sorted(out)
+
+
+def _is_pending(name: str) -> bool:
+    m = _ASIDE_RE.fullmatch(name)
+    return bool(m and m["kind"] == "corrupt" and not m["acc"] and _SEG_RE.fullmatch(m["base"]))
+
+
+# ------------------------------------------------------------------ recovery result
+@dataclass(frozen=True)
+class Recovery:
+    """What :meth:`StateDir.recover` found.
+
+    ``records`` are the WAL records after ``checkpoint_seq`` in sequence order, each with its
+    ``"seq"``. ``corrupt_segments`` names the files moved aside by this recovery (current
+    names). ``dropped_after_seq`` is set when policy ``"checkpoint"`` dropped records: every
+    record after it that the folder held is gone.
+    """
+
+    checkpoint: dict | None
+    checkpoint_seq: int
+    records: list
+    torn_tail: bool
+    truncated_bytes: int
+    corrupt_segments: tuple[str, ...]
+    fallback_checkpoint: bool
+    notes: tuple[str, ...]
+    dropped_after_seq: int | None = None
+
+
+# ------------------------------------------------------------------ the folder
+class StateDir:
+    """A locked state folder: WAL appends, checkpoints and recovery.
+
+    Life cycle: ``open()`` -> ``recover()`` -> ``append()`` / ``checkpoint()`` /
+    ``maybe_sync()`` ... -> ``close()``. Also a context manager (open on enter, close on exit).
+    """
+
+    def __init__(self, path, *, fsync: str = "group", group_ms: float = 50,
+                 segment_bytes: int = DEFAULT_SEGMENT_BYTES, fs: OsFs | None = None):
+        if fsync not in FSYNC_MODES:
+            raise ValueError(f"fsync must be one of {FSYNC_MODES}, got {fsync!r}")
+        if (isinstance(group_ms, bool) or not isinstance(group_ms, int | float)
+                or not math.isfinite(group_ms) or group_ms < 0):
+            raise ValueError(f"group_ms must be a finite number >= 0, got {group_ms!r}")
+        if isinstance(segment_bytes, bool) or not isinstance(segment_bytes, int) \
+                or segment_bytes < 1:
+            raise ValueError(f"segment_bytes must be an integer >= 1, got {segment_bytes!r}")
+        self.path = os.path.abspath(os.fspath(path))
+        self.fsync_mode = fsync
+        self.group_ms = float(group_ms)
+        self.segment_bytes = segment_bytes
+        self._fs = fs if fs is not None else OsFs()
+        self._lock_fd: int | None = None
+        self._recovered = False
+        self._failed: str | None = None
+        self._seg_fd: int | None = None
+        self._seg_size = 0
+        self._next_seq = 1
+        self._chain: list[int] = []  # seqs of the valid checkpoints kept: [previous,] newest
+        self._pending = 0
+        self._last_sync: float | None = None
+        self.notes: list[str] = []
+
+    # ------------------------------------------------------------------ properties
+    @property
+    def pending(self) -> int:
+        """Records written but not yet fsynced."""
+        return self._pending
+
+    @property
+    def last_seq(self) -> int:
+        """Sequence number of the last record (or of the checkpoint, when it is newer)."""
+        return self._next_seq - 1
+
+    @property
+    def failed(self) -> str | None:
+        """Why the folder refuses writes, or None."""
+        return self._failed
+
+    def _p(self, name: str) -> str:
+        return os.path.join(self.path, name)
+
+    # ------------------------------------------------------------------ open / close
+    def open(self) -> list[str]:
+        """Create (0700) and lock the folder; returns notes about its permissions."""
+        if self._lock_fd is not None:
+            raise StoreError(f"state folder {self.path} is already open")
+        notes: list[str] = []
+        if not os.path.lexists(self.path):
+            parent = os.path.dirname(self.path)
+            try:
+                os.makedirs(parent, exist_ok=True)
+                self._fs.mkdir(self.path, 0o700)
+                os.chmod(self.path, 0o700)  # the umask may have taken bits away
+            except OSError as exc:
+                raise StoreError(f"cannot create state folder {self.path}: {exc}") from exc
+            notes.append(f"created state folder {self.path}")
+        try:
+            st = os.stat(self.path)
+        except OSError as exc:
+            raise StoreError(f"cannot stat state folder {self.path}: {exc}") from exc
+        if not stat.S_ISDIR(st.st_mode):
+            raise StoreError(f"state path {self.path} is not a directory")
+        mode = stat.S_IMODE(st.st_mode)
+        if mode & 0o022:
+            raise StoreError(
+                f"refusing state folder {self.path}: mode {mode:04o} lets group or others "
+                f"write to it; run 'chmod 700 {self.path}'")
+        if mode & 0o055:
+            notes.append(f"state folder {self.path} is readable by group or others "
+                         f"(mode {mode:04o}); 'chmod 700' is recommended")
+        if st.st_uid != os.geteuid():
+            notes.append(f"state folder {self.path} is owned by uid {st.st_uid}, "
+                         f"not by this process (uid {os.geteuid()})")
+        lock_path = self._p(LOCK_NAME)
+        try:
+            fd = self._fs.open(lock_path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o600)
+        except OSError as exc:
+            raise StoreError(f"cannot open lock file {lock_path}: {exc}") from exc
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as exc:
+            pid = _read_pid(fd)
+            os.close(fd)
+            if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN):
+                raise LockedError(self.path, pid) from None
+            raise StoreError(f"cannot lock {lock_path}: {exc}") from exc
+        try:
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+        except OSError as exc:
+            # the pid is for people reading LockedError; the flock itself is what excludes
+            notes.append(f"could not write the pid into {lock_path}: {exc}")
+        self._lock_fd = fd
+        self._recovered = False
+        self._failed = None
+        self.notes = notes
+        return notes
+
+    def close(self) -> None:
+        """Fsync what is pending and release the lock (idempotent)."""
+        if self._lock_fd is None:
+            return
+        try:
+            if self._failed is None and self._pending:
+                self.sync()
+        finally:
+            if self._seg_fd is not None:
+                try:
+                    self._fs.close(self._seg_fd)
+                except OSError:
+                    pass  # already synced or already failed; nothing left to protect
+                self._seg_fd = None
+            os.close(self._lock_fd)  # releases the flock
+            self._lock_fd = None
+            self._recovered = False
+            self._pending = 0
+
+    def __enter__(self) -> StateDir:
+        self.open()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # ------------------------------------------------------------------ helpers
+    def _require_open(self) -> None:
+        if self._lock_fd is None:
+            raise StoreError(f"state folder {self.path} is not open")
+
+    def _require_writable(self) -> None:
+        self._require_open()
+        if self._failed is not None:
+            raise DurabilityError(f"state folder {self.path} refuses writes after an earlier "
+                                  f"failure: {self._failed}")
+        if not self._recovered:
+            raise StoreError("recover() must run before writing")
+
+    def _fail(self, what: str, exc: OSError) -> DurabilityError:
+        self._failed = f"{what}: {exc}"
+        return DurabilityError(f"{what} failed in {self.path}: {exc}; the state folder refuses "
+                               f"further writes")
+
+    def _write_all(self, fd: int, data: bytes) -> None:
+        view = memoryview(data)
+        while view:
+            k = self._fs.write(fd, view)
+            if k <= 0:
+                raise OSError(errno.ENOSPC, "write wrote nothing")
+            view = view[k:]
+
+    def _fsync_dir(self) -> None:
+        fd = self._fs.open(self.path, os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC)
+        try:
+            self._fs.fsync(fd)
+        finally:
+            self._fs.close(fd)
+
+    def _listdir(self) -> set[str]:
+        try:
+            return set(os.listdir(self.path))
+        except OSError as exc:
+            raise StoreError(f"cannot list state folder {self.path}: {exc}") from exc
+
+    def _read(self, name: str) -> bytes:
+        with open(self._p(name), "rb") as f:
+            return f.read()
+
+    def _move_aside(self, name: str, kind: str, names: set[str], accepted: bool = False) -> str:
+        used = [int(m["n"]) for m in map(_ASIDE_RE.fullmatch, names) if m]
+        new = f"{name}.{kind}-{max(used, default=0) + 1}" + (".accepted" if accepted else "")
+        try:
+            self._fs.rename(self._p(name), self._p(new))
+        except OSError as exc:
+            raise self._fail(f"moving {name} aside", exc) from exc
+        names.discard(name)
+        names.add(new)
+        return new
+
+    # ------------------------------------------------------------------ recovery
+    def recover(self, policy: str = "refuse") -> Recovery:
+        """Load the newest valid checkpoint and the WAL records after it.
+
+        See the module docstring for the torn-tail, corruption and fallback rules.
+        """
+        self._require_open()
+        if policy not in POLICIES:
+            raise ValueError(f"policy must be one of {POLICIES}, got {policy!r}")
+        if self._recovered:
+            raise StoreError("recover() already ran since open()")
+        if self._failed is not None:
+            raise DurabilityError(f"state folder {self.path} refuses work after an earlier "
+                                  f"failure: {self._failed}")
+        if self._seg_fd is not None:  # left by a recovery that raised
+            self._fs.close(self._seg_fd)
+            self._seg_fd = None
+        notes: list[str] = []
+        names = self._listdir()
+        changed = False
+
+        pending = sorted(n for n in names if _is_pending(n))
+        if pending and policy == "refuse":
+            base = _ASIDE_RE.fullmatch(pending[0])["base"]
+            first = int(_SEG_RE.fullmatch(base).group(1))
+            raise CorruptionError(
+                f"WAL segment {base} was found corrupt earlier and moved aside to {pending[0]}; "
+                f"records from seq {first} on are missing. Recover with policy 'checkpoint' to "
+                f"accept the loss, or repair the segment and rename it back",
+                segment=base, offset=None, moved_to=pending[0])
+
+        for name in sorted(names):
+            if _TMP_RE.fullmatch(name):
+                try:
+                    self._fs.unlink(self._p(name))
+                except OSError as exc:
+                    raise self._fail(f"removing {name}", exc) from exc
+                names.discard(name)
+                notes.append(f"removed unfinished checkpoint {name}")
+                changed = True
+
+        # -------------------------------------------------------------- checkpoint
+        checkpoint, ckpt_seq, fallback = None, 0, False
+        valid: list[int] = []  # the chosen checkpoint and the valid one before it
+        for seq in reversed(_numbered(names, _CKPT_RE)):
+            name = _ckpt_name(seq)
+            try:
+                data = self._read(name)
+            except OSError as exc:
+                notes.append(f"checkpoint {name} cannot be read ({exc}); skipped")
+                fallback = fallback or not valid
+                continue
+            try:
+                cseq, body = decode_checkpoint(data)
+                if cseq != seq:
+                    raise StoreError(f"it holds seq {cseq} but its name says {seq}")
+            except StoreError as exc:
+                moved = self._move_aside(name, "corrupt", names)
+                notes.append(f"checkpoint {name} is damaged ({exc}); moved aside to {moved}")
+                fallback = fallback or not valid
+                changed = True
+                continue
+            if not valid:
+                checkpoint, ckpt_seq = body, seq
+            valid.insert(0, seq)
+            if len(valid) == 2:
+                break
+        if fallback:
+            notes.append(f"fell back to checkpoint {_ckpt_name(ckpt_seq)}" if checkpoint
+                         is not None else "no usable checkpoint: recovering from the WAL alone")
+        # the previous valid checkpoint stays the fallback if the next one replaces the newest
+        self._chain = valid
+
+        # -------------------------------------------------------------- WAL
+        segs = _numbered(names, _SEG_RE)
+        expected = ckpt_seq + 1
+        records: list = []
+        torn, truncated = False, 0
+        moved_aside: list[str] = []
+        dropped_after: int | None = None
+        tail: tuple[int, int, int] | None = None  # first seq, record count, bytes of last seg
+        for i, first in enumerate(segs):
+            name = _seg_name(first)
+            is_last = i == len(segs) - 1
+            if not is_last and segs[i + 1] - 1 < expected:
+                continue  # every record in it is covered already
+            problem: tuple[int, str] | None = None
+            if first > expected:
+                problem = (0, f"records {expected}..{first - 1} are missing before it")
+            else:
+                try:
+                    data = self._read(name)
+                except OSError as exc:
+                    raise StoreError(f"cannot read WAL segment {name}: {exc}") from exc
+                scan = scan_segment(data, first)
+                records.extend(r for r in scan.records if r["seq"] >= expected)
+                end_seq = first + len(scan.records)
+                expected = max(expected, end_seq)
+                if scan.status == "torn" and is_last:
+                    self._truncate(name, scan.good_bytes)
+                    torn, truncated, changed = True, scan.size - scan.good_bytes, True
+                    notes.append(f"torn tail in {name} at byte {scan.bad_offset} "
+                                 f"({scan.reason}); truncated {truncated} bytes, last good "
+                                 f"record is seq {end_seq - 1}")
+                elif scan.status != "ok":
+                    if (end_seq <= ckpt_seq and not is_last
+                            and segs[i + 1] <= ckpt_seq + 1):
+                        notes.append(f"{name} is damaged at byte {scan.bad_offset} "
+                                     f"({scan.reason}) but the checkpoint covers it")
+                        continue
+                    problem = (scan.bad_offset, scan.reason)
+                if problem is None and is_last:
+                    tail = (first, len(scan.records), scan.good_bytes)
+            if problem is None:
+                continue
+            offset, why = problem
+            if policy == "refuse":
+                moved = self._move_aside(name, "corrupt", names)
+                self._sync_dir_or_fail()
+                raise CorruptionError(
+                    f"WAL segment {name} is corrupt at byte {offset}: {why}; moved aside to "
+                    f"{moved}. Recover with policy 'checkpoint' to continue without its records",
+                    segment=name, offset=offset, moved_to=moved)
+            moved = self._move_aside(name, "corrupt", names, accepted=True)
+            moved_aside.append(moved)
+            dropped_after = max(ckpt_seq, min(first, expected) - 1)
+            records = [r for r in records if r["seq"] <= dropped_after]
+            expected = dropped_after + 1
+            notes.append(f"WAL segment {name} is corrupt at byte {offset}: {why}; moved aside to "
+                         f"{moved}; policy 'checkpoint': records after seq {dropped_after} "
+                         f"dropped")
+            for later in segs[i + 1:]:
+                gone = self._move_aside(_seg_name(later), "dropped", names)
+                notes.append(f"WAL segment {_seg_name(later)} dropped with it, moved to {gone}")
+            changed = True
+            tail = None
+            break
+
+        if pending:  # only reached with policy "checkpoint"
+            for name in pending:
+                new = name + ".accepted"
+                try:
+                    self._fs.rename(self._p(name), self._p(new))
+                except OSError as exc:
+                    raise self._fail(f"renaming {name}", exc) from exc
+                moved_aside.append(new)
+                notes.append(f"accepted the loss of the records in {name} (now {new})")
+            if dropped_after is None:
+                dropped_after = expected - 1
+            changed = True
+
+        # -------------------------------------------------------------- resume
+        self._next_seq = expected
+        if tail is not None:
+            first, count, good = tail
+            try:
+                if first > ckpt_seq and first + count == expected and good < self.segment_bytes:
+                    fd = self._fs.open(self._p(_seg_name(first)),
+                                       os.O_WRONLY | os.O_APPEND | os.O_CLOEXEC)
+                    self._seg_fd, self._seg_size = fd, good
+                    self._fs.fsync(fd)
+                elif count:
+                    # records read from the page cache after a crash may not be on disk yet
+                    fd = self._fs.open(self._p(_seg_name(first)), os.O_RDONLY | os.O_CLOEXEC)
+                    try:
+                        self._fs.fsync(fd)
+                    finally:
+                        self._fs.close(fd)
+            except OSError as exc:
+                raise self._fail(f"syncing {_seg_name(first)}", exc) from exc
+        if changed:
+            self._sync_dir_or_fail()
+        self._recovered = True
+        self._pending = 0
+        self._last_sync = None
+        return Recovery(checkpoint=checkpoint, checkpoint_seq=ckpt_seq, records=records,
+                        torn_tail=torn, truncated_bytes=truncated,
+                        corrupt_segments=tuple(moved_aside), fallback_checkpoint=fallback,
+                        notes=tuple(notes), dropped_after_seq=dropped_after)
+
+    def _truncate(self, name: str, length: int) -> None:
+        try:
+            fd = self._fs.open(self._p(name), os.O_WRONLY | os.O_CLOEXEC)
+            try:
+                self._fs.truncate(fd, length)
+                self._fs.fsync(fd)
+            finally:
+                self._fs.close(fd)
+        except OSError as exc:
+            raise self._fail(f"truncating {name}", exc) from exc
+
+    def _sync_dir_or_fail(self) -> None:
+        try:
+            self._fsync_dir()
+        except OSError as exc:
+            raise self._fail("fsync of the folder", exc) from exc
+
+    # ------------------------------------------------------------------ appending
+    def append(self, record: dict) -> int:
+        """Write one record; returns its sequence number.
+
+        With ``fsync="always"`` the record is durable on return; with ``"group"`` once
+        :meth:`maybe_sync` or :meth:`sync` has run.
+        """
+        self._require_writable()
+        seq = self._next_seq
+        frame = encode_record(seq, record)
+        if self._seg_fd is not None and self._seg_size > 0 \
+                and self._seg_size + len(frame) > self.segment_bytes:
+            self._roll()
+        if self._seg_fd is None:
+            self._new_segment(seq)
+        try:
+            self._write_all(self._seg_fd, frame)
+        except OSError as exc:
+            raise self._fail(f"write of record {seq}", exc) from exc
+        self._seg_size += len(frame)
+        self._next_seq = seq + 1
+        self._pending += 1
+        if self.fsync_mode == "always":
+            self._fsync_segment()
+        return seq
+
+    def _new_segment(self, first_seq: int) -> None:
+        name = _seg_name(first_seq)
+        flags = os.O_WRONLY | os.O_APPEND | os.O_CLOEXEC
+        try:
+            try:
+                fd = self._fs.open(self._p(name), flags | os.O_CREAT | os.O_EXCL, 0o600)
+            except FileExistsError:
+                # an empty segment of this name (left by a crash or a truncation to zero)
+                # holds nothing and can be used; anything else must not be written over
+                if os.stat(self._p(name)).st_size != 0:
+                    raise
+                fd = self._fs.open(self._p(name), flags)
+        except OSError as exc:
+            raise self._fail(f"creating {name}", exc) from exc
+        self._seg_fd, self._seg_size = fd, 0
+        try:
+            self._fsync_dir()  # the new name must survive a power loss with its data
+        except OSError as exc:
+            raise self._fail("fsync of the folder", exc) from exc
+
+    def _fsync_segment(self) -> None:
+        if self._seg_fd is None or not self._pending:
+            return
+        try:
+            self._fs.fsync(self._seg_fd)
+        except OSError as exc:
+            raise self._fail("fsync of the WAL", exc) from exc
+        self._pending = 0
+
+    def _roll(self) -> None:
+        # a segment is complete on disk before the next one exists, so damage in any segment
+        # but the last is corruption, never a torn write
+        self._fsync_segment()
+        fd, self._seg_fd = self._seg_fd, None
+        if fd is not None:
+            try:
+                self._fs.close(fd)
+            except OSError as exc:
+                raise self._fail("close of a WAL segment", exc) from exc
+
+    def flush_due(self, now_monotonic: float) -> bool:
+        """Whether records are pending and ``group_ms`` has passed since the last fsync."""
+        if not self._pending:
+            return False
+        if self._last_sync is None:
+            return True
+        return (now_monotonic - self._last_sync) * 1000.0 >= self.group_ms
+
+    def maybe_sync(self, now_monotonic: float | None = None) -> bool:
+        """Fsync if :meth:`flush_due`; returns whether it did. Call it from the service loop."""
+        now = time.monotonic() if now_monotonic is None else now_monotonic
+        if not self.flush_due(now):
+            return False
+        self.sync(now)
+        return True
+
+    def sync(self, now_monotonic: float | None = None) -> None:
+        """Fsync pending records now."""
+        self._require_open()
+        if self._failed is not None:
+            raise DurabilityError(f"state folder {self.path} refuses writes after an earlier "
+                                  f"failure: {self._failed}")
+        if self._pending:
+            self._fsync_segment()
+            self._last_sync = time.monotonic() if now_monotonic is None else now_monotonic
+
+    # ------------------------------------------------------------------ checkpoints
+    def checkpoint(self, body: dict) -> int:
+        """Durably write a checkpoint covering every record so far; returns its seq."""
+        self._require_writable()
+        seq = self._next_seq - 1
+        data = encode_checkpoint(seq, body)
+        self._fsync_segment()  # the fallback path needs the WAL up to here
+        final = _ckpt_name(seq)
+        tmp = final + ".tmp"
+        try:
+            fd = self._fs.open(self._p(tmp), os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_CLOEXEC,
+                               0o600)
+            try:
+                self._write_all(fd, data)
+                self._fs.fsync(fd)
+            finally:
+                self._fs.close(fd)
+            self._fs.rename(self._p(tmp), self._p(final))
+            self._fsync_dir()
+        except OSError as exc:
+            try:
+                self._fs.unlink(self._p(tmp))
+            except OSError:
+                pass  # the next recovery removes it
+            raise self._fail(f"writing checkpoint {final}", exc) from exc
+        if self._seg_size:
+            self._roll()  # an empty open segment is already named for the next record
+        self._chain = [s for s in self._chain if s != seq][-1:] + [seq]
+        self._prune()
+        return seq
+
+    def _prune(self) -> None:
+        try:
+            names = os.listdir(self.path)
+        except OSError:
+            return  # tidying only; the next checkpoint tries again
+        keep = {_ckpt_name(s) for s in self._chain}
+        for seq in _numbered(names, _CKPT_RE):
+            if _ckpt_name(seq) not in keep:
+                self._unlink_quietly(_ckpt_name(seq))
+        if len(self._chain) < 2:
+            return  # no previous checkpoint to fall back to: keep the whole WAL
+        fallback = self._chain[0]
+        segs = _numbered(names, _SEG_RE)
+        for first, nxt in zip(segs, segs[1:], strict=False):
+            if nxt <= fallback + 1:
+                self._unlink_quietly(_seg_name(first))
+
+    def _unlink_quietly(self, name: str) -> None:
+        try:
+            self._fs.unlink(self._p(name))
+        except OSError:
+            pass  # a leftover is harmless and removed at a later checkpoint
+
+
+def _read_pid(fd: int) -> int | None:
+    try:
+        text = os.pread(fd, 64, 0).decode("ascii", "replace").strip()
+    except OSError:
+        return None
+    return int(text) if text.isdigit() else None
+
+
+# ------------------------------------------------------------------ inspection
+def _flock_holder(lock_path: str) -> tuple[bool | None, int | None]:
+    """Whether a flock is held on ``lock_path`` and by which pid, from ``/proc/locks``.
+
+    Read-only: taking the lock to test it would make a daemon starting at that moment fail.
+    ``(None, None)`` where ``/proc/locks`` is not available.
+    """
+    try:
+        st = os.stat(lock_path)
+    except OSError:
+        return False, None
+    try:
+        with open("/proc/locks") as f:
+            lines = f.read().splitlines()
+    except OSError:
+        return None, None
+    want = (os.major(st.st_dev), os.minor(st.st_dev), st.st_ino)
+    for line in lines:
+        parts = line.split()
+        if "->" in parts or len(parts) < 6 or parts[1] != "FLOCK":
+            continue  # waiters are listed with "->"; only granted flocks count
+        dev = parts[5].split(":")
+        try:
+            key = (int(dev[0], 16), int(dev[1], 16), int(dev[2]))
+            pid = int(parts[4])
+        except (IndexError, ValueError):
+            continue
+        if key == want:
+            return True, pid
+    return False, None
+
+
+def inspect(path) -> dict:
+    """Describe a state folder without changing anything (no lock taken).
+
+    Returns plain data: ``exists``, ``mode``, ``lock`` (``held``, ``pid``, ``pid_in_file``),
+    ``checkpoints`` (``file``, ``seq``, ``bytes``, ``valid``, ``error``), ``segments``
+    (``file``, ``first_seq``, ``last_seq``, ``records``, ``bytes``, ``good_bytes``, ``status``,
+    ``bad_offset``, ``reason``), ``moved_aside`` (``file``, ``bytes``, ``pending``),
+    ``temporary`` and ``other`` file names, and ``newest_valid_checkpoint``.
+    """
+    path = os.path.abspath(os.fspath(path))
+    out: dict = {"path": path, "exists": False, "mode": None, "lock": None, "checkpoints": [],
+                 "segments": [], "moved_aside": [], "temporary": [], "other": [],
+                 "newest_valid_checkpoint": None}
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        return out
+    if not stat.S_ISDIR(st.st_mode):
+        raise ValueError(f"{path} is not a directory")
+    out["exists"] = True
+    out["mode"] = f"{stat.S_IMODE(st.st_mode):04o}"
+    names = sorted(os.listdir(path))
+    lock_path = os.path.join(path, LOCK_NAME)
+    if LOCK_NAME in names:
+        held, pid = _flock_holder(lock_path)
+        try:
+            with open(lock_path, "rb") as f:
+                text = f.read(64).decode("ascii", "replace").strip()
+        except OSError:
+            text = ""
+        out["lock"] = {"held": held, "pid": pid,
+                       "pid_in_file": int(text) if text.isdigit() else None}
+
+    def size(name: str) -> int:
+        try:
+            return os.stat(os.path.join(path, name)).st_size
+        except OSError:
+            return -1
+
+    for seq in _numbered(names, _CKPT_RE):
+        name = _ckpt_name(seq)
+        entry = {"file": name, "seq": seq, "bytes": size(name), "valid": False, "error": None}
+        try:
+            with open(os.path.join(path, name), "rb") as f:
+                cseq, _ = decode_checkpoint(f.read())
+            if cseq != seq:
+                raise StoreError(f"holds seq {cseq} but its name says {seq}")
+            entry["valid"] = True
+            out["newest_valid_checkpoint"] = seq
+        except (OSError, StoreError) as exc:
+            entry["error"] = str(exc)
+        out["checkpoints"].append(entry)
+    segs = _numbered(names, _SEG_RE)
+    for i, first in enumerate(segs):
+        name = _seg_name(first)
+        try:
+            with open(os.path.join(path, name), "rb") as f:
+                scan = scan_segment(f.read(), first)
+        except OSError as exc:
+            out["segments"].append({"file": name, "first_seq": first, "last_seq": None,
+                                    "records": None, "bytes": size(name), "good_bytes": None,
+                                    "status": "unreadable", "bad_offset": None,
+                                    "reason": str(exc)})
+            continue
+        status = scan.status
+        if status == "torn" and i < len(segs) - 1:
+            status = "corrupt"  # only the last segment can have been cut by a crash
+        n = len(scan.records)
+        out["segments"].append({"file": name, "first_seq": first,
+                                "last_seq": first + n - 1 if n else None, "records": n,
+                                "bytes": scan.size, "good_bytes": scan.good_bytes,
+                                "status": status, "bad_offset": scan.bad_offset,
+                                "reason": scan.reason})
+    known = {LOCK_NAME} | {_ckpt_name(s) for s in _numbered(names, _CKPT_RE)} \
+        | {_seg_name(s) for s in segs}
+    for name in names:
+        if name in known:
+            continue
+        if _TMP_RE.fullmatch(name):
+            out["temporary"].append(name)
+        elif _ASIDE_RE.fullmatch(name):
+            out["moved_aside"].append({"file": name, "bytes": size(name),
+                                       "pending": _is_pending(name)})
+        else:
+            out["other"].append(name)
+    return out
