@@ -215,14 +215,23 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
                 has_id=ident is not None)
 
 
+def _float_array(v) -> np.ndarray | None:
+    """``v`` as a float array if it holds only numbers, else None (the careful path).
+
+    Not ``np.array(v, dtype=float)``: that parses strings such as "1767571200" as numbers.
+    """
+    try:
+        arr = np.array(v)
+    except (TypeError, ValueError):
+        return None
+    return arr.astype(float, copy=False) if arr.dtype.kind in "biuf" else None
+
+
 def _decode_block(name, msg, t, tags, index, seq) -> Feed:
     k = len(t)
     if k == 0 or k > MAX_BLOCK:
         raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k}")
-    try:
-        tarr = np.array(t, dtype=float)
-    except (TypeError, ValueError):
-        tarr = None
+    tarr = _float_array(t)
     if tarr is not None and tarr.shape == (k,) and np.isfinite(tarr).all():
         ts = tarr.tolist()
     else:
@@ -250,10 +259,7 @@ def _decode_block(name, msg, t, tags, index, seq) -> Feed:
 def _block_rows(x: list, k: int, tags, index):
     """Rows of a block as a (k, n) float array, or a list of rows on the careful path."""
     n = len(tags)
-    try:
-        arr = np.array(x, dtype=float)
-    except (TypeError, ValueError):
-        arr = None
+    arr = _float_array(x)
     if arr is not None and arr.shape == (k, n) and np.isfinite(arr).all():
         return arr
     # ragged, dict rows, non-numbers or non-finite values: find and name the culprit
