@@ -185,6 +185,9 @@ class ModelRunner:
         if self.frozen:
             raise Rejected("frozen", "learning is frozen")
         phi = self.basis(np.asarray(x, dtype=float))
+        if not np.isfinite(phi).all():
+            # finite readings far outside the range can overflow the basis
+            raise Rejected("bad_x", f"the basis of the features at t={t!r} is not finite")
         try:
             step = self.post.update(phi, y, t)
         except OutOfOrderError as exc:
