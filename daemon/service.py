@@ -88,7 +88,9 @@ class Service:
         self.sub = ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.RCVHWM, d.hwm)
-        self.sub.setsockopt(zmq.MAXMSGSIZE, d.max_message_bytes + 4096)
+        # no ZMQ_MAXMSGSIZE here: libzmq closes a connection that exceeds it as a protocol
+        # error and never reconnects, so one oversize message would silence that feed for
+        # good; the decoder drops (and counts) messages over max_message_bytes instead
         self.sub.setsockopt(zmq.RECONNECT_IVL, max(1, int(d.reconnect_ivl * 1000)))
         self.sub.setsockopt(zmq.RECONNECT_IVL_MAX, max(1, int(d.reconnect_ivl_max * 1000)))
         for name in self.runners:
