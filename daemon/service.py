@@ -23,7 +23,7 @@ from prometheus_client import CollectorRegistry, start_http_server
 
 from daemon import wire
 from daemon.metrics import ServiceCollector
-from daemon.models import ModelRunner, Rejected
+from daemon.models import ModelRunner, PredBatch, Rejected
 
 log = logging.getLogger("posteriord")
 
@@ -228,6 +228,7 @@ class Service:
             self._publish(runner, msg.t, msg.ids, runner.predict(msg.t, msg.x, msg.ids),
                           True, msg.has_id)
             return
+        parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
             if row is not None:
                 try:
@@ -240,17 +241,26 @@ class Service:
                 seg[1].append(row)
                 seg[2].append(ident)
             if y is not None:
-                self._flush(runner, seg)
+                self._flush(runner, seg, parts)
                 self._learn(runner, t, y, ident)
         if msg.block:
-            self._flush(runner, seg)
+            self._flush(runner, seg, parts)
+            if parts:
+                ts = [t for p in parts for t in p[0]]
+                ids = [i for p in parts for i in p[1]]
+                self._publish(runner, ts, ids, _concat([p[2] for p in parts]), True,
+                              any(i is not None for i in ids))
 
-    def _flush(self, runner: ModelRunner, seg: list) -> None:
+    def _flush(self, runner: ModelRunner, seg: list, parts: list | None = None) -> None:
         ts, rows, ids = seg[0], seg[1], seg[2]
         if not ts:
             return
-        self._publish(runner, ts, ids, runner.predict(ts, rows, ids), seg[4],
-                      any(i is not None for i in ids))
+        batch = runner.predict(ts, rows, ids)
+        if parts is not None:
+            # a block predicted in pieces around its lab values still gets one message
+            parts.append((ts, ids, batch))
+        else:
+            self._publish(runner, ts, ids, batch, seg[4], any(i is not None for i in ids))
         seg[0], seg[1], seg[2] = [], [], []
 
     def _publish(self, runner: ModelRunner, ts: list, ids: list, batch, block: bool,
@@ -400,6 +410,15 @@ class Service:
             self.closed_order.append("context")
             self._ctx = None
         log.info("stopped")
+
+
+def _concat(batches: list[PredBatch]) -> PredBatch:
+    if len(batches) == 1:
+        return batches[0]
+    arrays = {f: np.concatenate([getattr(b, f) for b in batches])
+              for f in ("t", "mean", "std", "var", "lo", "hi", "dof")}
+    return PredBatch(ids=[i for b in batches for i in b.ids],
+                     status=[s for b in batches for s in b.status], **arrays)
 
 
 def _topic(frames) -> str:
