@@ -1,0 +1,254 @@
+"""Unit tests of daemon.wire: feed and control decoding, every rejection reason, encoding.
+
+Encoded bytes are checked against the layouts of the MessagePack specification
+(github.com/msgpack/msgpack, spec.md: fixmap 0x80|n, fixarray 0x90|n, fixstr 0xa0|n,
+nil 0xc0, false 0xc2, true 0xc3, bin 8 0xc4, float 64 0xcb big-endian IEEE 754, negative
+fixint 0xe0..0xff, ext formats 0xc7..0xc9 and 0xd4..0xd8) with float bytes from
+``struct.pack(">d", ...)``.
+"""
+
+from __future__ import annotations
+
+import math
+import struct
+
+import msgpack
+import pytest
+
+from daemon import plant, wire
+from daemon.wire import MAX_BLOCK, MAX_ID_LEN, REASONS, WireError, decode_control, decode_feed
+
+MODEL = "c301.bottoms_solvent"
+TAGS = plant.TAGS
+SPECS = {MODEL: (TAGS, {tag: i for i, tag in enumerate(TAGS)})}
+ROW = [110.0, 14.0, 1.2, 5.0]
+LIMIT = 4096
+
+
+def f64(x: float) -> bytes:
+    return b"\xcb" + struct.pack(">d", x)
+
+
+def frames(body, topic: str = MODEL) -> list[bytes]:
+    return [topic.encode(), msgpack.packb(body, use_bin_type=True)]
+
+
+def decode(body, topic: str = MODEL):
+    return decode_feed(frames(body, topic), SPECS, LIMIT)
+
+
+def rows(msg) -> list:
+    """The feature rows of a decoded message as plain lists (a block may hold an array)."""
+    return [None if r is None else [float(v) for v in r] for r in msg.x]
+
+
+def reason_of(frame_list) -> str:
+    with pytest.raises(WireError) as info:
+        decode_feed(frame_list, SPECS, LIMIT)
+    assert info.value.reason in REASONS
+    return info.value.reason
+
+
+# ---------------------------------------------------------------------------------- encoding
+def test_pack_writes_the_msgpack_spec_layouts():
+    # msgpack spec: fixmap of 1 entry, fixstr "t", float 64
+    assert wire.pack({"t": 1.5}) == b"\x81\xa1t" + f64(1.5)
+    # fixarray of 5: nil, true, false, positive fixint 1, negative fixint -1
+    assert wire.pack([None, True, False, 1, -1]) == b"\x95\xc0\xc3\xc2\x01\xff"
+    # bytes are bin 8 (use_bin_type), not raw strings
+    assert wire.pack(b"ab") == b"\xc4\x02ab"
+    assert wire.packb({"t": 1.5, "x": [1.0]}) == wire.pack({"t": 1.5, "x": [1.0]})
+
+
+def test_non_finite_floats_travel_as_ieee_754_doubles():
+    # IEEE 754: the quiet nan 0x7ff8000000000000 and infinities survive the round trip
+    assert wire.pack(math.inf) == f64(math.inf) == b"\xcb\x7f\xf0" + b"\x00" * 6
+    assert wire.pack(-math.inf) == b"\xcb\xff\xf0" + b"\x00" * 6
+    back = wire.unpack(wire.pack([math.nan, math.inf]), LIMIT)
+    assert math.isnan(back[0]) and back[1] == math.inf
+
+
+def test_unpack_is_the_inverse_of_msgpack_packb():
+    obj = {"t": [1.0, 2.5], "x": [[1, 2], [3, 4]], "y": [None, 7.25], "id": ["a", 3]}
+    assert wire.unpack(msgpack.packb(obj), LIMIT) == obj
+
+
+# ---------------------------------------------------------------------------------- feeds
+def test_single_message_with_list_x():
+    msg = decode({"t": 100.0, "x": ROW, "id": "S-1", "seq": 7})
+    assert (msg.model, msg.t, msg.y, msg.ids, msg.seq, msg.block) == (
+        MODEL, [100.0], [None], ["S-1"], 7, False)
+    assert rows(msg) == [ROW]
+
+
+def test_x_as_a_map_is_put_in_input_order():
+    by_tag = dict(zip(TAGS, ROW, strict=True))
+    msg = decode({"t": 5, "x": dict(reversed(list(by_tag.items())))})
+    assert rows(msg) == [ROW] and msg.t == [5.0]
+
+
+def test_integers_are_numbers():
+    msg = decode({"t": 1767571200, "x": [110, 14, 1, 5], "y": 170})
+    assert msg.t == [1767571200.0] and rows(msg) == [[110.0, 14.0, 1.0, 5.0]]
+    assert msg.y == [170.0]
+
+
+def test_lab_result_by_time_and_by_id():
+    by_t = decode({"t": 50.0, "y": 123.0})
+    assert (by_t.t, by_t.x, by_t.y, by_t.ids) == ([50.0], [None], [123.0], [None])
+    by_id = decode({"id": 42, "y": 1.0})
+    assert math.isnan(by_id.t[0]) and by_id.ids == [42] and by_id.x == [None]
+    both = decode({"t": 1.0, "x": ROW, "y": 9.5})
+    assert rows(both) == [ROW] and both.y == [9.5] and not both.block
+
+
+def test_block_with_nil_lab_values_and_ids():
+    msg = decode({"t": [1, 2, 3], "x": [ROW, ROW, ROW], "y": [None, 4.0, None],
+                  "id": ["a", None, 7], "seq": 3})
+    assert msg.block and msg.seq == 3
+    assert msg.t == [1.0, 2.0, 3.0] and rows(msg) == [ROW] * 3
+    assert msg.y == [None, 4.0, None] and msg.ids == ["a", None, 7]
+
+
+def test_lab_only_block():
+    msg = decode({"t": [10.0, 20.0], "y": [1.0, 2.0]})
+    assert rows(msg) == [None, None] and msg.y == [1.0, 2.0] and msg.ids == [None, None]
+
+
+def test_id_lengths_at_the_limit():
+    assert decode({"t": 1.0, "x": ROW, "id": "s" * MAX_ID_LEN}).ids == ["s" * MAX_ID_LEN]
+    assert reason_of(frames({"t": 1.0, "x": ROW, "id": "s" * (MAX_ID_LEN + 1)})) == "bad_id"
+
+
+def test_size_limit_is_inclusive():
+    body = {"t": 1.0, "x": ROW, "pad": ""}
+    base = len(msgpack.packb(body))
+    body["pad"] = "p" * (LIMIT - base)
+    body["pad"] = body["pad"][: LIMIT - base - (len(msgpack.packb(body)) - LIMIT)]
+    payload = msgpack.packb(body)
+    assert len(payload) == LIMIT
+    assert rows(decode_feed([MODEL.encode(), payload], SPECS, LIMIT)) == [ROW]
+    assert reason_of([MODEL.encode(), payload + b"\xc0"]) == "too_large"
+
+
+BAD_FEEDS = {
+    "one frame": ([MODEL.encode()], "frames"),
+    "three frames": (frames({"t": 1.0, "x": ROW}) + [b""], "frames"),
+    "no frames": ([], "frames"),
+    "topic not utf-8": ([b"\xff\xfe", msgpack.packb({"t": 1.0, "x": ROW})], "unknown_model"),
+    "unknown model": (frames({"t": 1.0, "x": ROW}, "c301.other"), "unknown_model"),
+    "prefix of a model": (frames({"t": 1.0, "x": ROW}, MODEL + "_x"), "unknown_model"),
+    "never-used byte 0xc1": ([MODEL.encode(), b"\xc1"], "msgpack"),
+    "truncated array": ([MODEL.encode(), b"\x93\x01\x02"], "msgpack"),
+    "trailing bytes": ([MODEL.encode(), msgpack.packb({"t": 1.0}) + b"\x01"], "msgpack"),
+    "empty payload": ([MODEL.encode(), b""], "msgpack"),
+    "ext type": (frames({"t": 1.0, "x": ROW, "e": msgpack.ExtType(7, b"xy")}), "msgpack"),
+    "empty ext type": (frames({"t": 1.0, "x": ROW, "e": msgpack.ExtType(7, b"")}), "msgpack"),
+    "timestamp ext -1": (frames({"t": msgpack.Timestamp(1767571200, 0), "x": ROW}),
+                         "msgpack"),
+    "unhashable map key": ([MODEL.encode(), b"\x81\x91\x01\x02"], "msgpack"),
+    "nesting too deep": ([MODEL.encode(), b"\x91" * 3000 + b"\xc0"], "msgpack"),
+    "too large": (frames({"t": 1.0, "x": ROW, "pad": "p" * LIMIT}), "too_large"),
+    "array payload": (frames([1.0, ROW]), "not_a_map"),
+    "string payload": (frames("t=1"), "not_a_map"),
+    "nil payload": (frames(None), "not_a_map"),
+    "missing t": (frames({"x": ROW}), "bad_time"),
+    "nan t": (frames({"t": math.nan, "x": ROW}), "bad_time"),
+    "inf t": (frames({"t": math.inf, "x": ROW}), "bad_time"),
+    "string t": (frames({"t": "12:00", "x": ROW}), "bad_time"),
+    "bool t": (frames({"t": True, "x": ROW}), "bad_time"),
+    "lab with neither t nor id": (frames({"y": 1.0}), "bad_time"),
+    "id but features without t": (frames({"id": "S-1", "x": ROW}), "bad_time"),
+    "nan t in a block": (frames({"t": [1.0, math.nan], "x": [ROW, ROW]}), "bad_time"),
+    "string t in a block": (frames({"t": ["1767571200", 2.0], "x": [ROW, ROW]}), "bad_time"),
+    "nil t in a block": (frames({"t": [None, 2.0], "x": [ROW, ROW]}), "bad_time"),
+    "neither x nor y": (frames({"t": 1.0}), "bad_x"),
+    "x too short": (frames({"t": 1.0, "x": ROW[:3]}), "bad_x"),
+    "x too long": (frames({"t": 1.0, "x": ROW + [1.0]}), "bad_x"),
+    "unknown tag": (frames({"t": 1.0, "x": {**dict(zip(TAGS, ROW, strict=True)),
+                                            "TI-999": 1.0}}), "bad_x"),
+    "missing tag": (frames({"t": 1.0, "x": dict(zip(TAGS[:3], ROW, strict=False))}),
+                    "bad_x"),
+    "nan x": (frames({"t": 1.0, "x": [math.nan, 14.0, 1.2, 5.0]}), "bad_x"),
+    "inf x": (frames({"t": 1.0, "x": [110.0, -math.inf, 1.2, 5.0]}), "bad_x"),
+    "nan x in a map": (frames({"t": 1.0, "x": {**dict(zip(TAGS, ROW, strict=True)),
+                                               "PI-110": math.nan}}), "bad_x"),
+    "string in x": (frames({"t": 1.0, "x": [110.0, "14", 1.2, 5.0]}), "bad_x"),
+    "bool in x": (frames({"t": 1.0, "x": [110.0, True, 1.2, 5.0]}), "bad_x"),
+    "x a number": (frames({"t": 1.0, "x": 110.0}), "bad_x"),
+    "nan y": (frames({"t": 1.0, "y": math.nan}), "bad_y"),
+    "inf y": (frames({"t": 1.0, "y": math.inf}), "bad_y"),
+    "string y": (frames({"t": 1.0, "y": "170 ppm"}), "bad_y"),
+    "nan y in a block": (frames({"t": [1.0, 2.0], "y": [None, math.nan]}), "bad_y"),
+    "float id": (frames({"t": 1.0, "x": ROW, "id": 1.5}), "bad_id"),
+    "bool id": (frames({"t": 1.0, "x": ROW, "id": True}), "bad_id"),
+    "empty id": (frames({"t": 1.0, "x": ROW, "id": ""}), "bad_id"),
+    "list id": (frames({"t": 1.0, "x": ROW, "id": [1]}), "bad_id"),
+    "bytes id": (frames({"t": 1.0, "x": ROW, "id": b"S-1"}), "bad_id"),
+    "float seq": (frames({"t": 1.0, "x": ROW, "seq": 2.0}), "bad_id"),
+    "empty block": (frames({"t": [], "x": []}), "bad_block"),
+    "block x shorter than t": (frames({"t": [1.0, 2.0], "x": [ROW]}), "bad_block"),
+    "block y longer than t": (frames({"t": [1.0, 2.0], "y": [1.0, 2.0, 3.0]}), "bad_block"),
+    "block id shorter than t": (frames({"t": [1.0, 2.0], "x": [ROW, ROW], "id": ["a"]}),
+                                "bad_block"),
+    "block x not a list": (frames({"t": [1.0], "x": {"TI-104": 1.0}}), "bad_block"),
+    "block with neither x nor y": (frames({"t": [1.0, 2.0]}), "bad_block"),
+    "bad row in a block": (frames({"t": [1.0, 2.0], "x": [ROW, ROW[:2]]}), "bad_x"),
+    "string in a block row": (frames({"t": [1.0, 2.0], "x": [ROW, ["110", 14.0, 1.2, 5.0]]}),
+                              "bad_x"),
+    "inf in a block row": (frames({"t": [1.0, 2.0], "x": [ROW, [110.0, 14.0, math.inf, 5.0]]}),
+                           "bad_x"),
+    "nil row in a block": (frames({"t": [1.0, 2.0], "x": [ROW, None]}), "bad_x"),
+}
+
+
+@pytest.mark.parametrize("case", list(BAD_FEEDS))
+def test_bad_feed_message_is_rejected_with_its_reason(case):
+    frame_list, reason = BAD_FEEDS[case]
+    assert reason_of(frame_list) == reason
+
+
+def test_block_longer_than_the_limit():
+    n = MAX_BLOCK + 1
+    payload = msgpack.packb({"t": [1.0] * n, "y": [1.0] * n})
+    with pytest.raises(WireError) as info:
+        decode_feed([MODEL.encode(), payload], SPECS, len(payload))
+    assert info.value.reason == "bad_block"
+
+
+def test_errors_are_value_errors_that_show_the_bad_value():
+    with pytest.raises(ValueError, match=r"bad_x: unknown tag 'TI-999'"):
+        decode({"t": 1.0, "x": {"TI-999": 1.0}})
+    with pytest.raises(ValueError, match=r"bad_time: .*'noon'"):
+        decode({"t": "noon", "x": ROW})
+    with pytest.raises(ValueError, match=r"too_large: 5000 bytes > 4096"):
+        wire.unpack(b"\x00" * 5000, LIMIT)
+    with pytest.raises(ValueError, match=r"x has 3 values, expected 4"):
+        decode({"t": 1.0, "x": ROW[:3]})
+    with pytest.raises(ValueError, match=r"extension type 7 refused"):
+        decode({"t": 1.0, "x": ROW, "e": msgpack.ExtType(7, b"")})
+
+
+def test_reasons_are_a_bounded_set_of_label_values():
+    assert len(set(REASONS)) == len(REASONS)
+    assert all(r.isidentifier() and r.islower() for r in REASONS)
+
+
+# ---------------------------------------------------------------------------------- control
+def test_control_commands_decode():
+    assert decode_control(msgpack.packb({"cmd": "status"}), 65536) == {"cmd": "status"}
+    msg = decode_control(msgpack.packb({"cmd": "freeze", "model": MODEL}), 65536)
+    assert msg == {"cmd": "freeze", "model": MODEL}
+
+
+@pytest.mark.parametrize("payload, reason", [
+    (b"\xc1", "msgpack"),
+    (msgpack.packb(["status"]), "not_a_map"),
+    (msgpack.packb({"command": "status"}), "not_a_map"),
+    (msgpack.packb({"cmd": 3}), "not_a_map"),
+    (msgpack.packb({"cmd": "x", "pad": "p" * 70000}), "too_large"),
+])
+def test_bad_control_payload(payload, reason):
+    with pytest.raises(WireError) as info:
+        decode_control(payload, 65536)
+    assert info.value.reason == reason
