@@ -1,0 +1,709 @@
+"""The in-process Service over real sockets: predictions, lab matching, bad input, control.
+
+The service runs in a thread on its own ZeroMQ context; the test publishes the feed on an
+XPUB, reads predictions on a SUB, sends commands on a REQ and scrapes /metrics over HTTP
+(helpers in conftest.py). Predictions are checked against ``recursive.Posterior`` run
+directly on the same samples (built by the same ``ModelConfig.build_posterior()``), the
+published intervals against ``scipy.stats.t``, and a posterior learned without forgetting
+against scikit-learn's ``Ridge`` and numpy's linear algebra.
+"""
+
+from __future__ import annotations
+
+import math
+import urllib.request
+from pathlib import Path
+
+import msgpack
+import numpy as np
+import pytest
+import zmq
+from conftest import (
+    MODEL,
+    PROBE,
+    TIMEOUT,
+    Control,
+    ServiceHarness,
+    c301_model,
+    metric,
+    rejected,
+)
+from scipy import stats
+from sklearn.linear_model import Ridge
+
+from daemon import plant
+
+RTOL = 1e-9
+PRED = f"pred/{MODEL}"
+FIT = f"fit/{MODEL}"
+
+
+# ---------------------------------------------------------------------------------- reference
+class Reference:
+    """The model run directly on a Posterior: what the daemon must publish."""
+
+    def __init__(self, cfg):
+        self.cfg = cfg
+        self.basis = cfg.build_basis()
+        self.post = cfg.build_posterior(self.basis)
+        self.last_lab_t = None
+        self.frozen = False
+
+    def status(self, t: float) -> str:
+        if not self.post.identified:
+            return "unidentified"
+        if self.frozen:
+            return "frozen"
+        if self.last_lab_t is None or t - self.last_lab_t > self.cfg.stale_after:
+            return "stale"
+        return "learning"
+
+    def predict(self, t: float, x, ident=None) -> dict:
+        phi = self.basis(np.asarray(x, dtype=float))
+        p = self.post.predict(phi, t=t)
+        lo, hi = p.interval(self.cfg.level)
+        out = {"t": t, "mean": p.mean, "std": p.std, "var": p.var, "dof": p.dof, "lo": lo,
+               "hi": hi, "level": self.cfg.level, "status": self.status(t),
+               "var_at_last_update": self.post.predict(phi).var}
+        if ident is not None:
+            out["id"] = ident
+        return out
+
+    def learn(self, t: float, x, y: float, ident=None) -> dict:
+        step = self.post.update(self.basis(np.asarray(x, dtype=float)), y, t)
+        if step.accepted:
+            self.last_lab_t = t
+        fit = {"t": t, "y": y, "pred_mean": step.mean, "pred_std": step.std,
+               "resid": step.innovation, "z": step.z, "accepted": step.accepted,
+               "reason": step.reason, "n": step.n_updates}
+        if ident is not None:
+            fit["id"] = ident
+        return fit
+
+
+NUMERIC = ("mean", "std", "var", "dof", "lo", "hi")
+
+
+def assert_preds(got: list[dict], want: list[dict]) -> None:
+    assert len(got) == len(want)
+    for name in NUMERIC:
+        np.testing.assert_allclose([g[name] for g in got], [w[name] for w in want],
+                                   rtol=RTOL, atol=0, equal_nan=True, err_msg=name)
+    for name in ("t", "status", "level"):
+        assert [g[name] for g in got] == [w[name] for w in want], name
+    assert [g.get("id") for g in got] == [w.get("id") for w in want]
+
+
+def assert_fits(got: list[dict], want: list[dict]) -> None:
+    assert len(got) == len(want)
+    for name in ("pred_mean", "pred_std", "resid", "z"):
+        np.testing.assert_allclose([g[name] for g in got], [w[name] for w in want],
+                                   rtol=RTOL, atol=1e-12, equal_nan=True, err_msg=name)
+    for name in ("t", "y", "accepted", "reason", "n"):
+        assert [g[name] for g in got] == [w[name] for w in want], name
+    assert [g.get("id") for g in got] == [w.get("id") for w in want]
+
+
+def assert_intervals_are_student_t(preds: list[dict]) -> None:
+    """lo/hi = mean -/+ t_{dof}(0.5 + level/2) * scale, scale^2 = var (dof - 2) / dof.
+
+    Reference: the Student-t quantile of scipy.stats.t.ppf and the variance of a
+    Student-t, scale^2 dof / (dof - 2); with known noise (dof = inf), scipy.stats.norm.
+    """
+    checked = 0
+    for p in preds:
+        dof = p["dof"]
+        if not (dof > 2.0):
+            continue
+        if math.isinf(dof):
+            half = stats.norm.ppf(0.5 + p["level"] / 2.0) * math.sqrt(p["var"])
+        else:
+            half = stats.t.ppf(0.5 + p["level"] / 2.0, dof) * math.sqrt(
+                p["var"] * (dof - 2.0) / dof)
+        assert p["lo"] == pytest.approx(p["mean"] - half, rel=1e-10, abs=1e-9)
+        assert p["hi"] == pytest.approx(p["mean"] + half, rel=1e-10, abs=1e-9)
+        checked += 1
+    assert checked > 0
+
+
+def split(out: list) -> tuple[list[dict], list[dict]]:
+    preds = [b for topic, b in out if topic == PRED]
+    fits = [b for topic, b in out if topic == FIT]
+    assert len(preds) + len(fits) == len(out), [m[0] for m in out]
+    return preds, fits
+
+
+def unblock(blocks: list[dict]) -> list[dict]:
+    """Block prediction messages as one dict per row."""
+    rows = []
+    for b in blocks:
+        k = len(b["t"])
+        for name in ("t", *NUMERIC, "status"):
+            assert len(b[name]) == k, name
+        for i in range(k):
+            row = {name: b[name][i] for name in ("t", *NUMERIC, "status")}
+            row["level"] = b["level"]
+            if "id" in b:
+                row["id"] = b["id"][i]
+            rows.append(row)
+    return rows
+
+
+# ---------------------------------------------------------------------------------- scenario
+SCENARIO = plant.Scenario(seed=17, days=2.0, sample_period_s=300.0, blunders=1)
+
+
+@pytest.fixture(scope="module")
+def run():
+    return plant.simulate(SCENARIO)
+
+
+def sample_id(k: int) -> str:
+    return f"S-{k:05d}"
+
+
+def test_scenario_has_late_lab_results(run):
+    # each result arrives after at least 12 newer feature samples (1 to 3 h late at 5 min)
+    newer = np.searchsorted(run.t, run.lab_arrival) - run.lab_index - 1
+    assert newer.min() >= 12 and len(run.lab_t) >= 10
+    assert run.lab_blunder.sum() == 1
+
+
+def test_single_messages_equal_the_posterior_run_directly(start_service, run):
+    h = start_service([c301_model()])
+    ref = Reference(h.model_config())
+    index = {t: k for k, t in enumerate(run.t.tolist())}
+    x_at = run.X.tolist()
+    want_preds, want_fits = [], []
+    n_lab = 0
+    for ev in plant.events(run):
+        if ev[0] == "x":
+            _, t, row = ev
+            ident = sample_id(index[t])
+            h.feed.send(MODEL, {"t": t, "x": list(row), "id": ident})
+            want_preds.append(ref.predict(t, row, ident))
+        else:
+            _, t, y, _arrival = ev
+            k = index[t]
+            if n_lab % 2:  # every other result names its sample by id only
+                h.feed.send(MODEL, {"id": sample_id(k), "y": y})
+                want_fits.append(ref.learn(t, x_at[k], y, sample_id(k)))
+            else:
+                h.feed.send(MODEL, {"t": t, "y": y})
+                want_fits.append(ref.learn(t, x_at[k], y))
+            n_lab += 1
+    preds, fits = split(h.barrier())
+    assert_preds(preds, want_preds)
+    assert_fits(fits, want_fits)
+    assert_intervals_are_student_t(preds)
+    assert [f["accepted"] for f in fits].count(False) >= 1  # the blunder is gated
+    # forgetting widened the predictions between lab results: without t they would differ
+    widened = [p["var"] > p["var_at_last_update"] * (1 + 1e-6) for p in want_preds
+               if p["dof"] > 2]
+    assert sum(widened) > len(widened) / 2
+
+    post = h.posterior()
+    np.testing.assert_allclose(post["mean"], ref.post.mean, rtol=RTOL)
+    np.testing.assert_allclose(post["cov"], ref.post.cov, rtol=1e-8)
+    assert (post["updates"], post["t_last"]) == (ref.post.n_updates, ref.post.t_last)
+    assert post["terms"] == list(ref.basis.names)
+
+    m = h.scrape()
+    assert metric(m, "posteriord_feature_samples_total", model=MODEL) == len(run.t)
+    assert metric(m, "posteriord_predictions_published_total", model=MODEL) == len(run.t)
+    assert metric(m, "posteriord_lab_results_received_total", model=MODEL) == len(run.lab_t)
+    assert metric(m, "posteriord_lab_results_learned_total", model=MODEL) == \
+        sum(f["accepted"] for f in want_fits)
+    assert rejected(m, MODEL, "gated") == sum(not f["accepted"] for f in want_fits)
+    assert metric(m, "posteriord_model_updates", model=MODEL) == ref.post.n_updates
+    assert metric(m, "posteriord_model_identified", model=MODEL) == 1.0
+    assert metric(m, "posteriord_model_predictive_std", model=MODEL) == \
+        pytest.approx(preds[-1]["std"], rel=RTOL)
+    assert metric(m, "posteriord_models") == 2  # the model and the probe
+
+    # a result for a sample older than the 12 h buffer, by time and by a remembered id;
+    # one for a time with no features near it; one for an id never seen
+    before = h.posterior()
+    h.feed.send(MODEL, {"t": run.t[0], "y": 150.0})
+    h.feed.send(MODEL, {"id": sample_id(0), "y": 150.0})
+    h.feed.send(MODEL, {"t": run.t[-1] + 3600.0, "y": 150.0})
+    h.feed.send(MODEL, {"id": "S-unknown", "y": 150.0})
+    assert h.barrier() == []
+    assert h.posterior() == before
+    m2 = h.scrape()
+    assert rejected(m2, MODEL, "lab_too_old") == 2
+    assert rejected(m2, MODEL, "lab_unmatched") == 2
+
+
+def feature_blocks(run, size: int):
+    """The run's events as block messages: features up to ``size`` rows per block, cut
+    where lab results arrive; consecutive lab results share one lab-only block."""
+    index = {t: k for k, t in enumerate(run.t.tolist())}
+    out, rows, labs = [], [], []
+
+    def cut():
+        if rows:
+            out.append(("x", list(rows)))
+            rows.clear()
+        if labs:
+            out.append(("y", list(labs)))
+            labs.clear()
+
+    for ev in plant.events(run):
+        if ev[0] == "x":
+            if labs or len(rows) == size:
+                cut()
+            rows.append((ev[1], ev[2], index[ev[1]]))
+        else:
+            if rows:
+                cut()
+            labs.append((ev[1], ev[2], index[ev[1]]))
+    cut()
+    return out
+
+
+def test_blocks_equal_the_posterior_run_directly(start_service, run):
+    h = start_service([c301_model()])
+    ref = Reference(h.model_config())
+    x_at = run.X.tolist()
+    want_preds, want_fits, sizes = [], [], []
+    for kind, items in feature_blocks(run, size=12):
+        if kind == "x":
+            h.feed.send(MODEL, {"t": [t for t, _, _ in items],
+                                "x": [list(r) for _, r, _ in items],
+                                "id": [sample_id(k) for _, _, k in items]})
+            want_preds += [ref.predict(t, r, sample_id(k)) for t, r, k in items]
+            sizes.append(len(items))
+        else:
+            h.feed.send(MODEL, {"t": [t for t, _, _ in items], "y": [y for _, y, _ in items]})
+            want_fits += [ref.learn(t, x_at[k], y) for t, y, k in items]
+    blocks, fits = split(h.barrier())
+    assert [len(b["t"]) for b in blocks] == sizes  # one prediction message per block
+    preds = unblock(blocks)
+    assert_preds(preds, want_preds)
+    assert_fits(fits, want_fits)
+    assert_intervals_are_student_t(preds)
+    post = h.posterior()
+    np.testing.assert_allclose(post["mean"], ref.post.mean, rtol=RTOL)
+    assert post["updates"] == ref.post.n_updates
+
+
+def test_block_with_lab_values_on_feature_rows(start_service, run):
+    """Rows carrying x and y are learned directly, each predicted before it is learned;
+    the block still gets one prediction message."""
+    h = start_service([c301_model()])
+    ref = Reference(h.model_config())
+    lab_y = dict(zip(run.lab_index.tolist(), run.lab_y.tolist(), strict=True))
+    t_all, x_all = run.t.tolist(), run.X.tolist()
+    want_preds, want_fits, sizes = [], [], []
+    for start in range(0, 288, 24):  # the first day in blocks of 2 h
+        ks = range(start, start + 24)
+        ys = [lab_y.get(k) for k in ks]
+        h.feed.send(MODEL, {"t": [t_all[k] for k in ks], "x": [x_all[k] for k in ks],
+                            "y": ys})
+        for k, y in zip(ks, ys, strict=True):
+            want_preds.append(ref.predict(t_all[k], x_all[k]))
+            if y is not None:
+                want_fits.append(ref.learn(t_all[k], x_all[k], y))
+        sizes.append(24)
+    blocks, fits = split(h.barrier())
+    assert len(want_fits) >= 5
+    assert [len(b["t"]) for b in blocks] == sizes
+    assert_preds(unblock(blocks), want_preds)
+    assert_fits(fits, want_fits)
+
+
+def test_known_noise_without_forgetting_is_ridge_regression(start_service, run):
+    """With known noise sigma, no forgetting and no gate, the posterior is ridge regression.
+
+    Reference: the posterior mean is the ridge estimate with lambda = alpha sigma^2 and an
+    unpenalized intercept (scikit-learn Ridge with fit_intercept=True); the covariance is
+    (alpha D + Phi^T Phi / sigma^2)^-1 with D = diag(0, 1, ..., 1) and the predictive
+    variance sigma^2 + phi^T C phi (Bishop, PRML, eqs. 3.53-3.54 and 3.58-3.59, equation
+    numbers from memory), both with numpy.linalg. Late results are matched to the features
+    of the time each was drawn.
+    """
+    sigma, alpha = 8.0, 1e-3
+    h = start_service([c301_model(basis={"kind": "identity"}, prior={"alpha": alpha},
+                                  noise={"std": sigma}, forgetting={"policy": "none"},
+                                  gate={"k": 0})])
+    assert h.model_config().build_basis().names == ("1", *plant.TAGS)
+    for ev in plant.events(run):
+        if ev[0] == "x":
+            h.feed.send(MODEL, {"t": ev[1], "x": list(ev[2])})
+        else:
+            h.feed.send(MODEL, {"t": ev[1], "y": ev[2]})
+    preds, fits = split(h.barrier())
+    assert len(fits) == len(run.lab_t) and all(f["accepted"] for f in fits)
+
+    X = run.X[run.lab_index]
+    y = run.lab_y
+    ridge = Ridge(alpha=alpha * sigma**2, fit_intercept=True, solver="cholesky").fit(X, y)
+    post = h.posterior()
+    np.testing.assert_allclose(post["mean"], [ridge.intercept_, *ridge.coef_], rtol=1e-7)
+    Phi = np.column_stack([np.ones(len(y)), X])
+    D = np.diag([0.0] + [1.0] * X.shape[1])
+    C = np.linalg.inv(alpha * D + Phi.T @ Phi / sigma**2)
+    np.testing.assert_allclose(post["cov"], C, rtol=1e-7)
+    # features after the last lab result arrived: predicted with the final posterior
+    last_arrival = run.lab_arrival.max()
+    tail = [(p, k) for p, k in zip(preds, range(len(run.t)), strict=True)
+            if run.t[k] > last_arrival]
+    assert tail
+    for p, k in tail:
+        phi = np.concatenate([[1.0], run.X[k]])
+        assert p["mean"] == pytest.approx(phi @ post["mean"], rel=1e-9)
+        assert p["var"] == pytest.approx(sigma**2 + phi @ C @ phi, rel=1e-7)
+        assert p["dof"] == math.inf
+    assert_intervals_are_student_t(preds)
+
+
+# ---------------------------------------------------------------------------------- bad input
+MAX_BYTES = 4096
+ROW = [110.0, 14.0, 1.2, 5.0]
+
+
+@pytest.fixture(scope="module")
+def learned(tmp_path_factory, run):
+    """A daemon that has learned the first day of the run (shared by the bad-input tests,
+    which compare counters and the posterior before and after)."""
+    folder = tmp_path_factory.mktemp("bad")
+    h = ServiceHarness(folder, [c301_model()], max_message_bytes=MAX_BYTES)
+    day = run.t[0] + 86400.0
+    for ev in plant.events(run):
+        if ev[0] == "x" and ev[1] < day:
+            h.feed.send(MODEL, {"t": ev[1], "x": list(ev[2])})
+            h.clock = ev[1]
+        elif ev[0] == "y" and ev[3] < day:
+            h.feed.send(MODEL, {"t": ev[1], "y": ev[2]})
+    h.barrier()
+    assert h.posterior()["updates"] >= 4
+    yield h
+    h.stop()
+
+
+def _m(body) -> list[bytes]:
+    return [MODEL.encode(), msgpack.packb(body, use_bin_type=True)]
+
+
+def _feature(h, **extra) -> dict:
+    return {"t": h.clock + 60.0, "x": ROW, **extra}
+
+
+# name -> (frames to send given the harness, model label, reason, count); reason None means
+# nothing at all may be counted
+BAD_INPUT = {
+    "topic not subscribed": (lambda h: [[b"c302.other", _m(_feature(h))[1]]], "", None, 0),
+    "topic extends a model name": (
+        lambda h: [[(MODEL + "_x").encode(), _m(_feature(h))[1]]], "", "unknown_model", 1),
+    "malformed msgpack": (lambda h: [[MODEL.encode(), b"\xc1\x00"]], MODEL, "msgpack", 1),
+    "truncated msgpack": (lambda h: [[MODEL.encode(), b"\x82\xa1t"]], MODEL, "msgpack", 1),
+    "one frame": (lambda h: [[MODEL.encode()]], MODEL, "frames", 1),
+    "three frames": (lambda h: [_m(_feature(h)) + [b"extra"]], MODEL, "frames", 1),
+    "non-map payload": (lambda h: [_m([h.clock + 60.0, ROW])], MODEL, "not_a_map", 1),
+    "missing t": (lambda h: [_m({"x": ROW})], MODEL, "bad_time", 1),
+    "non-finite t": (lambda h: [_m({"t": math.nan, "x": ROW}), _m({"t": math.inf, "x": ROW}),
+                                _m({"t": -math.inf, "y": 1.0})], MODEL, "bad_time", 3),
+    "x wrong length": (lambda h: [_m(_feature(h, x=ROW[:3])), _m(_feature(h, x=ROW * 2))],
+                       MODEL, "bad_x", 2),
+    "unknown tag": (lambda h: [_m(_feature(h, x={**dict(zip(plant.TAGS, ROW, strict=True)),
+                                                 "TI-999": 1.0}))], MODEL, "bad_x", 1),
+    "non-finite x": (lambda h: [_m(_feature(h, x=[math.nan, 14.0, 1.2, 5.0])),
+                                _m(_feature(h, x=[110.0, math.inf, 1.2, 5.0])),
+                                _m(_feature(h, x={"TI-104": 110.0, "FI-201": 14.0,
+                                                  "PI-110": -math.inf, "AI-305": 5.0}))],
+                     MODEL, "bad_x", 3),
+    "non-finite y": (lambda h: [_m({"t": h.clock - 600.0, "y": math.nan}),
+                                _m({"t": h.clock - 600.0, "y": math.inf})], MODEL, "bad_y", 2),
+    "bad id type": (lambda h: [_m(_feature(h, id=1.5)), _m(_feature(h, id=True)),
+                               _m(_feature(h, id=["S-1"])), _m({"id": 2.5, "y": 100.0})],
+                    MODEL, "bad_id", 4),
+    "bad seq type": (lambda h: [_m(_feature(h, seq="7"))], MODEL, "bad_id", 1),
+    "out-of-order sample": (lambda h: [_m({"t": h.clock - 300.0, "x": ROW})], MODEL,
+                            "out_of_order", 1),
+    "duplicate sample": (lambda h: [_m({"t": h.clock, "x": ROW})], MODEL, "duplicate", 1),
+    "oversize message": (lambda h: [_m(_feature(h, pad="p" * MAX_BYTES))], MODEL,
+                         "too_large", 1),
+    "msgpack ext type": (lambda h: [_m(_feature(h, note=msgpack.ExtType(9, b"x")))], MODEL,
+                         "msgpack", 1),
+    "msgpack timestamp": (lambda h: [_m({"t": msgpack.Timestamp(1767571200), "x": ROW})],
+                          MODEL, "msgpack", 1),
+    "bad block lengths": (lambda h: [_m({"t": [h.clock + 60, h.clock + 120], "x": [ROW]}),
+                                     _m({"t": [h.clock + 60], "x": [ROW], "y": [None, 1.0]}),
+                                     _m({"t": [h.clock + 60], "x": [ROW], "id": []}),
+                                     _m({"t": [], "x": []})], MODEL, "bad_block", 4),
+    "lab result too old": (lambda h: [_m({"t": h.clock - 86400.0, "y": 100.0})], MODEL,
+                           "lab_too_old", 1),
+    "lab result with no features near": (lambda h: [_m({"t": h.clock + 3600.0, "y": 100.0})],
+                                         MODEL, "lab_unmatched", 1),
+}
+
+
+def _rejections(m: dict) -> dict:
+    return {labels: v for (name, labels), v in m.items() if name == "posteriord_rejected_total"}
+
+
+def _received(m: dict) -> dict:
+    """Messages received per model label, the probe's left out (the barrier uses it)."""
+    return {labels: v for (name, labels), v in m.items()
+            if name == "posteriord_messages_received_total"
+            and labels != frozenset({("model", PROBE)})}
+
+
+@pytest.mark.parametrize("case", list(BAD_INPUT))
+def test_bad_input_is_counted_and_changes_nothing(learned, case):
+    build, label, reason, count = BAD_INPUT[case]
+    h = learned
+    before_post, before = h.posterior(), h.scrape()
+    messages = build(h)
+    for frames in messages:
+        h.feed.send_frames(frames)
+    assert h.barrier() == []  # nothing published for it, and the loop still runs
+    assert h.alive() and h.ctl("ping") == {"ok": True}
+    after = h.scrape()
+    assert h.posterior() == before_post
+    rej_before, rej_after = _rejections(before), _rejections(after)
+    delta = {k: v - rej_before.get(k, 0.0) for k, v in rej_after.items()
+             if v != rej_before.get(k, 0.0)}
+    received = _received(after)[frozenset({("model", label)})] - \
+        _received(before)[frozenset({("model", label)})]
+    if reason is None:
+        assert delta == {} and received == 0
+        assert _received(after) == _received(before)
+    else:
+        assert delta == {frozenset({("model", label), ("reason", reason)}): count}
+        assert received == len(messages)
+
+
+def test_features_whose_basis_overflows_cannot_be_learned(learned):
+    """Finite but absurd readings: the prediction is published, the lab result matched to
+    them is rejected (bad_x) and the loop goes on."""
+    h = learned
+    t = h.clock + 60.0
+    before_post, before = h.posterior(), h.scrape()
+    h.feed.send(MODEL, {"t": t, "x": [1e200, 14.0, 1.2, 5.0]})
+    h.feed.send(MODEL, {"t": t, "y": 100.0})
+    h.clock = t
+    out = h.barrier()
+    assert [topic for topic, _ in out] == [PRED]
+    assert h.alive() and h.ctl("ping") == {"ok": True}
+    assert h.posterior() == before_post
+    assert rejected(h.scrape(), MODEL, "bad_x") - rejected(before, MODEL, "bad_x") == 1
+
+
+def test_seq_gaps_are_counted(learned):
+    h = learned
+    before = h.scrape()
+    seqs = [1001, 1002, 1005, 1006, 1010]
+    for s in seqs:
+        h.clock += 60.0
+        h.feed.send(MODEL, {"t": h.clock, "x": ROW, "seq": s})
+    preds, _ = split(h.barrier())
+    assert len(preds) == len(seqs)
+    after = h.scrape()
+    for name, want in (("posteriord_feed_gaps_total", 2), ("posteriord_feed_lost_messages_total",
+                                                          2 + 3)):
+        assert metric(after, name, model=MODEL) - metric(before, name, model=MODEL) == want
+
+
+def test_bad_control_requests_get_ok_false(learned):
+    h = learned
+    bad = [
+        [b"\xc1"],                                        # not msgpack
+        [msgpack.packb(["status"])],                      # not a map
+        [msgpack.packb({"command": "status"})],           # no cmd
+        [msgpack.packb({"cmd": 7})],                      # cmd not a string
+        [msgpack.packb({"cmd": "status"}), b"more"],      # two frames
+    ]
+    for frames in bad:
+        reply = h.ctl.raw(frames)
+        assert reply["ok"] is False and reply["error"], frames
+    reply = h.ctl("explode")
+    assert reply["ok"] is False and "unknown command 'explode'" in reply["error"]
+    for cmd in ("posterior", "freeze", "resume", "reset"):
+        assert h.ctl(cmd)["ok"] is False                  # no model
+        assert h.ctl(cmd, model="c301.nothing")["ok"] is False
+    assert h.ctl("ping") == {"ok": True}
+
+
+def test_oversize_control_request_drops_that_client_only(learned):
+    """The control socket's ZMQ_MAXMSGSIZE (64 KiB) makes libzmq drop the connection of a
+    client sending more: that request gets no reply, other clients are served."""
+    h = learned
+    big = Control(h.ctx, h.ctl.sock.getsockopt_string(zmq.LAST_ENDPOINT), timeout=0.5)
+    try:
+        with pytest.raises(AssertionError, match="no reply"):
+            big("status", pad="p" * 70000)
+    finally:
+        big.sock.close(linger=0)
+    assert h.ctl("ping") == {"ok": True}
+    assert h.alive()
+
+
+def test_reload_without_a_config_file(learned):
+    def count():
+        return metric(learned.scrape(), "posteriord_config_reloads_total",
+                      result="unavailable")
+
+    before = count()
+    reply = learned.ctl("reload")
+    assert reply["ok"] is False and "no config file" in reply["error"]
+    assert count() == before + 1
+
+
+def test_checkpoint_reply(learned):
+    reply = learned.ctl("checkpoint")
+    if reply["ok"]:
+        state_dir = Path(learned.config.daemon.state_dir)
+        assert any(p.is_file() for p in state_dir.rglob("*"))
+    else:
+        assert "unavailable" in reply["error"]
+
+
+def test_oversize_feed_message_is_counted_and_the_feed_stays_connected(start_service):
+    """A message far over max_message_bytes is dropped and counted (too_large) by the
+    decoder; the connection to the publisher stays up and later messages get through.
+
+    (With ZMQ_MAXMSGSIZE on the SUB, libzmq would close that connection as a protocol error
+    and never reconnect: the daemon would run on, deaf to the feed, with nothing counted.)
+    """
+    h = start_service([c301_model()], max_message_bytes=MAX_BYTES)
+    h.feed.send(MODEL, {"t": 1000.0, "x": ROW})
+    assert len(h.barrier()) == 1
+    before_post, before = h.posterior(), h.scrape()
+    h.feed.send(MODEL, {"t": 1060.0, "x": ROW, "pad": "p" * (64 * MAX_BYTES)})
+    h.feed.send(MODEL, {"t": 1120.0, "x": ROW})
+    preds, _ = split(h.barrier())
+    assert [p["t"] for p in preds] == [1120.0]
+    h.feed.drain_events()
+    assert ("unsub", MODEL) not in h.feed.events
+    after = h.scrape()
+    assert h.posterior() == before_post
+    assert rejected(after, MODEL, "too_large") == rejected(before, MODEL, "too_large") + 1
+    assert metric(after, "posteriord_messages_received_total", model=MODEL) == \
+        metric(before, "posteriord_messages_received_total", model=MODEL) + 2
+
+
+# ---------------------------------------------------------------------------------- control
+def test_freeze_resume_reset(start_service, run):
+    h = start_service([c301_model(lab={"keep": "24h", "keep_count": 5000, "tolerance": "2m",
+                                       "stale_after": "36h"})])
+    cfg = h.model_config()
+    ref = Reference(cfg)
+    x_at = run.X.tolist()
+    t_all = run.t.tolist()
+    # every feature sample of the run, and all but the last four lab results (drawn in the
+    # last day, so still in the 24 h buffer)
+    labs = [ev for ev in plant.events(run) if ev[0] == "y"]
+    held = labs[-4:]
+    assert all(ev[1] >= t_all[-1] - 86400.0 for ev in held)
+    for ev in plant.events(run):
+        if ev[0] == "x":
+            h.feed.send(MODEL, {"t": ev[1], "x": list(ev[2])})
+            ref.predict(ev[1], ev[2])
+        elif ev not in held:
+            h.feed.send(MODEL, {"t": ev[1], "y": ev[2]})
+            ref.learn(ev[1], x_at[t_all.index(ev[1])], ev[2])
+    h.barrier()
+    status = h.ctl("status")["models"][MODEL]
+    assert status["status"] == ref.status(t_all[-1]) == "learning"
+    assert status["frozen"] is False
+
+    assert h.ctl("freeze", model=MODEL) == {"ok": True, "model": MODEL, "command": "freeze"}
+    assert h.ctl("status")["models"][MODEL]["frozen"] is True
+    frozen_post = h.posterior()
+    _, t1, y1, _ = held[0]
+    h.feed.send(MODEL, {"t": t1, "y": y1})
+    ref.frozen = True
+    extra_t = [t_all[-1] + 300.0 * (i + 1) for i in range(3)]
+    for t in extra_t:
+        h.feed.send(MODEL, {"t": t, "x": x_at[-1]})
+    preds, fits = split(h.barrier())
+    assert fits == []
+    assert_preds(preds, [ref.predict(t, x_at[-1]) for t in extra_t])
+    assert {p["status"] for p in preds} == {"frozen"}
+    assert h.posterior() == frozen_post
+    assert rejected(h.scrape(), MODEL, "frozen") == 1
+    assert h.ctl("status")["models"][MODEL]["status"] == "frozen"
+
+    assert h.ctl("resume", model=MODEL)["ok"] is True
+    ref.frozen = False
+    _, t2, y2, _ = held[1]
+    h.feed.send(MODEL, {"t": t2, "y": y2})
+    h.feed.send(MODEL, {"t": extra_t[-1] + 300.0, "x": x_at[-1]})
+    want_fit = ref.learn(t2, x_at[t_all.index(t2)], y2)
+    want_pred = ref.predict(extra_t[-1] + 300.0, x_at[-1])
+    preds, fits = split(h.barrier())
+    assert_fits(fits, [want_fit])
+    assert_preds(preds, [want_pred])
+    assert fits[0]["accepted"] and want_pred["status"] == "learning"
+    assert h.posterior()["updates"] == frozen_post["updates"] + 1
+
+    assert h.ctl("reset", model=MODEL)["ok"] is True
+    fresh = Reference(cfg)
+    post = h.posterior()
+    assert post["updates"] == 0 and post["t_last"] is None
+    assert post["mean"] == [None] * len(fresh.basis.names)  # nan (not identified) -> nil
+    assert post["noise_var"] == fresh.post.noise_var and post["dof"] == fresh.post.dof
+    assert h.ctl("status")["models"][MODEL]["status"] == "unidentified"
+    # the buffered features are kept: later results are matched and learned from the prior
+    t_next = extra_t[-1] + 600.0
+    h.feed.send(MODEL, {"t": t_next, "x": x_at[-1]})
+    want = [fresh.predict(t_next, x_at[-1])]
+    want_fits = []
+    for _, t, y, _ in held[2:]:
+        h.feed.send(MODEL, {"t": t, "y": y})
+        want_fits.append(fresh.learn(t, x_at[t_all.index(t)], y))
+    preds, fits = split(h.barrier())
+    assert preds[0]["status"] == "unidentified" and math.isnan(preds[0]["mean"])
+    assert_preds(preds, want)
+    assert_fits(fits, want_fits)
+    assert h.posterior()["updates"] == fresh.post.n_updates == len(held) - 2
+
+
+def test_status_field(start_service, run):
+    h = start_service([c301_model(lab={"keep": "12h", "keep_count": 5000, "tolerance": "2m",
+                                       "stale_after": "2h"})])
+    ref = Reference(h.model_config())
+    t_all, x_all = run.t.tolist(), run.X.tolist()
+    assert h.ctl("status")["models"][MODEL]["status"] == "unidentified"
+    for k in range(12):
+        h.feed.send(MODEL, {"t": t_all[k], "x": x_all[k]})
+    preds, _ = split(h.barrier())
+    assert {p["status"] for p in preds} == {"unidentified"}
+    assert h.ctl("status")["models"][MODEL]["status"] == "unidentified"
+
+    # one lab result for the sample at index 6: learning until 2 h after it was drawn
+    h.feed.send(MODEL, {"t": t_all[6], "y": float(run.truth_y[6])})
+    ref.learn(t_all[6], x_all[6], float(run.truth_y[6]))
+    for k in range(12, 25):
+        h.feed.send(MODEL, {"t": t_all[k], "x": x_all[k]})
+    h.feed.send(MODEL, {"t": t_all[25:37], "x": x_all[25:37]})  # a block across the limit
+    out = h.barrier()
+    preds, fits = split(out)
+    assert fits[0]["accepted"] and preds[-1]["t"] == t_all[25:37]
+    rows = [*preds[:-1], *unblock(preds[-1:])]
+    want = [ref.predict(t_all[k], x_all[k]) for k in range(12, 37)]
+    assert_preds(rows, want)
+    status = {t: s for t, s in zip(t_all[12:37], [r["status"] for r in rows], strict=True)}
+    # Reference: the stale rule t - t_lab > stale_after, t_lab = t_all[6], 2 h = 24 samples
+    for k in range(12, 37):
+        assert status[t_all[k]] == ("stale" if k - 6 > 24 else "learning"), k
+    assert h.ctl("status")["models"][MODEL]["status"] == "stale"
+    assert metric(h.scrape(), "posteriord_model_lab_age_seconds", model=MODEL) == \
+        t_all[36] - t_all[6]
+
+
+# ---------------------------------------------------------------------------------- shutdown
+def test_shutdown_order_with_own_context_and_metrics(start_service):
+    h = start_service([c301_model()])
+    address = h.metrics_address
+    assert h.stop() == ["feed", "control", "publish", "metrics", "context"]
+    with pytest.raises(OSError):
+        urllib.request.urlopen(f"http://{address[0]}:{address[1]}/metrics", timeout=TIMEOUT)
+
+
+def test_shutdown_order_with_a_shared_context_and_no_metrics(start_service):
+    h = start_service([c301_model()], metrics=False, own_context=False)
+    assert h.metrics_address is None
+    assert h.stop() == ["feed", "control", "publish"]
