@@ -475,6 +475,7 @@ def test_bad_input_is_counted_and_changes_nothing(learned, case):
         assert received == len(messages)
 
 
+@pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")
 def test_features_whose_basis_overflows_cannot_be_learned(learned):
     """Finite but absurd readings: the prediction is published, the lab result matched to
     them is rejected (bad_x) and the loop goes on."""
