@@ -11,6 +11,8 @@ import math
 
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
+from daemon.monitor import REASONS, STATES, _calibration_means
+
 PREFIX = "posteriord"
 
 
@@ -85,4 +87,54 @@ class ServiceCollector:
             reloads.add_metric([result], n)
         yield from (received, features, preds, lab, learned, rejected, gaps, lost, std, noise,
                     updates, age, ident, frozen, up, reloads)
+        yield from self._detectors(runners)
         yield from svc.extra_metrics()
+
+    def _detectors(self, runners):
+        g = GaugeMetricFamily
+        level = g(f"{PREFIX}_model_trust_level", "Trust level: 0 normal, 1 caution, "
+                  "2 untrusted.", labels=["model"])
+        state = g(f"{PREFIX}_model_trust_state", "1 for the model's current trust state.",
+                  labels=["model", "state"])
+        reason = g(f"{PREFIX}_model_alert_reason", "Level at which each alert reason is held "
+                   "(0 when not held).", labels=["model", "reason"])
+        acked = g(f"{PREFIX}_model_alert_acknowledged", "1 when every held reason has been "
+                  "acknowledged.", labels=["model"])
+        names = {
+            "cusum_upper": "Upper mean-shift CUSUM statistic on z.",
+            "cusum_lower": "Lower mean-shift CUSUM statistic on z.",
+            "spread_statistic": "Spread (variance increase) CUSUM statistic on z.",
+            "coverage_ratio": "Exponentially weighted coverage of the prediction interval.",
+            "log_score": "Exponentially weighted negative log predictive density at lab results.",
+            "crps": "Exponentially weighted CRPS at lab results, in the target's units.",
+            "std_ratio": "Predictive std over its typical value.",
+            "leverage": "Largest leverage phi'V phi in the last prediction batch.",
+            "region_distance": "Largest Mahalanobis distance of the inputs from the learned "
+                               "region in the last prediction batch.",
+            "param_drift": "Mahalanobis distance of the weight change over the drift window.",
+        }
+        fams = {k: g(f"{PREFIX}_model_{k}", v, labels=["model"]) for k, v in names.items()}
+        for r in runners:
+            mon = r.monitor
+            if mon is None:
+                continue
+            m = [r.name]
+            level.add_metric(m, mon.trust.level)
+            for st in STATES:
+                state.add_metric([r.name, st], 1.0 if mon.trust.state == st else 0.0)
+            held = {name: lvl for name, lvl, _v, _l in mon.trust.reasons}
+            for name in REASONS:
+                reason.add_metric([r.name, name], held.get(name, 0))
+            acked.add_metric(m, 1.0 if mon.trust.acknowledged else 0.0)
+            cs = mon.cusum.to_state()
+            cal = _calibration_means(mon.calibration)
+            values = {
+                "cusum_upper": cs["upper"], "cusum_lower": cs["lower"],
+                "spread_statistic": mon.spread.statistic, "coverage_ratio": cal["coverage"],
+                "log_score": cal["log_score"], "crps": cal["crps"],
+                "std_ratio": mon.last["std_ratio"], "leverage": mon.last["leverage"],
+                "region_distance": mon.last["region"], "param_drift": mon.last["drift"],
+            }
+            for k, v in values.items():
+                fams[k].add_metric(m, v)
+        yield from (level, state, reason, acked, *fams.values())

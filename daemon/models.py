@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from daemon.historian import Aligner
+from daemon.monitor import Monitor
 from recursive import OutOfOrderError
 
 STATUSES = ("unidentified", "learning", "frozen", "stale")
@@ -59,6 +60,9 @@ class ModelRunner:
         self.aligner = Aligner(self.tags, dead, history, tolerance_s=cfg.tolerance,
                                max_rows=cfg.keep_count)
         self.ids: OrderedDict = OrderedDict()
+        self.monitor = Monitor(cfg, self.basis) if cfg.alerts else None
+        # alert events waiting to be published by the service
+        self.alerts: list[dict] = []
         self.frozen = False
         self.last_x_t: float | None = None
         self.last_seq: int | None = None
@@ -82,10 +86,16 @@ class ModelRunner:
         self.cfg = cfg
 
     def reset(self) -> None:
-        """Back to the configured prior; buffered features are kept."""
+        """Back to the configured prior; buffered features are kept, detectors cleared."""
         self.post.reset()
         self.last_lab_t = None
         self.last_fit = None
+        if self.monitor is not None:
+            self.monitor.reset()
+
+    @property
+    def trust(self) -> str | None:
+        return None if self.monitor is None else self.monitor.state
 
     # ------------------------------------------------------------------ feed
     def note_seq(self, seq: int | None) -> None:
@@ -144,11 +154,15 @@ class ModelRunner:
             return "stale"
         return "learning"
 
-    def predict(self, ts: list, rows: list, ids: list) -> PredBatch:
+    def predict(self, ts: list, rows, ids: list) -> PredBatch:
         """Vectorized predictions for feature samples already buffered."""
         t = np.asarray(ts, dtype=float)
-        Phi = self.basis(np.asarray(rows, dtype=float))
+        X = np.asarray(rows, dtype=float)
+        Phi = self.basis(X)
         pred = self.post.predict(Phi, t=t)
+        if self.monitor is not None:
+            self.alerts += self.monitor.on_predictions(ts[-1], X, pred.std, pred.leverage,
+                                                       self.last_lab_t)
         lo, hi = pred.interval(self.cfg.level)
         if not self.post.identified or self.frozen or self.last_lab_t is None:
             status = [self.status_at(ts[0])] * len(ts)
@@ -197,6 +211,9 @@ class ModelRunner:
             self.last_lab_t = t
         else:
             self.rejected[step.reason] += 1
+        if self.monitor is not None:
+            clock = t if self.last_x_t is None else max(t, self.last_x_t)
+            self.alerts += self.monitor.on_lab(clock, step, x, self.post)
         fit = {
             "t": t, "y": y, "pred_mean": step.mean, "pred_std": step.std,
             "resid": step.innovation, "z": step.z, "accepted": step.accepted,
@@ -204,6 +221,8 @@ class ModelRunner:
         }
         if ident is not None:
             fit["id"] = ident
+        if self.monitor is not None:
+            fit["trust"] = self.monitor.state
         self.last_fit = fit
         return fit
 
@@ -226,6 +245,8 @@ class ModelRunner:
             "lab_results": self.n_lab,
             "learned": self.n_learned,
             "rejected": dict(self.rejected),
+            "trust": self.trust,
+            "reasons": [] if self.monitor is None else self.monitor.reasons(),
         }
 
     def posterior(self) -> dict:

@@ -28,7 +28,8 @@ from daemon.models import ModelRunner, PredBatch, Rejected
 log = logging.getLogger("posteriord")
 
 PUB_LINGER_MS = 2000
-COMMANDS = ("ping", "status", "posterior", "freeze", "resume", "reset", "checkpoint", "reload")
+COMMANDS = ("ping", "status", "posterior", "detectors", "acknowledge", "freeze", "resume",
+            "reset", "checkpoint", "reload")
 
 
 class RateLimitedLog:
@@ -182,17 +183,26 @@ class Service:
     def drain(self) -> int:
         """Take up to ``batch_limit`` feed messages without blocking, process, publish."""
         limit = self.config.daemon.batch_limit
+        recv = self.sub.recv_multipart
+        batch = []
+        while len(batch) < limit:
+            try:
+                batch.append(recv(zmq.NOBLOCK))
+            except zmq.Again:
+                break
+        self.process(batch)
+        return len(batch)
+
+    def process(self, batch) -> None:
+        """Decode and process a batch of feed messages (lists of frames), then publish.
+
+        This is the whole per-message path; the backtest calls it without sockets, with a
+        publisher that records what would have been sent.
+        """
         max_bytes = self.config.daemon.max_message_bytes
         specs = {name: r.spec for name, r in self.runners.items()}
         pending: dict[str, list] = {}
-        n = 0
-        recv = self.sub.recv_multipart
-        while n < limit:
-            try:
-                frames = recv(zmq.NOBLOCK)
-            except zmq.Again:
-                break
-            n += 1
+        for frames in batch:
             try:
                 msg = wire.decode_feed(frames, specs, max_bytes)
             except wire.WireError as exc:
@@ -210,7 +220,6 @@ class Service:
             self._feed(msg, pending)
         for name, seg in pending.items():
             self._flush(self.runners[name], seg)
-        return n
 
     def _feed(self, msg: wire.Feed, pending: dict) -> None:
         runner = self.runners[msg.model]
@@ -270,9 +279,10 @@ class Service:
         mean, std, var = batch.mean.tolist(), batch.std.tolist(), batch.var.tolist()
         lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
         send = self.pub.send_multipart
+        trust = runner.trust
         if block:
             body = {"t": ts, "mean": mean, "std": std, "var": var, "lo": lo, "hi": hi,
-                    "level": level, "dof": dof, "status": batch.status}
+                    "level": level, "dof": dof, "status": batch.status, "trust": trust}
             if has_id:
                 body["id"] = ids
             send([topic, wire.packb(body)])
@@ -280,10 +290,25 @@ class Service:
             status = batch.status
             for i, t in enumerate(ts):
                 body = {"t": t, "mean": mean[i], "std": std[i], "var": var[i], "lo": lo[i],
-                        "hi": hi[i], "level": level, "dof": dof[i], "status": status[i]}
+                        "hi": hi[i], "level": level, "dof": dof[i], "status": status[i],
+                        "trust": trust}
                 if has_id and ids[i] is not None:
                     body["id"] = ids[i]
                 send([topic, wire.packb(body)])
+        if runner.alerts:
+            self._alerts(runner)
+
+    def _alerts(self, runner: ModelRunner) -> None:
+        topic = b"alert/" + runner.name.encode()
+        for event in runner.alerts:
+            event = {"model": runner.name, **event}
+            if event["kind"] == "state":
+                log.warning("trust %s: %s -> %s (%s)", runner.name, event["old"], event["new"],
+                            ", ".join(r["name"] for r in event["reasons"]) or "no reasons")
+            elif event["kind"] == "action":
+                log.warning("%s: %s after %s", runner.name, event["action"], event["reason"])
+            self.pub.send_multipart([topic, wire.packb(event)])
+        runner.alerts.clear()
 
     def _learn(self, runner: ModelRunner, t: float, y: float, ident) -> None:
         try:
@@ -295,6 +320,8 @@ class Service:
         if not fit["accepted"]:
             self._rlog.warn(runner.name, fit["reason"], f"z={fit['z']:.2f} at t={fit['t']!r}")
         self.pub.send_multipart([b"fit/" + runner.name.encode(), wire.packb(fit)])
+        if runner.alerts:
+            self._alerts(runner)
 
     # ------------------------------------------------------------------ control
     def _control(self) -> None:
@@ -334,12 +361,29 @@ class Service:
                                           f"{', '.join(sorted(self.runners))}; got {name!r}"}
         if cmd == "posterior":
             return {"ok": True, "model": name, **runner.posterior()}
+        if cmd in ("detectors", "acknowledge"):
+            if runner.monitor is None:
+                return {"ok": False, "error": f"alerts are disabled for {name} "
+                                              "([model.alerts] enabled = false)"}
+            if cmd == "detectors":
+                return {"ok": True, "model": name, **runner.monitor.view()}
+            runner.alerts.append(runner.monitor.acknowledge())
+            if self.pub is not None:
+                self._alerts(runner)
+            log.info("control: acknowledge %s", name)
+            return {"ok": True, "model": name, "command": cmd,
+                    "state": runner.monitor.state}
         if cmd == "freeze":
             runner.frozen = True
         elif cmd == "resume":
             runner.frozen = False
         elif cmd == "reset":
             runner.reset()
+            if runner.monitor is not None:
+                runner.alerts.append({"t": runner.last_x_t, "kind": "reset",
+                                      "state": runner.monitor.state})
+                if self.pub is not None:
+                    self._alerts(runner)
         log.info("control: %s %s", cmd, name)
         return {"ok": True, "model": name, "command": cmd}
 

@@ -1272,6 +1272,23 @@ class InputRegion:
         y = scipy.linalg.solve_triangular(chol, d, lower=True, check_finite=False)
         return float(math.sqrt(float(y @ y)))
 
+    def distances(self, X: Any) -> np.ndarray:
+        """Mahalanobis distances of the rows of ``X`` (k, n_inputs) in one triangular solve.
+
+        Same values as :meth:`distance` row by row (nan until ``n_inputs + 1`` updates).
+        """
+        A = np.asarray(X, dtype=float)
+        if A.ndim != 2 or A.shape[1] != self._n_inputs:
+            raise ValueError(f"X must have shape (k, {self._n_inputs}), got {np.shape(X)}")
+        if self._count < self._n_inputs + 1:
+            return np.full(A.shape[0], math.nan)
+        chol = self._factor()
+        D = A - self._mean
+        if isinstance(chol, str):
+            return np.where(np.any(D != 0, axis=1), math.inf, 0.0)
+        Y = scipy.linalg.solve_triangular(chol, D.T, lower=True, check_finite=False)
+        return np.sqrt(np.einsum("ij,ij->j", Y, Y))
+
     def step(self, x: Any, learn: bool = False) -> RegionStep:
         """Distance of ``x`` from the region and the flag; then learn ``x`` if ``learn``."""
         dist = self.distance(x)
@@ -1566,6 +1583,16 @@ class Trust:
     def level(self) -> int:
         """Index of the current level."""
         return self._level
+
+    @property
+    def reasons(self) -> tuple:
+        """Held reasons as ``(name, level, value, limit)``, sorted by name."""
+        return self._result(self._level).reasons
+
+    @property
+    def acknowledged(self) -> bool:
+        """True when reasons are held and all are acknowledged at their current level."""
+        return self._result(self._level).acknowledged
 
     def _check_active(self, active: Any) -> dict:
         if not isinstance(active, dict):

@@ -947,3 +947,23 @@ def test_value_error_messages_name_the_bad_value():
         crps_t(0.0, 0.0, 1.0, 0.75)
     with pytest.raises(ValueError, match="shape"):
         InputRegion(2, 5.0, 3.0).update([1.0])
+
+
+def test_input_region_distances_match_scipy_mahalanobis_row_by_row():
+    """Vectorized distances == scipy.spatial.distance.mahalanobis per row (via distance())."""
+    from scipy.spatial.distance import mahalanobis
+
+    rng = np.random.default_rng(77)
+    reg = InputRegion(3, half_life=1e9, limit=3.0, ridge=0.0)
+    data = rng.normal(size=(60, 3)) @ np.array([[1, 0.5, 0], [0, 1, 0.2], [0, 0, 0.3]])
+    assert np.all(np.isnan(reg.distances(data[:2])))
+    for row in data:
+        reg.update(row)
+    X = rng.normal(size=(7, 3)) * 3
+    d = reg.distances(X)
+    vi = np.linalg.inv(np.cov(data.T))
+    for i in range(7):
+        assert d[i] == pytest.approx(reg.distance(X[i]), rel=1e-12)
+        assert d[i] == pytest.approx(mahalanobis(X[i], data.mean(0), vi), rel=1e-6)
+    with pytest.raises(ValueError, match="shape"):
+        reg.distances(np.zeros((2, 4)))

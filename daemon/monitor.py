@@ -1,0 +1,256 @@
+"""Per-model trust: the drift detectors of :mod:`recursive.detect` wired to one model.
+
+A :class:`Monitor` is fed the outcome of every lab result and every batch of predictions,
+keeps the detectors' state, and turns their verdicts into the reasons of a
+:class:`recursive.detect.Trust` state machine (normal / caution / untrusted, with hysteresis).
+It returns alert events for the service to publish; it does no I/O and reads no clock: the
+time it is given is the feed's sample time.
+
+Reasons and their levels (1 = caution, 2 = untrusted):
+
+=====================  =====  ==========================================================
+reason                 level  active when
+=====================  =====  ==========================================================
+``mean_shift``         2      the two-sided CUSUM on z signalled within the last ``hold``
+                              lab results
+``spread``             1      the spread CUSUM on z signalled within the last ``hold``
+``miscalibrated``      1      the weighted coverage of the interval < ``coverage_min``
+``rejections``         1      two or more consecutive same-sign gate rejections
+``param_drift``        1      the weights moved more than ``drift_limit`` (Mahalanobis)
+                              over ``drift_window``
+``uncertainty``        2      predictive std > ``std_limit``
+``uncertainty_ratio``  1      predictive std > ``std_ratio`` x its typical value
+``stale``              1      no accepted lab result for ``stale_after``
+``extrapolation``      1      leverage phi'V phi > ``leverage_limit``
+``outside_region``     1      inputs farther than ``region_limit`` (Mahalanobis) from those
+                              learned on
+``out_of_range``       1      an input outside its declared instrument range
+=====================  =====  ==========================================================
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from recursive.detect import (
+    Calibration,
+    Cusum,
+    InputRegion,
+    ParamDrift,
+    SpreadCusum,
+    StdBaseline,
+    Trust,
+)
+
+REASONS = ("mean_shift", "spread", "miscalibrated", "rejections", "param_drift", "uncertainty",
+           "uncertainty_ratio", "stale", "extrapolation", "outside_region", "out_of_range")
+STATES = ("normal", "caution", "untrusted")
+SCHEMA = 1
+_MIN_CALIBRATION = 20
+
+
+class Monitor:
+    """Detectors and trust state of one model (see the module docstring)."""
+
+    def __init__(self, cfg, basis):
+        self.cfg = cfg
+        self.basis = basis
+        n_in = len(cfg.inputs)
+        self.cusum = Cusum(cfg.cusum_k, cfg.cusum_h, cfg.head_start)
+        self.spread = SpreadCusum(cfg.spread_sigma, cfg.spread_h)
+        self.calibration = Calibration(cfg.calibration_half_life, cfg.level)
+        self.std = StdBaseline(cfg.std_half_life, limit_abs=cfg.std_limit,
+                               ratio=cfg.std_ratio if cfg.std_ratio > 0 else None)
+        self.region = InputRegion(n_in, cfg.region_half_life,
+                                  cfg.region_limit if cfg.region_limit > 0 else 1.0)
+        self.drift = ParamDrift(cfg.drift_window)
+        self.trust = Trust(STATES, cfg.clear_count, cfg.clear_time)
+        self._clear_views()
+
+    def _clear_views(self) -> None:
+        self.labs_since_shift: int | None = None
+        self.labs_since_spread: int | None = None
+        self.lab_active: dict = {}
+        self.pred_active: dict = {}
+        self.last = {"std_ratio": math.nan, "leverage": math.nan, "region": math.nan,
+                     "drift": math.nan, "kl": math.nan, "out_of_range": 0.0}
+        self.clock: float | None = None
+
+    def reset(self) -> None:
+        """Forget all detector state (with the model's reset)."""
+        for d in (self.cusum, self.spread, self.calibration, self.std, self.region, self.drift,
+                  self.trust):
+            d.reset()
+        self._clear_views()
+
+    @property
+    def state(self) -> str:
+        return self.trust.state
+
+    # ------------------------------------------------------------------ events
+    def on_lab(self, clock: float, step, x, post) -> list[dict]:
+        """After a lab result was offered to the posterior (accepted or gated)."""
+        cfg = self.cfg
+        events: list[dict] = []
+        act = self.lab_active
+        run = abs(step.reject_run)
+        if run >= 2:
+            act["rejections"] = (1, float(run), 2.0)
+        else:
+            act.pop("rejections", None)
+        if step.accepted and math.isfinite(step.z):
+            c = self.cusum.step(step.z)
+            if self.labs_since_shift is not None:
+                self.labs_since_shift += 1
+            if c.signal:
+                self.labs_since_shift = 0
+                act["mean_shift"] = (2, max(c.upper, c.lower) if max(c.upper, c.lower) > 0
+                                     else cfg.cusum_h, cfg.cusum_h)
+                if cfg.auto_flatten:
+                    post.flatten(cfg.flatten_keep)
+                    events.append({"t": clock, "kind": "action", "action": "flatten",
+                                   "keep": cfg.flatten_keep, "reason": "mean_shift",
+                                   "direction": int(c.signal)})
+            elif self.labs_since_shift is not None and self.labs_since_shift >= cfg.hold:
+                act.pop("mean_shift", None)
+                self.labs_since_shift = None
+            s = self.spread.step(step.z)
+            if self.labs_since_spread is not None:
+                self.labs_since_spread += 1
+            if s.signal:
+                self.labs_since_spread = 0
+                act["spread"] = (1, cfg.spread_h, cfg.spread_h)
+            elif self.labs_since_spread is not None and self.labs_since_spread >= cfg.hold:
+                act.pop("spread", None)
+                self.labs_since_spread = None
+            cal = self.calibration.step(step.y, step.mean, step.scale, step.dof)
+            if self.calibration.count >= _MIN_CALIBRATION and cal.coverage < cfg.coverage_min:
+                act["miscalibrated"] = (1, cal.coverage, cfg.coverage_min)
+            else:
+                act.pop("miscalibrated", None)
+            if math.isfinite(step.std):
+                self.std.step(step.std, learn=True)
+        if step.accepted:
+            self.region.update(np.asarray(x, dtype=float))
+            cov = post.scale_matrix
+            if np.all(np.isfinite(cov)):
+                d = self.drift.step(clock, post.mean, cov)
+                self.last["drift"], self.last["kl"] = d.mahalanobis, d.kl
+                if cfg.drift_limit > 0 and d.mahalanobis > cfg.drift_limit:
+                    act["param_drift"] = (1, d.mahalanobis, cfg.drift_limit)
+                else:
+                    act.pop("param_drift", None)
+        return events + self._evaluate(clock)
+
+    def on_predictions(self, clock: float, X: np.ndarray, std: np.ndarray,
+                       leverage: np.ndarray, last_lab_t: float | None) -> list[dict]:
+        """After a batch of predictions (rows ``X`` of raw inputs)."""
+        cfg = self.cfg
+        act = self.pred_active
+        act.clear()
+        s_last = float(std[-1])
+        if math.isfinite(s_last):
+            b = self.std.step(s_last)
+            self.last["std_ratio"] = b.ratio
+            if b.too_high_abs:
+                act["uncertainty"] = (2, s_last, cfg.std_limit)
+            if b.too_high_ratio:
+                act["uncertainty_ratio"] = (1, b.ratio, cfg.std_ratio)
+        elif not math.isnan(s_last) and cfg.std_limit is not None:
+            act["uncertainty"] = (2, s_last, cfg.std_limit)
+        lev = float(np.max(leverage)) if len(leverage) else math.nan
+        self.last["leverage"] = lev
+        if cfg.leverage_limit > 0 and lev > cfg.leverage_limit:
+            act["extrapolation"] = (1, lev, cfg.leverage_limit)
+        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+            dist = float(np.max(self.region.distances(X)))
+            self.last["region"] = dist
+            if dist > cfg.region_limit:
+                act["outside_region"] = (1, dist, cfg.region_limit)
+        outside = int(np.count_nonzero(self.basis.out_of_range(X).any(axis=1)))
+        self.last["out_of_range"] = float(outside)
+        if outside:
+            act["out_of_range"] = (1, float(outside), 0.0)
+        if last_lab_t is not None and clock - last_lab_t > cfg.stale_after:
+            act["stale"] = (1, clock - last_lab_t, cfg.stale_after)
+        return self._evaluate(clock)
+
+    def _evaluate(self, clock: float) -> list[dict]:
+        if self.clock is not None and clock < self.clock:
+            clock = self.clock  # lab results carry older sample times; the clock never goes back
+        self.clock = clock
+        active = {**self.lab_active, **self.pred_active}
+        step = self.trust.step(clock, active)
+        if not step.changed:
+            return []
+        return [{"t": clock, "kind": "state", "old": step.old, "new": step.state,
+                 "reasons": _reasons(step.reasons), "acknowledged": step.acknowledged}]
+
+    def acknowledge(self) -> dict:
+        self.trust.acknowledge()
+        return {"t": self.clock, "kind": "ack", "state": self.trust.state}
+
+    # ------------------------------------------------------------------ views
+    def reasons(self) -> list[dict]:
+        return _reasons(self.trust.reasons)
+
+    def view(self) -> dict:
+        """Detector statistics and the trust state, for the control socket."""
+        cal = self.calibration
+        return {
+            "state": self.trust.state,
+            "reasons": self.reasons(),
+            "cusum": {k: v for k, v in self.cusum.to_state().items()
+                      if k in ("upper", "lower", "run_length")} | self.cusum.params(),
+            "spread": {"statistic": self.spread.statistic, **self.spread.params()},
+            "calibration": {"count": cal.count, **_calibration_means(cal)},
+            "std": {"baseline": self.std.baseline, "ratio": self.last["std_ratio"]},
+            "leverage": self.last["leverage"],
+            "region_distance": self.last["region"],
+            "param_drift": {"mahalanobis": self.last["drift"], "kl": self.last["kl"]},
+            "out_of_range_rows": self.last["out_of_range"],
+        }
+
+    def to_state(self) -> dict:
+        return {
+            "schema": SCHEMA,
+            "cusum": self.cusum.to_state(), "spread": self.spread.to_state(),
+            "calibration": self.calibration.to_state(), "std": self.std.to_state(),
+            "region": self.region.to_state(), "drift": self.drift.to_state(),
+            "trust": self.trust.to_state(),
+            "labs_since_shift": self.labs_since_shift, "labs_since_spread": self.labs_since_spread,
+            "lab_active": {k: list(v) for k, v in self.lab_active.items()},
+            "clock": self.clock,
+        }
+
+    def load_state(self, d: dict) -> None:
+        if d.get("schema") != SCHEMA:
+            raise ValueError(f"monitor state schema must be {SCHEMA}, got {d.get('schema')!r}")
+        self.cusum = Cusum.from_state(d["cusum"])
+        self.spread = SpreadCusum.from_state(d["spread"])
+        self.calibration = Calibration.from_state(d["calibration"])
+        self.std = StdBaseline.from_state(d["std"])
+        self.region = InputRegion.from_state(d["region"])
+        self.drift = ParamDrift.from_state(d["drift"])
+        self.trust = Trust.from_state(d["trust"])
+        self.labs_since_shift = d["labs_since_shift"]
+        self.labs_since_spread = d["labs_since_spread"]
+        self.lab_active = {k: (int(v[0]), float(v[1]), float(v[2]))
+                           for k, v in d["lab_active"].items()}
+        self.clock = d["clock"]
+
+
+def _reasons(reasons) -> list[dict]:
+    return [{"name": n, "level": STATES[lvl], "value": v, "limit": lim}
+            for n, lvl, v, lim in reasons]
+
+
+def _calibration_means(cal: Calibration) -> dict:
+    st = cal.to_state()
+    w = st["weight_sum"]
+    if not w > 0:
+        return {"coverage": math.nan, "log_score": math.nan, "crps": math.nan}
+    return {"coverage": st["covered_sum"] / w, "log_score": st["log_score_sum"] / w,
+            "crps": st["crps_sum"] / w}
