@@ -68,6 +68,8 @@ def _check_half_life(half_life: float) -> float:
 
 def _delta(half_life: float, dt):
     """``2**(-dt / half_life)``, scalar or array."""
+    if isinstance(dt, float):
+        return 2.0 ** (-dt / half_life)
     return np.exp2(-np.asarray(dt, dtype=float) / half_life)
 
 

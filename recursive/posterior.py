@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 from scipy import special
@@ -118,9 +119,8 @@ class Prediction:
         return lo, hi
 
 
-@dataclass(frozen=True)
-class Step:
-    """The outcome of one :meth:`Posterior.update`.
+class Step(NamedTuple):
+    """The outcome of one :meth:`Posterior.update` (an immutable named tuple).
 
     Attributes
     ----------
