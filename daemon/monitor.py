@@ -125,11 +125,15 @@ class Monitor:
             elif self.labs_since_spread is not None and self.labs_since_spread >= cfg.hold:
                 act.pop("spread", None)
                 self.labs_since_spread = None
-            cal = self.calibration.step(step.y, step.mean, step.scale, step.dof)
-            if self.calibration.count >= _MIN_CALIBRATION and cal.coverage < cfg.coverage_min:
-                act["miscalibrated"] = (1, cal.coverage, cfg.coverage_min)
-            else:
-                act.pop("miscalibrated", None)
+            # a t predictive with dof <= 1 has no CRPS (a young model with an uninformative
+            # noise prior): such results are not scored, and the verdict stays as it was
+            if step.dof > 1.0:
+                cal = self.calibration.step(step.y, step.mean, step.scale, step.dof)
+                if (self.calibration.count >= _MIN_CALIBRATION
+                        and cal.coverage < cfg.coverage_min):
+                    act["miscalibrated"] = (1, cal.coverage, cfg.coverage_min)
+                else:
+                    act.pop("miscalibrated", None)
             if math.isfinite(step.std):
                 self.std.step(step.std, learn=True)
         if step.accepted:
