@@ -49,6 +49,9 @@ REASONS = ("mean_shift", "spread", "miscalibrated", "rejections", "param_drift",
 STATES = ("normal", "caution", "untrusted")
 SCHEMA = 1
 _MIN_CALIBRATION = 20
+# the latest value of each statistic shown by view() and the metrics, before any is computed
+_LAST = {"std_ratio": math.nan, "leverage": math.nan, "region": math.nan, "drift": math.nan,
+         "kl": math.nan, "out_of_range": 0.0}
 
 
 class Monitor:
@@ -74,8 +77,7 @@ class Monitor:
         self.labs_since_spread: int | None = None
         self.lab_active: dict = {}
         self.pred_active: dict = {}
-        self.last = {"std_ratio": math.nan, "leverage": math.nan, "region": math.nan,
-                     "drift": math.nan, "kl": math.nan, "out_of_range": 0.0}
+        self.last = dict(_LAST)
         self.clock: float | None = None
 
     def reset(self) -> None:
@@ -226,6 +228,10 @@ class Monitor:
             "trust": self.trust.to_state(),
             "labs_since_shift": self.labs_since_shift, "labs_since_spread": self.labs_since_spread,
             "lab_active": {k: list(v) for k, v in self.lab_active.items()},
+            # the last batch's verdicts stay active until the next batch; without them a lab
+            # result right after a restore would count those reasons as gone
+            "pred_active": {k: list(v) for k, v in self.pred_active.items()},
+            "last": dict(self.last),
             "clock": self.clock,
         }
 
@@ -243,6 +249,11 @@ class Monitor:
         self.labs_since_spread = d["labs_since_spread"]
         self.lab_active = {k: (int(v[0]), float(v[1]), float(v[2]))
                            for k, v in d["lab_active"].items()}
+        # states written before these two keys existed restore as after a prediction-free start
+        self.pred_active = {k: (int(v[0]), float(v[1]), float(v[2]))
+                            for k, v in d.get("pred_active", {}).items()}
+        last = d.get("last", {})
+        self.last = {k: float(last.get(k, v)) for k, v in _LAST.items()}
         self.clock = d["clock"]
 
 
