@@ -164,8 +164,14 @@ class Monitor:
                 act["uncertainty"] = (2, s_last, cfg.std_limit)
             if b.too_high_ratio:
                 act["uncertainty_ratio"] = (1, b.ratio, cfg.std_ratio)
-        elif not math.isnan(s_last) and cfg.std_limit is not None:
-            act["uncertainty"] = (2, s_last, cfg.std_limit)
+        elif s_last == math.inf:
+            # a t predictive with dof <= 2 has no finite variance: it is above any limit, and
+            # above any multiple of a baseline (a model that forgot nearly everything)
+            if cfg.std_limit is not None:
+                act["uncertainty"] = (2, s_last, cfg.std_limit)
+            if cfg.std_ratio > 0 and math.isfinite(self.std.baseline):
+                self.last["std_ratio"] = math.inf
+                act["uncertainty_ratio"] = (1, math.inf, cfg.std_ratio)
         lev = float(np.max(leverage)) if len(leverage) else math.nan
         self.last["leverage"] = lev
         if cfg.leverage_limit > 0 and lev > cfg.leverage_limit:
