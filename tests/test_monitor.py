@@ -328,6 +328,18 @@ def test_std_ratio_against_weighted_geometric_mean():
     assert mon.view()["std"]["baseline"] == pytest.approx(baseline, rel=1e-12)
 
 
+def test_infinite_std_is_above_the_ratio_limit():
+    # a t predictive with dof <= 2 has an infinite std: a model that has forgotten nearly
+    # everything must be flagged, not skipped (seen at the end of a long lab outage)
+    mon = make({"std_ratio": 3.0, "leverage_limit": 0, "region_limit": 0})
+    mon.on_predictions(1.0, np.vstack([MID]), np.array([math.inf]), np.zeros(1), 0.0)
+    assert mon.pred_active == {}  # no baseline yet: nothing to compare with
+    mon.on_lab(2.0, lab(0.0, scale=9.0), MID, FakePosterior())
+    mon.on_predictions(3.0, np.vstack([MID]), np.array([math.inf]), np.zeros(1), 2.0)
+    assert mon.pred_active == {"uncertainty_ratio": (1, math.inf, 3.0)}
+    assert mon.view()["std"]["ratio"] == math.inf
+
+
 def test_absolute_std_limit_makes_the_model_untrusted():
     mon = make({"std_limit": 25.0})
     ev = mon.on_predictions(10.0, np.vstack([MID]), np.array([25.5]), np.zeros(1), 9.0)
