@@ -20,7 +20,7 @@ import math
 import re
 import tomllib
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -51,6 +51,8 @@ __all__ = [
 # Version of the canonical text hashed by ModelConfig.fingerprint(); bump it if that text
 # changes meaning, so that old fingerprints can never match new ones by accident.
 FINGERPRINT_SCHEMA = 1
+# Schema of ModelConfig.to_state(), the settings of a model kept in a state folder.
+MODEL_STATE_SCHEMA = "posteriord.model-config/1"
 
 _MIB = 1024 * 1024
 
@@ -565,8 +567,9 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("daemon", "metrics", "metrics", HOST_PORT, "127.0.0.1:9108",
             'Address of the Prometheus HTTP endpoint; "" disables it.'),
     Setting("daemon", "state_dir", "state_dir", STRING, "state",
-            "Directory of the checkpoints of learned state (relative to the daemon's working "
-            "directory unless absolute)."),
+            "Folder of the learned state: a write-ahead log and checkpoints (relative to the "
+            "daemon's working directory unless absolute). Created with mode 0700; one daemon "
+            "at a time holds its lock."),
     Setting("daemon", "log_level", "log_level", _choice("debug", "info", "warning", "error"),
             "info", "Least severe log level written."),
     Setting("daemon", "log_format", "log_format", _choice("text", "json"), "text",
@@ -583,7 +586,21 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("daemon", "hwm", "hwm", INTEGER, 100_000,
             "High-water mark (queued messages) of the sockets; 0 means no limit.", GE0),
     Setting("daemon", "checkpoint_every", "checkpoint_every", DURATION, 300.0,
-            "Interval between checkpoints of the learned state.", GT0),
+            "Interval between checkpoints of the learned state (one is also written at "
+            "start-up, on shutdown and on the `checkpoint` command).", GT0),
+    Setting("daemon", "fsync", "fsync", _choice("group", "always"), "group",
+            "When write-ahead log records reach the disk: `group` fsyncs at most once per "
+            "`group_commit` (a power loss may lose that much; a crash of the process loses "
+            "nothing); `always` fsyncs every record, and a `fit/` message is published only "
+            "after its record is durable."),
+    Setting("daemon", "group_commit", "group_commit", DURATION, 0.05,
+            "Longest time a log record waits for its fsync with `fsync = \"group\"`.", GE0),
+    Setting("daemon", "on_corruption", "on_corruption", _choice("refuse", "checkpoint"),
+            "refuse",
+            "What start-up does with a damaged write-ahead log (a torn last record is always "
+            "dropped and never counts as damage): `refuse` exits with code 6 and leaves the "
+            "folder for a decision; `checkpoint` starts from the newest checkpoint plus the "
+            "intact records before the damage and logs what was dropped."),
     # [[model]]
     Setting("model", "name", "name", NAME, REQUIRED,
             "Model name, unique across models; also the topic of its messages."),
@@ -777,6 +794,9 @@ class DaemonConfig:
     reconnect_ivl_max: float = _default("daemon", "reconnect_ivl_max")
     hwm: int = _default("daemon", "hwm")
     checkpoint_every: float = _default("daemon", "checkpoint_every")
+    fsync: str = _default("daemon", "fsync")
+    group_commit: float = _default("daemon", "group_commit")
+    on_corruption: str = _default("daemon", "on_corruption")
 
 
 @dataclass(frozen=True)
@@ -894,6 +914,39 @@ class ModelConfig:
                            "settings": self.learning_settings()},
                           sort_keys=True, separators=(",", ":"), allow_nan=False)
         return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+    def to_state(self) -> dict:
+        """Every setting of the model as plain data, with a schema key (for state folders)."""
+        out: dict[str, Any] = {"schema": MODEL_STATE_SCHEMA}
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name == "inputs":
+                value = [{g.name: getattr(i, g.name) for g in fields(i)} for i in value]
+            elif isinstance(value, tuple):
+                value = list(value)
+            out[f.name] = value
+        return out
+
+    @classmethod
+    def from_state(cls, state: dict) -> ModelConfig:
+        """Inverse of :meth:`to_state`; raises ValueError on anything else."""
+        if not isinstance(state, dict) or state.get("schema") != MODEL_STATE_SCHEMA:
+            got = state.get("schema") if isinstance(state, dict) else type(state).__name__
+            raise ValueError(f"model config schema must be {MODEL_STATE_SCHEMA!r}, got {got!r}")
+        names = {f.name for f in fields(cls)}
+        keys = set(state) - {"schema"}
+        if keys != names:
+            raise ValueError(f"model config keys differ from the settings: missing "
+                             f"{sorted(names - keys)}, unknown {sorted(keys - names)}")
+        values = dict(state)
+        del values["schema"]
+        try:
+            values["inputs"] = tuple(InputConfig(**i) for i in values["inputs"])
+        except TypeError as exc:
+            raise ValueError(f"bad inputs in a model config: {exc}") from None
+        if values["prior_mean"] is not None:
+            values["prior_mean"] = tuple(float(v) for v in values["prior_mean"])
+        return cls(**values)
 
 
 @dataclass(frozen=True)
@@ -1179,6 +1232,10 @@ def describe(config: Config) -> str:
     lines.append(f"  reconnect              {format_duration(d.reconnect_ivl)} .. "
                  f"{format_duration(d.reconnect_ivl_max)}")
     lines.append(f"  checkpoint every       {format_duration(d.checkpoint_every)}")
+    sync = "every record" if d.fsync == "always" else \
+        f"grouped, at most {format_duration(d.group_commit)} apart"
+    lines.append(f"  fsync                  {sync}")
+    lines.append(f"  on corruption          {d.on_corruption}")
     lines.append("")
     n = len(config.models)
     lines.append(f"{n} model{'s' if n != 1 else ''}" + (":" if n else ""))

@@ -109,6 +109,9 @@ DAEMON_DEFAULTS = {
     "reconnect_ivl_max": 10.0,
     "hwm": 100000,
     "checkpoint_every": 300.0,
+    "fsync": "group",
+    "group_commit": 0.05,
+    "on_corruption": "refuse",
 }
 MODEL_DEFAULTS = {
     "basis_kind": "polynomial",
