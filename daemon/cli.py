@@ -12,6 +12,9 @@ EXIT_OK = 0
 EXIT_USAGE = 2
 EXIT_CONFIG = 3
 EXIT_RUNTIME = 4
+EXIT_LOCKED = 5      # another process holds the state folder's lock
+EXIT_CORRUPT = 6     # damaged or unusable state folder, on_corruption = "refuse"
+EXIT_DURABILITY = 7  # a write or fsync of the state folder failed
 
 
 class _JsonFormatter(logging.Formatter):
@@ -59,9 +62,12 @@ def cmd_run(args) -> int:
     try:
         svc.open()
     except Exception as exc:  # noqa: BLE001 - any bind/listen failure ends start-up cleanly
-        logging.getLogger("posteriord").error("cannot start: %s", exc)
+        from daemon.statecli import start_failure
+
+        code, text = start_failure(exc)
+        logging.getLogger("posteriord").error("cannot start: %s", text)
         svc.close()
-        return EXIT_RUNTIME
+        return code
     svc.install_signal_handlers()
     return svc.run()
 
@@ -121,6 +127,7 @@ def main(argv=None) -> int:
     k.add_argument("--endpoint", default="tcp://127.0.0.1:5557", help="control endpoint")
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
     k.set_defaults(func=cmd_ctl)
+    __import__("daemon.statecli", fromlist=["add_state_commands"]).add_state_commands(sub)
     args = p.parse_args(argv)
     return args.func(args)
 

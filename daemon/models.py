@@ -3,21 +3,31 @@
 A :class:`ModelRunner` is driven by the service loop with already-decoded values; it does
 no I/O. Predictions are computed in vectorized batches; lab results are matched to the
 buffered features of the time the sample was drawn and learned one at a time.
+
+Every change of learned state goes through :meth:`ModelRunner.learn_row` (a matched lab
+result) or :meth:`ModelRunner.control` (freeze, resume, reset, acknowledge). The service logs
+their arguments in the write-ahead log and, after a restart, replays them through the same
+two methods, so that the replayed state is bit-identical to the one that was lost.
 """
 
 from __future__ import annotations
 
 import math
 from collections import Counter, OrderedDict
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
+from daemon.config import ModelConfig
 from daemon.historian import Aligner
 from daemon.monitor import Monitor
-from recursive import OutOfOrderError
+from recursive import OutOfOrderError, Posterior
 
 STATUSES = ("unidentified", "learning", "frozen", "stale")
+CONTROLS = ("freeze", "resume", "reset", "acknowledge")
+# Schema of ModelRunner.to_state(): one model's whole run-time state, as plain data.
+RUNNER_SCHEMA = "posteriord.runner/1"
+_COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_lost")
 
 
 class Rejected(Exception):
@@ -70,6 +80,10 @@ class ModelRunner:
         self.last_std = math.nan
         self.last_mean = math.nan
         self.last_lab_t: float | None = None
+        # sample time of the last lab result that reached the posterior (learned or gated):
+        # a result drawn at or before it is a duplicate or out of order and is not offered,
+        # so a feed re-sent after a restart cannot teach the model anything twice
+        self.last_offered_t: float | None = None
         self.last_fit: dict | None = None
         # event counters (exported by the collector at scrape time)
         self.n_features = 0
@@ -89,6 +103,7 @@ class ModelRunner:
         """Back to the configured prior; buffered features are kept, detectors cleared."""
         self.post.reset()
         self.last_lab_t = None
+        self.last_offered_t = None
         self.last_fit = None
         if self.monitor is not None:
             self.monitor.reset()
@@ -177,13 +192,12 @@ class ModelRunner:
         return PredBatch(t, ids, pred.mean, pred.std, pred.var, lo, hi, pred.dof, status)
 
     # ------------------------------------------------------------------ lab
-    def learn(self, t: float, y: float, ident) -> dict:
-        """Match a lab result to its features and learn from it.
+    def match(self, t: float, ident) -> tuple[float, tuple]:
+        """The sample time and the buffered features a lab result refers to.
 
-        Returns the ``fit/`` message body; raises :class:`Rejected` when the result cannot
-        be used at all (no features, out of order).
+        ``t`` is nan for a result that names its sample by ``ident`` only. Raises
+        :class:`Rejected` (``lab_unmatched``, ``lab_too_old``) when there are none.
         """
-        self.n_lab += 1
         if math.isnan(t):
             t0 = self.ids.get(ident)
             if t0 is None:
@@ -196,8 +210,48 @@ class ModelRunner:
                 raise Rejected("lab_unmatched", f"no features within {self.cfg.tolerance:g} s "
                                                 f"of t={t!r}")
             raise Rejected("lab_too_old", f"t={t!r} is older than the buffer ({oldest!r})")
+        return t, x
+
+    def learn(self, t: float, y: float, ident) -> tuple[dict, dict]:
+        """Match a lab result to its features and learn from it.
+
+        Returns the ``fit/`` message body and the write-ahead log record that replays it
+        (:meth:`replay`); raises :class:`Rejected` when the result changes nothing.
+        """
+        try:
+            t, x = self.match(t, ident)
+        except Rejected:
+            self.n_lab += 1
+            raise
+        x = [float(v) for v in x]
+        # the monitor's clock is the feed's; kept in the record because replay has no feed
+        clock = t if self.last_x_t is None else max(t, self.last_x_t)
+        fit = self.learn_row(t, x, y, ident, clock)
+        record = {"k": "lab", "m": self.name, "t": t, "x": x, "y": y, "id": ident, "c": clock}
+        return fit, record
+
+    def replay(self, record: dict) -> dict:
+        """Learn a lab result again from its write-ahead log record."""
+        return self.learn_row(record["t"], record["x"], record["y"], record["id"],
+                              record["c"])
+
+    def learn_row(self, t: float, x, y: float, ident, clock: float) -> dict:
+        """Learn from a lab result already matched with its features ``x`` (tags order).
+
+        The one path by which lab results change the model, live and in replay. Returns the
+        ``fit/`` body; raises :class:`Rejected` (``frozen``, ``lab_out_of_order``, ``bad_x``)
+        when nothing changed but the lab counter.
+        """
+        self.n_lab += 1
         if self.frozen:
             raise Rejected("frozen", "learning is frozen")
+        last = self.last_offered_t
+        if last is not None and t <= last:
+            if t == last:
+                raise Rejected("lab_out_of_order", f"t={t!r} is the sample time of the last "
+                                                   f"lab result offered (a duplicate)")
+            raise Rejected("lab_out_of_order", f"t={t!r} is before the last lab result "
+                                               f"offered ({last!r})")
         phi = self.basis(np.asarray(x, dtype=float))
         if not np.isfinite(phi).all():
             # finite readings far outside the range can overflow the basis
@@ -206,13 +260,13 @@ class ModelRunner:
             step = self.post.update(phi, y, t)
         except OutOfOrderError as exc:
             raise Rejected("lab_out_of_order", str(exc)) from None
+        self.last_offered_t = t
         if step.accepted:
             self.n_learned += 1
             self.last_lab_t = t
         else:
             self.rejected[step.reason] += 1
         if self.monitor is not None:
-            clock = t if self.last_x_t is None else max(t, self.last_x_t)
             self.alerts += self.monitor.on_lab(clock, step, x, self.post)
         fit = {
             "t": t, "y": y, "pred_mean": step.mean, "pred_std": step.std,
@@ -225,6 +279,30 @@ class ModelRunner:
             fit["trust"] = self.monitor.state
         self.last_fit = fit
         return fit
+
+    # ------------------------------------------------------------------ control
+    def control(self, cmd: str) -> None:
+        """Apply a control action (:data:`CONTROLS`), live and in replay.
+
+        Alert events it causes are queued on :attr:`alerts`. ``acknowledge`` needs the
+        monitor (raises ValueError without one).
+        """
+        if cmd == "freeze":
+            self.frozen = True
+        elif cmd == "resume":
+            self.frozen = False
+        elif cmd == "reset":
+            self.reset()
+            if self.monitor is not None:
+                self.alerts.append({"t": self.last_x_t, "kind": "reset",
+                                    "state": self.monitor.state})
+        elif cmd == "acknowledge":
+            if self.monitor is None:
+                raise ValueError(f"acknowledge needs the alerts of {self.name!r}, which are "
+                                 f"disabled")
+            self.alerts.append(self.monitor.acknowledge())
+        else:
+            raise ValueError(f"control action must be one of {CONTROLS}, got {cmd!r}")
 
     # ------------------------------------------------------------------ views
     def status(self) -> dict:
@@ -260,3 +338,71 @@ class ModelRunner:
             "updates": p.n_updates,
             "t_last": p.t_last,
         }
+
+    # ------------------------------------------------------------------ persistence
+    def to_state(self) -> dict:
+        """Everything needed to carry on after a restart, as plain data (with the config)."""
+        al = self.aligner.to_state()
+        al["t"] = [float(t) for t in al["t"]]
+        # rows pushed from blocks are numpy views; plain floats keep the state plain data
+        al["x"] = [[float(v) for v in row] for row in al["x"]]
+        return {
+            "schema": RUNNER_SCHEMA,
+            "config": self.cfg.to_state(),
+            "fingerprint": self.cfg.fingerprint(),
+            "posterior": self.post.to_state(),
+            "monitor": None if self.monitor is None else self.monitor.to_state(),
+            "aligner": al,
+            "ids": [[k, float(t)] for k, t in self.ids.items()],
+            "frozen": self.frozen,
+            "last_x_t": self.last_x_t,
+            "last_seq": self.last_seq,
+            "last_lab_t": self.last_lab_t,
+            "last_offered_t": self.last_offered_t,
+            "last_fit": self.last_fit,
+            "last_std": self.last_std,
+            "last_mean": self.last_mean,
+            "counters": {k: getattr(self, k) for k in _COUNTERS},
+            "rejected": dict(self.rejected),
+        }
+
+    @classmethod
+    def from_state(cls, state: dict, name: str | None = None) -> ModelRunner:
+        """Rebuild a runner from :meth:`to_state` (optionally under another ``name``).
+
+        Raises ValueError when the state is not a runner state of this schema.
+        """
+        if not isinstance(state, dict) or state.get("schema") != RUNNER_SCHEMA:
+            got = state.get("schema") if isinstance(state, dict) else type(state).__name__
+            raise ValueError(f"model state schema must be {RUNNER_SCHEMA!r}, got {got!r}")
+        try:
+            cfg = ModelConfig.from_state(state["config"])
+            if name is not None and name != cfg.name:
+                cfg = replace(cfg, name=name)
+            r = cls(cfg)
+            fresh, r.post = r.post, Posterior.from_state(state["posterior"])
+            if r.post.config() != fresh.config():
+                raise ValueError("the posterior's settings differ from the model's config")
+            r.aligner = Aligner.from_state(state["aligner"])
+            if r.aligner.tags != r.tags:
+                raise ValueError(f"the feature buffer has tags {r.aligner.tags}, the model "
+                                 f"{r.tags}")
+            if (state["monitor"] is None) != (r.monitor is None):
+                raise ValueError("monitor state present without alerts, or missing with them")
+            if r.monitor is not None:
+                r.monitor.load_state(state["monitor"])
+            r.ids = OrderedDict((k, float(t)) for k, t in state["ids"])
+            r.frozen = bool(state["frozen"])
+            r.last_x_t = state["last_x_t"]
+            r.last_seq = state["last_seq"]
+            r.last_lab_t = state["last_lab_t"]
+            r.last_offered_t = state["last_offered_t"]
+            r.last_fit = state["last_fit"]
+            r.last_std = float(state["last_std"])
+            r.last_mean = float(state["last_mean"])
+            for k in _COUNTERS:
+                setattr(r, k, int(state["counters"][k]))
+            r.rejected = Counter({str(k): int(v) for k, v in state["rejected"].items()})
+        except (KeyError, TypeError) as exc:
+            raise ValueError(f"bad model state: {exc!r}") from None
+        return r

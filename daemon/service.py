@@ -1,9 +1,24 @@
 """The service loop: poll, drain, decode, call the runners, encode, publish.
 
+Start-up order: lock the state folder; load its newest valid checkpoint and replay the
+write-ahead log records after it; apply the config file as a reload would; write a
+checkpoint; only then connect the feed, bind the publisher and the control socket, and
+report ready. A second daemon on the same folder stops at the lock.
+
+Every change of learned state is a write-ahead log record, appended before its effect is
+published or acknowledged: a lab result that reached a posterior (learned or gated, with the
+features it was matched with), a control action (freeze, resume, reset, acknowledge) and a
+reload that replaces, adds or removes a model. Replay runs them through the same runner
+methods as live processing (:meth:`ModelRunner.learn_row`, :meth:`ModelRunner.control`).
+Feature samples are not logged; the feature buffers are in the checkpoints.
+
 Shutdown order (tested): stop reading the feed; finish the batch in hand and publish its
-results; answer nothing more on the control socket and close it; close the publisher with
-its linger so queued predictions still leave; stop the metrics server; terminate the
-context. Signal handlers only queue an event and wake the poller; the loop acts on it.
+results; answer nothing more on the control socket and close it; write a checkpoint and
+unlock the state folder; close the publisher with its linger so queued predictions still
+leave; stop the metrics server; terminate the context. Signal handlers only queue an event
+and wake the poller; the loop acts on it. A failed write or fsync of the state folder
+(:class:`daemon.store.DurabilityError`) stops the loop; :meth:`Service.run` then returns
+``EXIT_DURABILITY``.
 """
 
 from __future__ import annotations
@@ -20,12 +35,24 @@ from collections import Counter, deque
 import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry, start_http_server
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
 from daemon import wire
-from daemon.metrics import ServiceCollector
+from daemon.cli import EXIT_DURABILITY, EXIT_OK
+from daemon.config import ModelConfig
+from daemon.metrics import PREFIX, ServiceCollector
 from daemon.models import ModelRunner, PredBatch, Rejected
+from daemon.store import DurabilityError, Recovery, StateDir, StoreError
 
 log = logging.getLogger("posteriord")
+
+# Schema of the checkpoint body written by Service.state_body().
+STATE_SCHEMA = "posteriord.state/1"
+RECORD_KINDS = ("lab", "ctl", "model", "import")
+
+
+class StateError(StoreError):
+    """The state folder is intact but its content cannot be used (schema, bad record)."""
 
 PUB_LINGER_MS = 2000
 COMMANDS = ("ping", "status", "posterior", "detectors", "acknowledge", "freeze", "resume",
@@ -58,7 +85,8 @@ class Service:
     """posteriord's runner around :class:`daemon.models.ModelRunner` objects."""
 
     def __init__(self, config, *, registry: CollectorRegistry | None = None,
-                 context: zmq.Context | None = None, config_path: str | None = None):
+                 context: zmq.Context | None = None, config_path: str | None = None,
+                 fs=None):
         self.config = config
         self.config_path = config_path
         self.runners: dict[str, ModelRunner] = {m.name: ModelRunner(m) for m in config.models}
@@ -77,13 +105,240 @@ class Service:
         self.sub = self.pub = self.rep = None
         self.ready = threading.Event()
         self.closed_order: list[str] = []
+        # durable state (see open_state); None: in memory only, as in socket-free runs
+        self.store: StateDir | None = None
+        self._fs = fs  # file system hook of the state folder (tests inject faults)
+        self.exit_code = EXIT_OK
+        self.recovery: Recovery | None = None
+        self.replayed = 0
+        self.wal_records = 0
+        self.checkpoints = 0
+        self.checkpoint_seq: int | None = None
+        self._dirty = False
+        self._last_checkpoint = time.monotonic()
 
     # ------------------------------------------------------------------ hooks for later layers
     def extra_metrics(self):
-        return []
+        if self.store is None:
+            return []
+        records = CounterMetricFamily(f"{PREFIX}_wal_records", "Write-ahead log records "
+                                      "appended by this process.")
+        records.add_metric([], self.wal_records)
+        ckpts = CounterMetricFamily(f"{PREFIX}_checkpoints", "Checkpoints written by this "
+                                    "process.")
+        ckpts.add_metric([], self.checkpoints)
+        replayed = GaugeMetricFamily(f"{PREFIX}_wal_replayed_records", "Write-ahead log "
+                                     "records replayed at start-up.")
+        replayed.add_metric([], self.replayed)
+        pending = GaugeMetricFamily(f"{PREFIX}_wal_pending_records", "Records written but "
+                                    "not fsynced yet.")
+        pending.add_metric([], self.store.pending)
+        return [records, ckpts, replayed, pending]
+
+    # ------------------------------------------------------------------ durable state
+    def open_state(self) -> None:
+        """Lock the state folder, recover, replay, adopt the config, write a checkpoint.
+
+        Raises :class:`daemon.store.LockedError` when another process holds the folder,
+        :class:`daemon.store.CorruptionError` for a damaged log under ``on_corruption =
+        "refuse"``, :class:`StateError` for content that cannot be used, and other
+        :class:`daemon.store.StoreError` (including ``DurabilityError``) for file errors.
+        """
+        if self.store is not None:
+            return
+        d = self.config.daemon
+        store = StateDir(d.state_dir, fsync=d.fsync, group_ms=d.group_commit * 1000.0,
+                         fs=self._fs)
+        for note in store.open():
+            log.info("state: %s", note)
+        try:
+            rec = store.recover(d.on_corruption)
+            for note in rec.notes:
+                log.warning("state: %s", note)
+            if rec.dropped_after_seq is not None:
+                log.warning("state: on_corruption = \"checkpoint\": every record after seq %d "
+                            "is dropped; the learned state is that of checkpoint %d plus "
+                            "the intact records before the damage", rec.dropped_after_seq,
+                            rec.checkpoint_seq)
+            self.restore(rec, lenient=d.on_corruption == "checkpoint")
+            self.adopt(self.config.models, at_start=True)
+            self.store = store
+            self.recovery = rec
+            self.checkpoint()
+        except BaseException:
+            self.store = None
+            store.close()
+            raise
+        log.info("state: %s holds checkpoint %d and %d record(s) after it; replayed %d; "
+                 "checkpoint %d written", store.path, rec.checkpoint_seq, len(rec.records),
+                 self.replayed, self.checkpoint_seq)
+
+    def restore(self, rec: Recovery, *, lenient: bool = False) -> None:
+        """Rebuild the runners from a recovered checkpoint and replay the records after it.
+
+        Without a checkpoint the runners start from the current config. Models are built
+        from the settings saved with their state, as they were when it was learned; the
+        caller then applies the current config (:meth:`adopt`). With ``lenient`` a record
+        that cannot be replayed is logged and skipped instead of raising :class:`StateError`.
+        """
+        if rec.checkpoint is None:
+            self.runners = {m.name: ModelRunner(m) for m in self.config.models}
+        else:
+            self.load_body(rec.checkpoint, rec.checkpoint_seq)
+        self.replayed = 0
+        for record in rec.records:
+            try:
+                self.apply_record(record)
+            except (StateError, ValueError, KeyError, TypeError) as exc:
+                if not lenient:
+                    raise StateError(f"write-ahead log record {record.get('seq')} cannot be "
+                                     f"replayed: {exc}. Set on_corruption = \"checkpoint\" to "
+                                     f"skip such records") from None
+                log.error("state: record %s skipped: %s", record.get("seq"), exc)
+                continue
+            self.replayed += 1
+        for runner in self.runners.values():
+            runner.alerts.clear()  # published before the restart, or moot by now
+
+    def state_body(self) -> dict:
+        """The checkpoint body: every runner's state and the service counters."""
+        return {"schema": STATE_SCHEMA,
+                "models": [r.to_state() for r in self.runners.values()],
+                "received": dict(self.received),
+                "rejected_unknown": dict(self.rejected_unknown),
+                "reloads": dict(self.reloads)}
+
+    def load_body(self, body: dict, seq: int = 0) -> None:
+        """Inverse of :meth:`state_body`; raises :class:`StateError` on a body it cannot use."""
+        if body.get("schema") != STATE_SCHEMA:
+            raise StateError(f"checkpoint {seq} has schema {body.get('schema')!r}, this "
+                             f"version reads {STATE_SCHEMA!r}")
+        try:
+            runners = {}
+            for state in body["models"]:
+                r = ModelRunner.from_state(state)
+                runners[r.name] = r
+            received = Counter(body["received"])
+            unknown = Counter(body["rejected_unknown"])
+            reloads = Counter(body["reloads"])
+        except (ValueError, KeyError, TypeError) as exc:
+            raise StateError(f"checkpoint {seq} cannot be loaded: {exc}") from None
+        self.runners = runners
+        self.received, self.rejected_unknown, self.reloads = received, unknown, reloads
+
+    def apply_record(self, record: dict) -> None:
+        """Replay one write-ahead log record (see the module docstring for the kinds)."""
+        kind = record.get("k")
+        name = record.get("m")
+        if kind not in RECORD_KINDS:
+            raise StateError(f"unknown record kind {kind!r}")
+        if kind == "model":
+            if record["op"] == "new":
+                self.runners[name] = ModelRunner(ModelConfig.from_state(record["config"]))
+            elif record["op"] == "drop":
+                self.runners.pop(name, None)
+            else:
+                raise StateError(f"unknown model operation {record['op']!r}")
+            return
+        if kind == "import":
+            self.runners[name] = ModelRunner.from_state(record["state"], name)
+            return
+        runner = self.runners.get(name)
+        if runner is None:
+            raise StateError(f"record for model {name!r}, which the state does not hold")
+        if kind == "ctl":
+            runner.control(record["cmd"])
+            return
+        try:
+            runner.replay(record)
+        except Rejected as exc:
+            raise StateError(f"lab result of {name} at t={record['t']!r} was learned before "
+                             f"the restart but not in replay ({exc})") from None
+
+    def adopt(self, models, *, at_start: bool = False) -> list[str]:
+        """Apply model configs as a reload does; returns the names that kept their state.
+
+        A model whose fingerprint is unchanged keeps its state (and takes the new non-learning
+        settings); any other starts from its prior, and models not listed are removed. Live
+        (not ``at_start``), each replacement, addition and removal is a log record; at
+        start-up the checkpoint written next records the outcome.
+        """
+        old = self.runners
+        runners: dict[str, ModelRunner] = {}
+        records = []
+        for m in models:
+            r = old.get(m.name)
+            if r is not None and r.cfg.fingerprint() == m.fingerprint():
+                r.reconfigure(m)
+                runners[m.name] = r
+                continue
+            runners[m.name] = ModelRunner(m)
+            records.append({"k": "model", "m": m.name, "op": "new", "config": m.to_state()})
+            if at_start and r is not None:
+                log.warning("state: the learning settings of %s changed since its state was "
+                            "saved (fingerprint %s, now %s); it starts from its prior",
+                            m.name, r.cfg.fingerprint(), m.fingerprint())
+        for name in old:
+            if name not in runners:
+                records.append({"k": "model", "m": name, "op": "drop"})
+                if at_start:
+                    log.warning("state: model %s is no longer configured; its saved state is "
+                                "dropped", name)
+        if not at_start:
+            for record in records:
+                self._log(record)
+        self.runners = runners
+        if records:
+            self._dirty = True
+        return sorted(n for n in runners if runners[n] is old.get(n))
+
+    def _log(self, record: dict) -> None:
+        """Append a record to the write-ahead log (raises DurabilityError on failure)."""
+        if self.store is None:
+            return
+        self.store.append(record)
+        self.wal_records += 1
+        self._dirty = True
+
+    def checkpoint(self) -> int:
+        """Write a checkpoint now; returns its sequence number."""
+        if self.store is None:
+            raise StoreError("no state folder is open (an in-memory service)")
+        seq = self.store.checkpoint(self.state_body())
+        self.checkpoints += 1
+        self.checkpoint_seq = seq
+        self._dirty = False
+        self._last_checkpoint = time.monotonic()
+        return seq
+
+    def _housekeeping(self) -> None:
+        """Periodic checkpoint, group commit."""
+        store = self.store
+        if store is None:
+            return
+        now = time.monotonic()
+        if self._dirty and now - self._last_checkpoint >= self.config.daemon.checkpoint_every:
+            self.checkpoint()
+        else:
+            store.maybe_sync(now)
+
+    def _poll_ms(self) -> int:
+        store = self.store
+        if store is None:
+            return 1000
+        if store.pending:
+            wait = self.config.daemon.group_commit
+        elif self._dirty:
+            wait = self.config.daemon.checkpoint_every - (time.monotonic()
+                                                          - self._last_checkpoint)
+        else:
+            return 1000
+        return max(1, min(1000, math.ceil(wait * 1000.0)))
 
     # ------------------------------------------------------------------ sockets
     def open(self) -> None:
+        """Open the state folder (:meth:`open_state`), then the sockets."""
+        self.open_state()
         d = self.config.daemon
         ctx = self._ctx = self._ctx or zmq.Context()
         self.sub = ctx.socket(zmq.SUB)
@@ -156,7 +411,7 @@ class Service:
         self.ready.set()
         try:
             while not self._stop:
-                socks = dict(self.poller.poll(1000))
+                socks = dict(self.poller.poll(self._poll_ms()))
                 if self._wake_r in socks:
                     try:
                         while self._wake_r.recv(4096):
@@ -169,9 +424,15 @@ class Service:
                     self.drain()
                 if socks.get(self.rep):
                     self._control()
+                self._housekeeping()
+        except DurabilityError as exc:
+            # the folder refuses writes from now on; going on would learn what a restart
+            # cannot know
+            log.critical("state folder write failed, stopping: %s", exc)
+            self.exit_code = EXIT_DURABILITY
         finally:
             self.close()
-        return 0
+        return self.exit_code
 
     def _event(self, what: str) -> None:
         if what == "stop":
@@ -202,6 +463,8 @@ class Service:
         max_bytes = self.config.daemon.max_message_bytes
         specs = {name: r.spec for name, r in self.runners.items()}
         pending: dict[str, list] = {}
+        if batch:
+            self._dirty = True  # the feature buffers changed: the next checkpoint is due
         for frames in batch:
             try:
                 msg = wire.decode_feed(frames, specs, max_bytes)
@@ -312,11 +575,14 @@ class Service:
 
     def _learn(self, runner: ModelRunner, t: float, y: float, ident) -> None:
         try:
-            fit = runner.learn(t, y, ident)
+            fit, record = runner.learn(t, y, ident)
         except Rejected as exc:
             runner.rejected[exc.reason] += 1
             self._rlog.warn(runner.name, exc.reason, exc.detail)
             return
+        # logged before it is published: with fsync = "always" the fit/ message never tells
+        # of a lab result a restart would not know
+        self._log(record)
         if not fit["accepted"]:
             self._rlog.warn(runner.name, fit["reason"], f"z={fit['z']:.2f} at t={fit['t']!r}")
         self.pub.send_multipart([b"fit/" + runner.name.encode(), wire.packb(fit)])
@@ -344,13 +610,18 @@ class Service:
         if cmd == "ping":
             return {"ok": True}
         if cmd == "status":
-            return {"ok": True, "models": {n: r.status() for n, r in self.runners.items()}}
+            return {"ok": True, "models": {n: r.status() for n, r in self.runners.items()},
+                    "state": self.state_status()}
         if cmd == "reload":
             ok, error = self.reload()
             return {"ok": ok} if ok else {"ok": False, "error": error}
         if cmd == "checkpoint":
-            return {"ok": False, "error": "checkpoint unavailable: this build keeps state in "
-                                          "memory only (no state folder persistence yet)"}
+            if self.store is None:
+                return {"ok": False, "error": "checkpoint unavailable: no state folder is "
+                                              "open (an in-memory service)"}
+            seq = self.checkpoint()
+            log.info("control: checkpoint %d written", seq)
+            return {"ok": True, "seq": seq}
         if cmd not in COMMANDS:
             return {"ok": False, "error": f"unknown command {cmd!r}; expected one of "
                                           f"{', '.join(COMMANDS)}"}
@@ -367,25 +638,29 @@ class Service:
                                               "([model.alerts] enabled = false)"}
             if cmd == "detectors":
                 return {"ok": True, "model": name, **runner.monitor.view()}
-            runner.alerts.append(runner.monitor.acknowledge())
-            if self.pub is not None:
-                self._alerts(runner)
-            log.info("control: acknowledge %s", name)
-            return {"ok": True, "model": name, "command": cmd,
-                    "state": runner.monitor.state}
-        if cmd == "freeze":
-            runner.frozen = True
-        elif cmd == "resume":
-            runner.frozen = False
-        elif cmd == "reset":
-            runner.reset()
-            if runner.monitor is not None:
-                runner.alerts.append({"t": runner.last_x_t, "kind": "reset",
-                                      "state": runner.monitor.state})
-                if self.pub is not None:
-                    self._alerts(runner)
-        log.info("control: %s %s", cmd, name)
-        return {"ok": True, "model": name, "command": cmd}
+        self._control_action(runner, cmd)
+        reply = {"ok": True, "model": name, "command": cmd}
+        if cmd == "acknowledge":
+            reply["state"] = runner.monitor.state
+        return reply
+
+    def _control_action(self, runner: ModelRunner, cmd: str) -> None:
+        runner.control(cmd)
+        self._log({"k": "ctl", "m": runner.name, "cmd": cmd})
+        if self.store is not None:
+            self.store.sync()  # acknowledged actions are durable in either fsync mode
+        if self.pub is not None and runner.alerts:
+            self._alerts(runner)
+        log.info("control: %s %s", cmd, runner.name)
+
+    def state_status(self) -> dict | None:
+        """The state folder's part of the ``status`` reply (None in memory)."""
+        if self.store is None:
+            return None
+        return {"dir": self.store.path, "last_seq": self.store.last_seq,
+                "checkpoint_seq": self.checkpoint_seq, "pending": self.store.pending,
+                "fsync": self.store.fsync_mode, "replayed": self.replayed,
+                "records": self.wal_records, "checkpoints": self.checkpoints}
 
     # ------------------------------------------------------------------ reload
     def reload(self):
@@ -404,21 +679,15 @@ class Service:
         if new.daemon != self.config.daemon:
             log.warning("reload: daemon settings changed; endpoints take effect on restart")
         old = self.runners
-        runners = {}
-        for m in new.models:
-            r = old.get(m.name)
-            if r is not None and r.cfg.fingerprint() == m.fingerprint():
-                r.reconfigure(m)
-                runners[m.name] = r
-            else:
-                runners[m.name] = ModelRunner(m)
+        kept = self.adopt(new.models)
+        runners = self.runners
+        if self.store is not None:
+            self.store.sync()
         if self.sub is not None:
             for name in set(old) - set(runners):
                 self.sub.setsockopt(zmq.UNSUBSCRIBE, name.encode())
             for name in set(runners) - set(old):
                 self.sub.setsockopt(zmq.SUBSCRIBE, name.encode())
-        kept = sorted(n for n in runners if runners[n] is old.get(n))
-        self.runners = runners
         self.config = type(new)(daemon=self.config.daemon, models=new.models, source=new.source)
         self.reloads["ok"] += 1
         log.info("reloaded %s: %d model(s), kept learned state of %s", self.config_path,
@@ -436,6 +705,9 @@ class Service:
             self.rep.close(linger=0)
             self.closed_order.append("control")
             self.rep = None
+        if self.store is not None:
+            self._close_state()
+            self.closed_order.append("state")
         if self.pub is not None:
             self.pub.close(linger=PUB_LINGER_MS)
             self.closed_order.append("publish")
@@ -454,6 +726,29 @@ class Service:
             self.closed_order.append("context")
             self._ctx = None
         log.info("stopped")
+
+
+    def _close_state(self) -> None:
+        store = self.store
+        self.store = None
+        try:
+            if store.failed is None:
+                seq = store.checkpoint(self.state_body())
+                self.checkpoints += 1
+                self.checkpoint_seq = seq
+                log.info("state: checkpoint %d written on shutdown", seq)
+            else:
+                log.error("state: no checkpoint on shutdown, the folder refuses writes "
+                          "(%s)", store.failed)
+        except DurabilityError as exc:
+            log.critical("state: checkpoint on shutdown failed: %s", exc)
+            self.exit_code = EXIT_DURABILITY
+        finally:
+            try:
+                store.close()
+            except DurabilityError as exc:
+                log.critical("state: closing the folder failed: %s", exc)
+                self.exit_code = EXIT_DURABILITY
 
 
 def _concat(batches: list[PredBatch]) -> PredBatch:

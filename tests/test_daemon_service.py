@@ -699,7 +699,7 @@ def test_status_field(start_service, run):
 def test_shutdown_order_with_own_context_and_metrics(start_service):
     h = start_service([c301_model()])
     address = h.metrics_address
-    assert h.stop() == ["feed", "control", "publish", "metrics", "context"]
+    assert h.stop() == ["feed", "control", "state", "publish", "metrics", "context"]
     with pytest.raises(OSError):
         urllib.request.urlopen(f"http://{address[0]}:{address[1]}/metrics", timeout=TIMEOUT)
 
@@ -707,4 +707,4 @@ def test_shutdown_order_with_own_context_and_metrics(start_service):
 def test_shutdown_order_with_a_shared_context_and_no_metrics(start_service):
     h = start_service([c301_model()], metrics=False, own_context=False)
     assert h.metrics_address is None
-    assert h.stop() == ["feed", "control", "publish"]
+    assert h.stop() == ["feed", "control", "state", "publish"]
