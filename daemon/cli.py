@@ -127,6 +127,7 @@ def main(argv=None) -> int:
     k.add_argument("--endpoint", default="tcp://127.0.0.1:5557", help="control endpoint")
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
     k.set_defaults(func=cmd_ctl)
+    __import__("daemon.workcli", fromlist=["add_work_commands"]).add_work_commands(sub)
     __import__("daemon.statecli", fromlist=["add_state_commands"]).add_state_commands(sub)
     args = p.parse_args(argv)
     return args.func(args)

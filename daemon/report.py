@@ -1,0 +1,350 @@
+"""Report: pictures of how a model did, from a predictions CSV or a recorded stream.
+
+Page 1 (the file named): over time, (1) the prediction with its interval band, the lab
+results (learned, and rejected by the gate) and the periods the model was in caution or
+untrusted; (2) the standardized residual z of each lab result with the two-sided CUSUM on z
+(the mean-shift detector of the trust monitor, recomputed from the learned z with its k and
+h) and the alerts; (3) the predictive standard deviation and the lab staleness (time since
+the newest learned lab sample was drawn, as known to the model at that moment).
+
+Page 2 (``<name>-calibration.<ext>``): the histogram of the probability integral transform
+(PIT, ``Phi(z)``: uniform for a calibrated model) and the coverage of central intervals of
+every probability, against the nominal one.
+
+``z`` maps the predictive CDF at the lab value to a standard normal quantile, so the PIT is
+``Phi(z)`` exactly and a lab value lies in the central interval of probability p exactly when
+``|z| <= Phi^-1((1 + p) / 2)``, whatever the predictive's degrees of freedom.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+from scipy import special
+
+from daemon.backtest import Track, collect, read_predictions
+from recursive.detect import Cusum
+
+__all__ = ["calibration", "cusum_path", "load_track", "report", "staleness"]
+
+_STATE_COLOR = {"caution": "#f2b134", "untrusted": "#d64541"}
+_MAX_POINTS = 6000
+
+
+def load_track(path, model: str | None = None, *, level: float | None = None) -> Track:
+    """A `Track` from a predictions CSV (`daemon.backtest`) or a record file (`daemon.live`)."""
+    with open(path, "rb") as fh:
+        head = fh.read(64)
+    from daemon import live
+
+    if head.startswith(live.FORMAT.encode()):
+        msgs = [(topic, body) for _, topic, body in live.RecordReader(path)]
+        names = sorted({topic.partition("/")[2] for topic, _ in msgs if "/" in topic})
+        if model is None:
+            if len(names) != 1:
+                raise ValueError(f"{path} holds models {names}; choose one with --model")
+            model = names[0]
+        elif model not in names:
+            raise ValueError(f"{path}: no messages of model {model!r} (models: {names})")
+        track = collect(msgs, model, {"model": model, "source": os.path.basename(path)})
+    else:
+        track = read_predictions(path)
+        if model is not None and track.model and track.model != model:
+            raise ValueError(f"{path} holds predictions of {track.model!r}, not {model!r}")
+    if level is not None:
+        track.meta["level"] = level
+    return track
+
+
+def cusum_path(z, learned, k: float = 0.5, h: float = 5.0):
+    """The two-sided CUSUM over the learned lab results, as the trust monitor runs it.
+
+    Returns ``(upper, lower, signal)`` arrays over all lab results (nan where a result was
+    not learned), with the sums reached at each step (before a restart after a signal).
+    """
+    c = Cusum(k, h)
+    n = len(z)
+    up = np.full(n, np.nan)
+    lo = np.full(n, np.nan)
+    sig = np.zeros(n, dtype=int)
+    for i in range(n):
+        if learned[i] and math.isfinite(z[i]):
+            s = c.step(z[i])
+            up[i], lo[i], sig[i] = s.upper, s.lower, s.signal
+    return up, lo, sig
+
+
+def staleness(pred_t, lab_t, seen, learned) -> np.ndarray:
+    """Seconds since the newest learned lab sample was drawn, as known at each ``pred_t``.
+
+    A lab result is known from ``seen`` on (when it reached the model); nan before the
+    first one.
+    """
+    pred_t = np.asarray(pred_t, dtype=float)
+    lab_t = np.asarray(lab_t, dtype=float)[learned]
+    seen = np.asarray(seen, dtype=float)[learned]
+    seen = np.where(np.isfinite(seen), seen, lab_t)
+    order = np.argsort(seen, kind="stable")
+    seen, drawn = seen[order], np.maximum.accumulate(lab_t[order]) if lab_t.size else lab_t
+    j = np.searchsorted(seen, pred_t, side="right") - 1
+    out = np.full(pred_t.shape, np.nan)
+    ok = j >= 0
+    out[ok] = pred_t[ok] - drawn[j[ok]]
+    return out
+
+
+def calibration(z, levels=None) -> dict:
+    """PIT values and empirical coverage of central intervals from standardized residuals."""
+    z = np.asarray(z, dtype=float)
+    z = z[np.isfinite(z)]
+    if levels is None:
+        levels = np.array([0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99])
+    q = special.ndtri(0.5 + np.asarray(levels) / 2)
+    cover = np.array([np.mean(np.abs(z) <= qq) if z.size else np.nan for qq in q])
+    return {"pit": special.ndtr(z), "levels": np.asarray(levels), "coverage": cover,
+            "n": int(z.size)}
+
+
+def _dates(t):
+    return np.asarray(t, dtype=float).astype("datetime64[s]") if len(t) else np.array(
+        [], dtype="datetime64[s]")
+
+
+def _envelope(t, mean, lo, hi, std):
+    """At most _MAX_POINTS points: per bucket the mean's mean, the band's outer edges and the
+    largest std, so a decimated band never looks narrower than it was."""
+    n = len(t)
+    if n <= _MAX_POINTS:
+        return t, mean, lo, hi, std
+    edges = np.linspace(0, n, _MAX_POINTS + 1).astype(int)
+    starts = edges[:-1]
+    count = np.add.reduceat(np.isfinite(mean).astype(float), starts)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m = np.add.reduceat(np.where(np.isfinite(mean), mean, 0.0), starts) / count
+    lo_r = np.fmin.reduceat(np.where(np.isfinite(lo), lo, np.nan), starts)
+    hi_r = np.fmax.reduceat(np.where(np.isfinite(hi), hi, np.nan), starts)
+    sd_r = np.fmax.reduceat(np.where(np.isfinite(std), std, np.nan), starts)
+    return t[starts], m, lo_r, hi_r, sd_r
+
+
+def _segments(t, trust):
+    """Contiguous runs of caution / untrusted: (state, start, end)."""
+    out = []
+    cur, start = None, None
+    for ti, s in zip(t, trust, strict=True):
+        s = s if s in _STATE_COLOR else None
+        if s != cur:
+            if cur is not None:
+                out.append((cur, start, ti))
+            cur, start = s, ti
+    if cur is not None and len(t):
+        out.append((cur, start, t[-1]))
+    return out
+
+
+def _legend_above(ax, ncol: int) -> None:
+    ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=ncol, fontsize=8.5,
+              frameon=False, borderaxespad=0.2, handletextpad=0.4, columnspacing=1.2)
+
+
+def report(track: Track, path, *, unit: str | None = None, title: str | None = None,
+           note: str | None = None, cusum_k: float | None = None, cusum_h: float | None = None,
+           stale_after: float | None = None, dpi: int = 110) -> list[str]:
+    """Draw the two pages (module docstring); returns the paths written.
+
+    The format follows the suffix of ``path`` (``.png``, ``.svg``, ``.pdf``...); the second
+    page goes next to it as ``<stem>-calibration<suffix>``.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.dates as mdates
+    import matplotlib.pyplot as plt
+
+    path = Path(path)
+    if not path.suffix:
+        raise ValueError(f"{path}: give the picture a suffix such as .png or .svg")
+    meta = track.meta
+    unit = meta.get("unit", "") if unit is None else unit
+    u = f" [{unit}]" if unit else ""
+    target = meta.get("target") or "target"
+    k = float(meta.get("cusum_k", 0.5) if cusum_k is None else cusum_k)
+    h = float(meta.get("cusum_h", 5.0) if cusum_h is None else cusum_h)
+    stale_after = meta.get("stale_after") if stale_after is None else stale_after
+    level = track.level
+    lab = track.lab_arrays()
+    if track.t.size == 0 and lab["t"].size == 0:
+        raise ValueError("nothing to draw: no predictions and no lab results")
+    learned = lab["learned"]
+    gated = np.array([r == "gated" for r in lab["reason"]], dtype=bool)
+    title = title or f"{track.model}: predictions and lab results"
+    if meta.get("source"):
+        title += f"  ({meta['source']})"
+
+    plt.rcParams.update({"font.size": 10, "axes.titlesize": 11, "axes.labelsize": 10})
+    fig, axes = plt.subplots(3, 1, figsize=(14, 10), sharex=True,
+                             gridspec_kw={"height_ratios": [3.2, 2.0, 1.6]})
+    ax1, ax2, ax3 = axes
+    tt, mm, lo, hi, sd = _envelope(track.t, track.mean, track.lo, track.hi, track.std)
+    d = _dates(tt)
+    pct = f"{100 * level:g}%"
+    ax1.fill_between(d, lo, hi, color="#4c8bd6", alpha=0.25, linewidth=0,
+                     label=f"{pct} prediction interval")
+    ax1.plot(d, mm, color="#1f4e8c", linewidth=0.9, label="prediction (mean)")
+    ld = _dates(lab["t"])
+    ok = learned & np.isfinite(lab["y"])
+    ax1.plot(ld[ok], lab["y"][ok], "o", color="black", markersize=3.2,
+             label="lab result, learned")
+    other = ~learned & ~gated & np.isfinite(lab["y"])
+    if other.any():
+        ax1.plot(ld[other], lab["y"][other], "o", mfc="none", color="gray", markersize=3.5,
+                 label="lab result, not predicted yet")
+    # blunders can be ten times the usual values: draw them at the edge, not off the scale
+    finite = np.concatenate([lo[np.isfinite(lo)], hi[np.isfinite(hi)], lab["y"][ok]])
+    if finite.size:
+        lo_q, hi_q = np.percentile(finite, [0.5, 99.5])
+        pad = 0.15 * (hi_q - lo_q or 1.0)
+        ylim = (lo_q - pad, hi_q + pad)
+        ax1.set_ylim(*ylim)
+    else:
+        ylim = None
+    if gated.any():
+        yg = lab["y"][gated]
+        if ylim is not None:
+            yg = np.clip(yg, ylim[0] + 0.02 * (ylim[1] - ylim[0]),
+                         ylim[1] - 0.02 * (ylim[1] - ylim[0]))
+        ax1.plot(ld[gated], yg, "x", color="#d64541", markersize=7, markeredgewidth=2,
+                 label="lab result rejected by the gate (drawn at the edge if off scale)")
+    segs = _segments(track.t, track.trust)
+    for ax in axes:
+        for state, a, b in segs:
+            ax.axvspan(*_dates([a, b]), color=_STATE_COLOR[state], alpha=0.18, linewidth=0)
+    for state, color in _STATE_COLOR.items():
+        if any(s == state for s, _, _ in segs):
+            ax1.fill_between([], [], [], color=color, alpha=0.3, label=f"trust: {state}")
+    ax1.set_ylabel(f"{target}{u}")
+    fig.suptitle(title, x=0.01, ha="left", fontweight="bold", fontsize=12)
+    _legend_above(ax1, ncol=4)
+    ax1.grid(alpha=0.3)
+
+    # residuals and the mean-shift CUSUM
+    z = lab["z"]
+    up, dn, sig = cusum_path(z, learned, k, h)
+    zc = np.clip(z, -8, 8)
+    ax2.axhspan(-1.96, 1.96, color="#4c8bd6", alpha=0.08, linewidth=0)
+    ax2.plot(ld[learned], zc[learned], "o", color="#1f4e8c", markersize=2.8,
+             label="z of a learned lab result")
+    if gated.any():
+        ax2.plot(ld[gated], zc[gated], "x", color="#d64541", markersize=6, markeredgewidth=1.8,
+                 label="z of a rejected one (clipped to ±8)")
+    has = np.isfinite(up)
+    ax2.step(ld[has], up[has], where="post", color="#8e44ad", linewidth=1.2,
+             label=f"CUSUM S+ (k={k:g})")
+    ax2.step(ld[has], -dn[has], where="post", color="#16a085", linewidth=1.2,
+             label="CUSUM -S-")
+    ax2.axhline(h, color="#8e44ad", linestyle="--", linewidth=0.8)
+    ax2.axhline(-h, color="#16a085", linestyle="--", linewidth=0.8)
+    ax2.text(0.002, h, f" h = {h:g}", transform=ax2.get_yaxis_transform(), va="bottom",
+             fontsize=8, color="#8e44ad")
+    if (sig != 0).any():
+        s = sig != 0
+        ax2.plot(ld[s], np.where(sig[s] > 0, up[s], -dn[s]), "v", color="#d64541",
+                 markersize=8, label="mean-shift signal")
+    alerts = [a for a in track.alerts if a.get("kind") == "state" and a.get("t") is not None]
+    for a in alerts:
+        if a.get("new") in _STATE_COLOR:
+            ax2.axvline(_dates([a["t"]])[0], color=_STATE_COLOR[a["new"]], linewidth=0.8,
+                        alpha=0.7)
+    ax2.set_ylim(-max(8, h + 2), max(8, h + 2))
+    ax2.set_ylabel("z  [standard deviations]")
+    _legend_above(ax2, ncol=5)
+    ax2.text(1.0, 1.02, "one step ahead, before learning; vertical lines: trust alerts",
+             transform=ax2.transAxes, ha="right", va="bottom", fontsize=8.5, color="#555")
+    ax2.grid(alpha=0.3)
+
+    # uncertainty and staleness
+    ax3.plot(d, sd, color="#c0392b", linewidth=1.0, label="predictive std")
+    ax3.set_ylabel(f"predictive std{u}", color="#c0392b")
+    ax3.tick_params(axis="y", colors="#c0392b")
+    if np.isfinite(sd).any():
+        top = np.nanpercentile(sd, 99.5)
+        ax3.set_ylim(0, 1.15 * top if top > 0 else 1)
+    ax3.grid(alpha=0.3)
+    ax4 = ax3.twinx()
+    if track.t.size:
+        stale = staleness(track.t, lab["t"], [f.get("seen", math.nan) for f in track.fits],
+                          learned) / 3600.0
+        ts, _, _, _, st = _envelope(track.t, stale, stale, stale, stale)
+        ax4.plot(_dates(ts), st, color="#7f8c8d", linewidth=1.0,
+                 label="lab staleness (newest learned sample)")
+        if stale_after:
+            ax4.axhline(stale_after / 3600.0, color="#7f8c8d", linestyle=":", linewidth=1.0)
+            ax4.text(1.0, stale_after / 3600.0, f"stale after {stale_after / 3600:g} h ",
+                     transform=ax4.get_yaxis_transform(), ha="right", va="bottom", fontsize=8,
+                     color="#555")
+        if np.isfinite(st).any():
+            ax4.set_ylim(0, max(np.nanmax(st), (stale_after or 0) / 3600.0) * 1.15)
+    ax4.set_ylabel("hours since lab sample", color="#555")
+    lines = ax3.get_lines()[:1] + ax4.get_lines()[:1]
+    ax3.legend(lines, [ln.get_label() for ln in lines], loc="lower left",
+               bbox_to_anchor=(0.0, 1.0), ncol=2, fontsize=8.5, frameon=False)
+    ax3.xaxis.set_major_formatter(mdates.ConciseDateFormatter(ax3.xaxis.get_major_locator()))
+    ax3.set_xlabel("time (UTC)")
+    if note:
+        fig.text(0.995, 0.003, note, ha="right", va="bottom", fontsize=8, color="#555")
+    fig.tight_layout()
+    written = [str(path)]
+    fig.savefig(path, dpi=dpi)
+    plt.close(fig)
+
+    # page 2: calibration
+    keep = np.isfinite(z) & ~gated
+    cal = calibration(z[keep])
+    fig, (a1, a2) = plt.subplots(1, 2, figsize=(13, 5.2))
+    n = cal["n"]
+    bins = 10 if n < 200 else 20
+    if n:
+        a1.hist(cal["pit"], bins=bins, range=(0, 1), density=True, color="#4c8bd6",
+                edgecolor="white", label="lab results")
+        p = 1.0 / bins
+        half = 1.96 * math.sqrt(n * p * (1 - p)) / (n * p)
+        a1.axhspan(1 - half, 1 + half, color="gray", alpha=0.25, zorder=3, linewidth=0,
+                   label="95% band for a calibrated model")
+    a1.axhline(1.0, color="black", linewidth=1.0, zorder=4, label="uniform (calibrated)")
+    a1.set_xlim(0, 1)
+    a1.set_xlabel("PIT = predictive CDF at the lab value")
+    a1.set_ylabel("density")
+    a1.set_title(f"PIT histogram, {n} lab results (rejected ones left out)", loc="left")
+    a1.legend(loc="upper left", fontsize=8.5, framealpha=0.95)
+    a1.grid(alpha=0.3)
+    lv = cal["levels"]
+    a2.plot([0, 1], [0, 1], color="black", linewidth=1.0, label="nominal")
+    if n:
+        band = 1.96 * np.sqrt(lv * (1 - lv) / n)
+        a2.fill_between(lv, lv - band, lv + band, color="gray", alpha=0.15,
+                        label="95% band for a calibrated model")
+        a2.plot(lv, cal["coverage"], "o-", color="#1f4e8c", label="observed")
+        zq = special.ndtri(0.5 + level / 2)
+        here = float(np.mean(np.abs(z[keep]) <= zq))
+        a2.plot([level], [here], "s", color="#d64541", markersize=8,
+                label=f"published {100 * level:g}% interval: {100 * here:.1f}%")
+    a2.set_xlim(0, 1)
+    a2.set_ylim(0, 1)
+    a2.set_xlabel("nominal probability of the central interval")
+    a2.set_ylabel("share of lab results inside")
+    a2.set_title("interval coverage", loc="left")
+    a2.legend(loc="upper left", fontsize=8.5)
+    a2.grid(alpha=0.3)
+    fig.suptitle(f"{track.model}: calibration of the one-step-ahead predictions",
+                 x=0.01, ha="left", fontweight="bold")
+    if note:
+        fig.text(0.995, 0.003, note, ha="right", va="bottom", fontsize=8, color="#555")
+    fig.tight_layout()
+    second = path.with_name(f"{path.stem}-calibration{path.suffix}")
+    fig.savefig(second, dpi=dpi)
+    plt.close(fig)
+    written.append(str(second))
+    return written
