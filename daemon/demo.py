@@ -1,10 +1,17 @@
-"""The demo: the fictitious C-301 column on an accelerated feed, the daemon learning from it.
+"""The demo: commissioning and running a soft sensor on the fictitious C-301 column.
 
-Runs the simulator in :mod:`daemon.plant`, starts ``posteriord run`` as a subprocess on the
-built-in demo model with free loopback ports and a temporary state folder, publishes the
-simulated feed (one feature sample a minute of simulated time, lab results arriving hours
-after the sample was drawn) compressed into about a minute of wall time, prints a line per
-lab result as the daemon reports it, and a summary at the end. All data are simulated.
+The whole story on simulated data (all of it from :mod:`daemon.plant`, none from a plant):
+
+1. a historian CSV export of three months of the column (the ``Scenario.demo()`` preset: slow
+   fouling, a feed-grade step, a lab outage, a few lab blunders);
+2. tuning the built-in demo model on the first four weeks of that export (`daemon.tune`);
+3. a backtest of the tuned model over the whole export, beside the static batch model and the
+   model without forgetting (`daemon.backtest`);
+4. the daemon itself (``posteriord run`` as a subprocess, tuned model, free loopback ports, a
+   temporary state folder) on the simulated feed compressed into about a minute of wall time
+   (one feature sample a minute of simulated time, lab results arriving hours after the
+   sample was drawn), with the watch view and a line per lab result, the stream recorded;
+5. the report picture of the recorded stream (`daemon.report`).
 """
 
 from __future__ import annotations
@@ -25,7 +32,7 @@ from importlib import resources
 import numpy as np
 import zmq
 
-from daemon import plant, wire
+from daemon import backtest, historian, live, plant, report, tune, wire
 
 MODEL = "c301.bottoms_solvent"
 
@@ -130,57 +137,153 @@ class Tally:
         return "\n".join(lines)
 
 
+def _rule(title: str) -> None:
+    print(f"\n== {title} " + "=" * max(0, 86 - len(title)), flush=True)
+
+
+def _daemon_part(text: str) -> str:
+    """The ``[daemon]`` part of a config text: everything before its first ``[[model]]``."""
+    i = text.find("[[model]]")
+    return text if i < 0 else text[:i].rstrip() + "\n"
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(prog="demo", description=__doc__.splitlines()[0])
     ap.add_argument("--seconds", type=float, default=50.0,
-                    help="wall-clock duration of the feed (default 50)")
+                    help="wall-clock duration of the live feed (default 50)")
     ap.add_argument("--seed", type=int, default=0, help="simulator seed")
     ap.add_argument("--days", type=float, default=None, help="simulated days (default: preset)")
+    ap.add_argument("--tune-days", type=float, default=28.0,
+                    help="days at the start of the export used for tuning (default 28)")
+    ap.add_argument("--out", help="folder for the files (default: a new temporary folder)")
+    ap.add_argument("--picture", help="where to write the report picture (default: in --out)")
+    ap.add_argument("--skip-live", action="store_true",
+                    help="stop after the backtest and draw the report from it")
     ap.add_argument("--quiet", action="store_true", help="no line per lab result")
     args = ap.parse_args(argv)
 
     scenario = plant.Scenario.demo(seed=args.seed)
     if args.days is not None:
-        from dataclasses import replace
-        scenario = replace(scenario, days=args.days)
+        scenario = _shortened(scenario, args.days)
+    out_dir = args.out or tempfile.mkdtemp(prefix="posteriord-demo-out-")
+    os.makedirs(out_dir, exist_ok=True)
     run = plant.simulate(scenario)
-    events = list(plant.events(run))
-    print(f"Simulating {scenario.days:g} days of the fictitious C-301 column: "
-          f"{len(run.t)} feature samples, {len(run.lab_t)} lab results "
-          f"(simulated data, not plant data)")
 
+    _rule("1/5  historian export")
+    csv_path = os.path.join(out_dir, "c301-history.csv")
+    historian.write_csv(csv_path, run)
+    events = [f"fouling {scenario.fouling_ppm_per_day:g} ppm/day"]
+    if scenario.step_day is not None:
+        events.append(f"feed-grade step on day {scenario.step_day:g}")
+    if scenario.outage_days is not None:
+        events.append(f"lab outage days {scenario.outage_days[0]:g}-{scenario.outage_days[1]:g}")
+    if scenario.blunders:
+        events.append(f"{scenario.blunders} lab blunders")
+    print(f"Simulated {scenario.days:g} days of the fictitious C-301 column ({', '.join(events)})"
+          f": {len(run.t)} feature samples, {len(run.lab_t)} lab results -> {csv_path}")
+    print("(simulated data from a fictitious unit, not plant data)")
+
+    _rule(f"2/5  commissioning: tune the demo model on the first {args.tune_days:g} days")
+    start = demo_config_model()
+    history = backtest.load_history(csv_path, [i.tag for i in start.inputs])
+    tuned = tune.tune(history, start, until=float(history.t[0]) + args.tune_days * 86400.0)
+    print(tune.table_text(tuned, top=6, unit="ppm", source=os.path.basename(csv_path)))
+    block = tune.model_toml(tuned.model, tune.header_comments(tuned, csv_path))
+    block_path = os.path.join(out_dir, "c301-tuned-model.toml")
+    with open(block_path, "w") as fh:
+        fh.write(block)
+    print(f"[[model]] block for the config: {block_path}")
+
+    _rule("3/5  backtest over the whole export, against the static model")
+    bt = backtest.backtest(history, tuned.model, train=args.tune_days * 86400.0, unit="ppm")
+    print(backtest.summary_text(bt, "ppm"))
+    pred_path = os.path.join(out_dir, "c301-backtest.csv")
+    backtest.write_predictions(pred_path, bt)
+    print(f"predictions: {pred_path}")
+    if args.skip_live:
+        track = bt.track
+        code = 0
+    else:
+        _rule("4/5  the daemon live on an accelerated feed")
+        rec_path = os.path.join(out_dir, "c301-live.rec")
+        code = _live(run, tuned.model, block, rec_path, args)
+        print(f"stream recorded: {rec_path}")
+        track = report.load_track(rec_path, MODEL)
+        track.meta.update(target=plant.TARGET, unit="ppm")
+
+    _rule("5/5  report")
+    picture = args.picture or os.path.join(out_dir, "c301-report.png")
+    m = tuned.model
+    paths = report.report(track, picture, unit="ppm", note=plant.DISCLAIMER,
+                          cusum_k=m.cusum_k, cusum_h=m.cusum_h, stale_after=m.stale_after,
+                          title=f"{MODEL}: " + ("the daemon live on the simulated feed"
+                                                if not args.skip_live else "backtest"))
+    for p in paths:
+        print(f"report picture: {p}")
+    return code
+
+
+def _shortened(scenario: plant.Scenario, days: float) -> plant.Scenario:
+    """The preset over ``days``, its step and outage moved in proportion."""
+    from dataclasses import replace
+
+    f = days / scenario.days
+    step = None if scenario.step_day is None else scenario.step_day * f
+    outage = None if scenario.outage_days is None else tuple(d * f for d in scenario.outage_days)
+    return replace(scenario, days=days, step_day=step, outage_days=outage)
+
+
+def demo_config_model():
+    """The model of the built-in demo config (the starting point of the tuning)."""
+    from daemon.config import demo_config
+
+    return next(m for m in demo_config().models if m.name == MODEL)
+
+
+def _live(run: plant.Run, model, block: str, rec_path: str, args) -> int:
+    """Step 4: the daemon on the simulated feed, watched and recorded; returns the exit code."""
+    events = list(plant.events(run))
     tmp = tempfile.mkdtemp(prefix="posteriord-demo-")
     ports = [free_port() for _ in range(4)]
     feed_ep, pub_ep, ctl_ep = (f"tcp://127.0.0.1:{p}" for p in ports[:3])
     cfg_path = os.path.join(tmp, "demo.toml")
     with open(cfg_path, "w") as fh:
-        fh.write(demo_toml(feed_ep, pub_ep, ctl_ep, f"127.0.0.1:{ports[3]}",
-                           os.path.join(tmp, "state")))
+        fh.write(_daemon_part(demo_toml(feed_ep, pub_ep, ctl_ep, f"127.0.0.1:{ports[3]}",
+                                        os.path.join(tmp, "state"))))
+        fh.write("\n" + block)
     ctx = zmq.Context()
     feed = ctx.socket(zmq.XPUB)
     feed.setsockopt(zmq.LINGER, 1000)
     feed.setsockopt(zmq.SNDHWM, 0)
     feed.bind(feed_ep)
-    daemon = subprocess.Popen([sys.executable, "-m", "daemon.cli", "run", "--config", cfg_path])
+    # the daemon's log goes to a file: its lines would tear the watch view apart, and the
+    # trust changes it logs are printed above the view anyway
+    log_path = os.path.join(os.path.dirname(rec_path), "c301-daemon.log")
+    log_file = open(log_path, "w")
+    daemon = subprocess.Popen([sys.executable, "-m", "daemon.cli", "run", "--config", cfg_path],
+                              stdout=log_file, stderr=subprocess.STDOUT)
     out = ctx.socket(zmq.SUB)
     out.setsockopt(zmq.LINGER, 0)
     out.setsockopt(zmq.RCVHWM, 0)
     for prefix in (b"pred/", b"fit/", b"alert/"):
         out.setsockopt(zmq.SUBSCRIBE, prefix)
     out.connect(pub_ep)
-    tally = Tally(run)
+    view = View(Tally(run), live.watch_state(pub_ep, "ppm"), live.Screen(),
+                live.RecordWriter(rec_path, endpoint=pub_ep), args.quiet)
     code = 1
+    rc = None
     try:
         if not feed.poll(20000):
             print("demo: the daemon did not subscribe within 20 s", file=sys.stderr)
             return 1
         feed.recv()  # the daemon's subscription
-        print(f"daemon up (pid {daemon.pid}); feed {feed_ep}, predictions {pub_ep}, "
-              f"metrics http://127.0.0.1:{ports[3]}/metrics")
+        print(f"daemon up (pid {daemon.pid}) with the tuned model; feed {feed_ep}, "
+              f"predictions {pub_ep}, metrics http://127.0.0.1:{ports[3]}/metrics")
         _wait_output_connected(ctx, ctl_ep, out)
         span = events[-1][-1 if events[-1][0] == "y" else 1] - run.t[0]
         speed = span / args.seconds
-        print(f"replaying at {speed:,.0f}x real time\n")
+        print(f"replaying at {speed:,.0f}x real time (the same simulated run, now with its "
+              f"real lab delays); the watch view stays at the bottom\n")
         t_sim0, t_wall0 = float(run.t[0]), time.monotonic()
         send = feed.send_multipart
         topic = MODEL.encode()
@@ -194,23 +297,63 @@ def main(argv=None) -> int:
             due = t_wall0 + (arrival - t_sim0) / speed
             lag = due - time.monotonic()
             if lag > 0:
-                _drain(out, tally, args.quiet, lag)
+                _drain(out, view, lag)
             send([topic, wire.packb(body)])
-        _drain(out, tally, args.quiet, 1.0, until_quiet=True)
-        print(tally.summary())
+        _drain(out, view, 1.0, until_quiet=True)
+        view.draw(force=True)
+        view.screen.final()
+        print(view.tally.summary())
         code = 0
     finally:
+        view.recorder.close()
         daemon.send_signal(signal.SIGTERM)
         try:
             rc = daemon.wait(15)
         except subprocess.TimeoutExpired:
             daemon.kill()
             rc = daemon.wait()
-        print(f"daemon stopped (exit code {rc})")
+        log_file.close()
+        print(f"daemon stopped (exit code {rc}); its log: {log_path}")
         feed.close()
         out.close()
         ctx.term()
     return code if rc == 0 else 1
+
+
+class View:
+    """The live part's outputs: the tally, the watch view, the recording."""
+
+    def __init__(self, tally: Tally, state: dict, screen, recorder, quiet: bool):
+        self.tally = tally
+        self.state = state
+        self.screen = screen
+        self.recorder = recorder
+        self.quiet = quiet
+        self._drawn = 0.0
+
+    def take(self, topic: bytes, payload: bytes) -> None:
+        now = time.time()
+        self.recorder.write(now, topic, payload)
+        body = wire.unpack(payload, 1 << 24)
+        live.watch_update(self.state, topic.decode(), body, now)
+        self.tally.take(topic, body, True)
+        if self.quiet:
+            return
+        if topic.startswith(b"fit/"):
+            self.screen.above(self.tally.line(body))
+        elif topic.startswith(b"alert/") and body.get("kind") == "state":
+            why = ", ".join(r["name"] for r in body.get("reasons", [])) or "no reasons left"
+            self.screen.above(f"{_stamp(body['t'])}  trust {body['old']} -> {body['new']} "
+                              f"({why})")
+
+    def draw(self, force: bool = False) -> None:
+        if force or time.monotonic() - self._drawn > 0.25:
+            self.state["now"] = time.time()
+            import shutil
+
+            width = shutil.get_terminal_size().columns if self.screen.tty else None
+            self.screen.show(live.render(self.state, width=width, color=self.screen.tty))
+            self._drawn = time.monotonic()
 
 
 def _wait_output_connected(ctx, ctl_ep: str, out) -> None:
@@ -232,7 +375,7 @@ def _wait_output_connected(ctx, ctl_ep: str, out) -> None:
             break
 
 
-def _drain(sock, tally: Tally, quiet: bool, wait: float, until_quiet: bool = False) -> None:
+def _drain(sock, view: View, wait: float, until_quiet: bool = False) -> None:
     deadline = time.monotonic() + wait
     while True:
         left = deadline - time.monotonic()
@@ -247,7 +390,8 @@ def _drain(sock, tally: Tally, quiet: bool, wait: float, until_quiet: bool = Fal
                 topic, payload = sock.recv_multipart(zmq.NOBLOCK)
             except zmq.Again:
                 break
-            tally.take(topic, wire.unpack(payload, 1 << 24), quiet)
+            view.take(topic, payload)
+        view.draw()
 
 
 if __name__ == "__main__":
