@@ -31,6 +31,7 @@ import socket
 import threading
 import time
 from collections import Counter, deque
+from contextlib import contextmanager
 
 import numpy as np
 import zmq
@@ -152,7 +153,8 @@ class Service:
         for note in store.open():
             log.info("state: %s", note)
         try:
-            rec = store.recover(d.on_corruption)
+            with _gc_paused():
+                rec = store.recover(d.on_corruption)
             for note in rec.notes:
                 log.warning("state: %s", note)
             if rec.dropped_after_seq is not None:
@@ -160,7 +162,8 @@ class Service:
                             "is dropped; the learned state is that of checkpoint %d plus "
                             "the intact records before the damage", rec.dropped_after_seq,
                             rec.checkpoint_seq)
-            self.restore(rec, lenient=d.on_corruption == "checkpoint")
+            with _gc_paused():
+                self.restore(rec, lenient=d.on_corruption == "checkpoint")
             self.adopt(self.config.models, at_start=True)
             self.store = store
             self.recovery = rec
@@ -304,7 +307,8 @@ class Service:
         """Write a checkpoint now; returns its sequence number."""
         if self.store is None:
             raise StoreError("no state folder is open (an in-memory service)")
-        seq = self.store.checkpoint(self.state_body())
+        with _gc_paused():
+            seq = self.store.checkpoint(self.state_body())
         self.checkpoints += 1
         self.checkpoint_seq = seq
         self._dirty = False
@@ -733,7 +737,8 @@ class Service:
         self.store = None
         try:
             if store.failed is None:
-                seq = store.checkpoint(self.state_body())
+                with _gc_paused():
+                    seq = store.checkpoint(self.state_body())
                 self.checkpoints += 1
                 self.checkpoint_seq = seq
                 log.info("state: checkpoint %d written on shutdown", seq)
@@ -749,6 +754,20 @@ class Service:
             except DurabilityError as exc:
                 log.critical("state: closing the folder failed: %s", exc)
                 self.exit_code = EXIT_DURABILITY
+
+
+@contextmanager
+def _gc_paused():
+    """No cyclic garbage collection inside: a checkpoint creates and drops millions of
+    acyclic lists and floats (freed by reference counting), and the collections they would
+    trigger took most of its time."""
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
 
 
 def _concat(batches: list[PredBatch]) -> PredBatch:
