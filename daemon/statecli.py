@@ -96,21 +96,20 @@ def describe_folder(path) -> dict:
         except (OSError, st.StoreError) as exc:  # replaced or removed since it was listed
             info["checkpoint_error"] = f"{name}: {exc}"
     models: dict[str, dict] = {}
-    if body is not None:
-        for m in body.get("models", []):
-            post, counters = m["posterior"], m["counters"]
-            mon = m.get("monitor")
-            models[m["config"]["name"]] = {
-                "name": m["config"]["name"], "fingerprint": m["fingerprint"],
-                "updates": post["n_updates"], "t_last_update": post["t_last"],
-                "last_lab_t": m["last_lab_t"], "last_sample_t": m["last_x_t"],
-                "frozen": m["frozen"], "buffered_rows": len(m["aligner"]["t"]),
-                "learned": counters["n_learned"], "features": counters["n_features"],
-                "trust": None if mon is None else mon["trust"].get("state"),
-                "lab_records_after": 0, "last_lab_record_t": None, "actions_after": [],
-            }
+    try:
+        if body is not None:
+            for m in body.get("models", []):
+                models[m["config"]["name"]] = _checkpoint_entry(m)
+        _summarize_records(info, (seq or 0) + 1, models)
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        # intact framing around content this version does not read (start-up would refuse)
+        info["content_error"] = f"{type(exc).__name__}: {exc}"
+    info["models"] = list(models.values())
+    return info
+
+
+def _summarize_records(info: dict, first_after: int, models: dict) -> None:
     after = info["after_checkpoint"]
-    first_after = (seq or 0) + 1
     for seg in info["segments"]:
         if seg["last_seq"] is None or seg["last_seq"] < first_after:
             continue
@@ -125,6 +124,10 @@ def describe_folder(path) -> dict:
             after["records"] += 1
             kind = str(rec.get("k"))
             after["kinds"][kind] = after["kinds"].get(kind, 0) + 1
+            if kind in ("model", "import"):
+                models.pop(rec.get("m"), None)  # a new model (or gone): as of this record
+                if rec.get("op") != "drop":
+                    models[rec["m"]] = _new_entry(rec)
             m = models.get(rec.get("m"))
             if m is None:
                 continue
@@ -133,10 +136,38 @@ def describe_folder(path) -> dict:
                 m["last_lab_record_t"] = rec.get("t")
             elif kind == "ctl":
                 m["actions_after"].append(rec.get("cmd"))
-            elif kind in ("model", "import"):
-                m["actions_after"].append(f"{kind} {rec.get('op', '')}".strip())
-    info["models"] = list(models.values())
-    return info
+
+
+def _new_entry(rec: dict) -> dict:
+    """The inspect entry of a model that a record adds (a reload's new model, an import)."""
+    from daemon.config import ModelConfig
+
+    if rec["k"] == "import":
+        state = rec["state"]
+        entry = _checkpoint_entry(state)
+        entry["name"] = rec["m"]
+        entry["actions_after"] = ["imported"]
+        return entry
+    cfg = ModelConfig.from_state(rec["config"])
+    return {"name": cfg.name, "fingerprint": cfg.fingerprint(), "updates": 0,
+            "t_last_update": None, "last_lab_t": None, "last_sample_t": None,
+            "frozen": False, "buffered_rows": 0, "learned": 0, "features": 0, "trust": None,
+            "lab_records_after": 0, "last_lab_record_t": None,
+            "actions_after": ["new (from its prior)"]}
+
+
+def _checkpoint_entry(m: dict) -> dict:
+    post, counters = m["posterior"], m["counters"]
+    mon = m.get("monitor")
+    return {
+        "name": m["config"]["name"], "fingerprint": m["fingerprint"],
+        "updates": post["n_updates"], "t_last_update": post["t_last"],
+        "last_lab_t": m["last_lab_t"], "last_sample_t": m["last_x_t"],
+        "frozen": m["frozen"], "buffered_rows": len(m["aligner"]["t"]),
+        "learned": counters["n_learned"], "features": counters["n_features"],
+        "trust": None if mon is None else mon["trust"].get("state"),
+        "lab_records_after": 0, "last_lab_record_t": None, "actions_after": [],
+    }
 
 
 def _when(t) -> str:
@@ -185,6 +216,9 @@ def format_folder(info: dict) -> str:
         lines.append(f"  unfinished checkpoint: {name} (removed at the next start)")
     if info.get("checkpoint_error"):
         lines.append(f"  checkpoint could not be read now: {info['checkpoint_error']}")
+    if info.get("content_error"):
+        lines.append(f"  CONTENT NOT UNDERSTOOD (a daemon would refuse it): "
+                     f"{info['content_error']}")
     after = info["after_checkpoint"]
     kinds = ", ".join(f"{n} {k}" for k, n in sorted(after["kinds"].items())) or "none"
     lines.append(f"  records after the newest valid checkpoint: {after['records']} ({kinds})")

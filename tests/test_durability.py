@@ -52,9 +52,11 @@ from conftest import (
 )
 
 from daemon import cli, plant
-from daemon.config import load, loads
+from daemon.config import ModelConfig, load, loads
+from daemon.historian import Aligner
+from daemon.models import _aligner_from_state, _aligner_state
 from daemon.service import Service, StateError
-from daemon.statecli import read_export
+from daemon.statecli import describe_folder, read_export
 from daemon.store import CorruptionError, LockedError, OsFs
 
 A = "c301.single"   # single messages, ids on the features, half its lab results by id
@@ -271,6 +273,11 @@ def test_restart_replays_lab_results_control_actions_and_reloads(tmp_path, run):
     kinds = [(r["k"], r.get("cmd"), r.get("op")) for r in read_wal(tmp_path / "state")]
     assert ("model", None, "new") in kinds and ("ctl", "reset", None) in kinds
 
+    info = describe_folder(tmp_path / "state")  # read-only, beside the running service
+    b = next(m for m in info["models"] if m["name"] == B)
+    assert b["actions_after"] == ["new (from its prior)"]
+    assert b["lab_records_after"] == len(live.pub.fits(B)) - fits_before
+
     copy = crash_copy(live, tmp_path / "copy")
     back = bench(copy, models)
     assert back.recovery.checkpoint_seq == 0 and back.replayed == len(kinds)
@@ -339,6 +346,42 @@ def test_duplicate_lab_results_are_not_learned_twice(tmp_path, run):
     assert svc.runners[A].rejected["lab_out_of_order"] == 2
     assert svc.runners[A].post.reject_run == 1
     svc.close()
+
+
+def test_model_settings_and_feature_buffers_round_trip_as_plain_data():
+    cfgs = loads(toml_config({}, [
+        model_a(), model_b(),
+        c301_model("rw", forgetting={"policy": "random_walk", "q": 1e-9},
+                   noise={"std": 4.0}, prior={"alpha": 0.5, "mean": [1.0] + [0.0] * 14}),
+        c301_model("plain", forgetting={"policy": "none"}, gate={"k": 0},
+                   alerts={"enabled": False})])).models
+    for cfg in cfgs:
+        # through msgpack itself, as in a checkpoint
+        back = ModelConfig.from_state(msgpack.unpackb(msgpack.packb(cfg.to_state())))
+        assert back == cfg and back.fingerprint() == cfg.fingerprint()
+    state = cfgs[0].to_state()
+    with pytest.raises(ValueError, match="posteriord.model-config/0"):
+        ModelConfig.from_state({**state, "schema": "posteriord.model-config/0"})
+    with pytest.raises(ValueError, match="unknown \\['colour'\\]"):
+        ModelConfig.from_state({**state, "colour": "red"})
+
+    # the fast conversion of the feature buffer gives what Aligner.to_state gives, for rows
+    # pushed one at a time (tuples) and from blocks (numpy views), nan blanks included
+    al = Aligner(("a", "b"), (0.0, 60.0), 3600.0, tolerance_s=30.0, max_rows=50)
+    for k in range(30):
+        al.push_trusted(float(k), (float(k), math.nan if k % 7 == 0 else -float(k)))
+    X = np.arange(80, dtype=float).reshape(40, 2)
+    al.push_many_trusted([30.0 + k for k in range(40)], list(X))
+    fast, ref = _aligner_state(al), al.to_state()
+    assert msgpack.packb(fast) == msgpack.packb(
+        {**ref, "x": [[float(v) for v in r] for r in ref["x"]]})
+    back = _aligner_from_state(fast)
+    assert msgpack.packb(_aligner_state(back)) == msgpack.packb(
+        _aligner_state(Aligner.from_state(fast)))
+    assert [back.lookup(t) for t in (45.5, 69.0, 100.0)] == \
+        [al.lookup(t) for t in (45.5, 69.0, 100.0)]
+    with pytest.raises(ValueError, match="increasing"):
+        _aligner_from_state({**fast, "t": fast["t"][::-1]})
 
 
 # ---------------------------------------------------------------------------------- damage
