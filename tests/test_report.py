@@ -72,8 +72,9 @@ def test_pit_and_coverage_from_z_equal_the_student_t_ones():
 
 
 def _page_cusum(z, k, h):
-    """Page's tabular CUSUM written out directly (Montgomery, Introduction to Statistical
-    Quality Control, sec. 9.1), restarting both sums after a signal."""
+    """Page's tabular CUSUM written out directly (Page 1954; as tabulated in Montgomery,
+    Introduction to Statistical Quality Control, ch. 9, the chapter number from memory),
+    restarting both sums after a signal."""
     up = lo = 0.0
     out = []
     for v in z:

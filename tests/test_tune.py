@@ -67,7 +67,9 @@ def test_learned_noise_recovers_the_noise_level():
 def test_recovers_the_optimal_half_life_of_a_random_walk_level():
     # reference: for a level that moves as a random walk (variance q per lab interval) seen
     # through noise of variance r, the optimal one-step predictor is exponential smoothing
-    # (Muth 1960) with the steady-state Kalman gain K = (-s + sqrt(s^2 + 4 s)) / 2, s = q/r.
+    # (Muth 1960, citation from memory) with the steady-state Kalman gain: the prior variance
+    # p solves p = p r / (p + r) + q, so with s = q/r, P = p/r = (s + sqrt(s^2 + 4 s)) / 2
+    # and K = P / (P + 1) = (-s + sqrt(s^2 + 4 s)) / 2.
     # Stabilized forgetting of a flat-prior intercept is exponential smoothing with gain
     # 1 - lambda, lambda = 2^(-dt / half-life), so the best half-life is
     # dt ln 2 / -ln(1 - K); the predictive variance sigma^2 (1 + K) must then match the
