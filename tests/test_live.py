@@ -308,3 +308,22 @@ def test_watch_over_a_socket(ctx):
     frame = out.getvalue()
     assert "x " in frame and "5.0 ± 1.0 ppm" in frame and "90% [3.0, 7.0]" in frame
     assert "5.5 (+0.5, +0.50)" in frame
+
+
+def test_watch_command_prints_the_last_frame(ctx, capsys):
+    ep = f"tcp://127.0.0.1:{free_port()}"
+    pub = live.open_feed(ctx, ep)
+    rc = []
+    th = threading.Thread(target=lambda: rc.append(main(
+        ["watch", "--endpoint", ep, "--count", "1", "--unit", "ppm"])))
+    th.start()
+    assert not live.wait_subscribed(pub, ["pred/c301", "fit/c301", "alert/c301"], TIMEOUT)
+    pub.send_multipart([b"pred/c301", wire.packb({"t": 1767571200.0, "mean": 180.5, "std": 6.0,
+                                                  "lo": 168.0, "hi": 193.0,
+                                                  "status": "stale", "level": 0.95,
+                                                  "trust": "caution"})])
+    th.join(TIMEOUT)
+    pub.close(linger=0)
+    assert rc == [EXIT_OK]
+    line = next(ln for ln in capsys.readouterr().out.splitlines() if ln.startswith("c301"))
+    assert "180.5 ± 6.0 ppm" in line and "stale" in line and "caution" in line
