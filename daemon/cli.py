@@ -110,6 +110,19 @@ def cmd_ctl(args) -> int:
     return EXIT_OK if reply.get("ok") else EXIT_RUNTIME
 
 
+def cmd_keys_new(args) -> int:
+    from daemon.security import SecurityError, new_keys
+
+    try:
+        public, secret = new_keys(args.dir, args.name)
+    except (SecurityError, OSError) as exc:
+        print(f"posteriord: {exc}", file=sys.stderr)
+        return EXIT_RUNTIME
+    print(f"public key {public} (hand it out: clients/ or admins/ folders of the peers)")
+    print(f"secret key {secret} (mode 0600; keep it on this host)")
+    return EXIT_OK
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="posteriord", description="Online Bayesian soft sensors.")
     sub = p.add_subparsers(dest="what", required=True)
@@ -127,8 +140,20 @@ def main(argv=None) -> int:
     k.add_argument("--endpoint", default="tcp://127.0.0.1:5557", help="control endpoint")
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
     k.set_defaults(func=cmd_ctl)
-    __import__("daemon.workcli", fromlist=["add_work_commands"]).add_work_commands(sub)
-    __import__("daemon.statecli", fromlist=["add_state_commands"]).add_state_commands(sub)
+    # imported here: these modules import the service, which imports this module's exit codes
+    from daemon.relay import add_relay_command
+    from daemon.statecli import add_state_commands
+    from daemon.workcli import add_work_commands
+
+    add_work_commands(sub)
+    add_state_commands(sub)
+    add_relay_command(sub)
+    keys = sub.add_parser("keys", help="CURVE key pairs")
+    ksub = keys.add_subparsers(dest="keys_what", required=True)
+    kn = ksub.add_parser("new", help="write NAME.key (public) and NAME.key_secret (0600)")
+    kn.add_argument("name", help="key name, e.g. the host or the client")
+    kn.add_argument("--dir", default="keys", help="folder for the key files (default keys/)")
+    kn.set_defaults(func=cmd_keys_new)
     args = p.parse_args(argv)
     return args.func(args)
 

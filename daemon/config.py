@@ -315,6 +315,24 @@ def _nonempty_string(v: Any) -> str:
     return v
 
 
+def _shard(v: Any) -> str:
+    from daemon.relay import parse_shard
+
+    if v == "":
+        return v
+    try:
+        i, n = parse_shard(v)
+    except ValueError:
+        raise _Bad('"i/n" with 0 <= i < n (e.g. "0/2"), or "" for all models') from None
+    return f"{i}/{n}"
+
+
+def _path(v: Any) -> str:
+    if not isinstance(v, str):
+        raise _Bad('a file or folder path, or "" for none')
+    return v
+
+
 def _duration(v: Any) -> float:
     try:
         return parse_duration(v)
@@ -411,6 +429,9 @@ ENDPOINTS = _Kind("array of endpoints", "an array of ZeroMQ endpoints",
                   _endpoints)
 HOST_PORT = _Kind('"host:port" or ""', '"host:port"',
                   '"host:port" like "127.0.0.1:9108", or "" to disable', _host_port)
+SHARD = _Kind('`"i/n"` or `""`', "a shard",
+              '"i/n" with 0 <= i < n (e.g. "0/2"), or "" for all models', _shard)
+PATH = _Kind('path or `""`', "a path", 'a file or folder path, or "" for none', _path)
 NAME = _Kind("string of 1-100 `A-Z a-z 0-9 . _ -`", "a name", _NAME_EXPECTED, _name)
 TAG = _Kind("string without spaces", "a tag", "a non-empty tag name without spaces", _tag)
 
@@ -429,6 +450,7 @@ GE1 = _Check(">= 1", lambda v: v >= 1)
 OPEN01 = _Check("in (0, 1)", lambda v: 0 < v < 1)
 GT1 = _Check("> 1", lambda v: v > 1)
 UNIT01 = _Check("in [0, 1]", lambda v: 0 <= v <= 1)
+ZERO_OR_GT1 = _Check("0 or > 1", lambda v: v == 0 or v > 1)
 
 
 # ---------------------------------------------------------------------------------- the table
@@ -601,6 +623,22 @@ SETTINGS: tuple[Setting, ...] = (
             "dropped and never counts as damage): `refuse` exits with code 6 and leaves the "
             "folder for a decision; `checkpoint` starts from the newest checkpoint plus the "
             "intact records before the damage and logs what was dropped."),
+    Setting("daemon", "shard", "shard", SHARD, "",
+            'Run only the models whose CRC-32 of the name modulo n is i (`"i/n"`), and '
+            "subscribe only to their topics; several daemons then share one feed. "
+            '`""` runs every model.'),
+    Setting("daemon", "curve_secret_key", "curve_secret_key", PATH, "",
+            "The daemon's CURVE key pair (a `NAME.key_secret` file from `posteriord keys new`, "
+            'mode 0600). Set: publish and control are CURVE servers, the feed a CURVE client. '
+            '`""`: no CURVE, and publish and control must bind to loopback or ipc.'),
+    Setting("daemon", "curve_clients", "curve_clients", PATH, "",
+            "Folder of the public keys (`*.key`) allowed to subscribe to the publish socket "
+            "(re-read on SIGHUP)."),
+    Setting("daemon", "curve_admins", "curve_admins", PATH, "",
+            "Folder of the public keys allowed to send control commands (re-read on SIGHUP)."),
+    Setting("daemon", "curve_feed_server_key", "curve_feed_server_key", PATH, "",
+            "Public key of the feed publisher when it is a CURVE server; `\"\"` connects "
+            "without CURVE."),
     # [[model]]
     Setting("model", "name", "name", NAME, REQUIRED,
             "Model name, unique across models; also the topic of its messages."),
@@ -713,11 +751,11 @@ SETTINGS: tuple[Setting, ...] = (
             "the target's units; not set: no absolute limit.", GT0),
     Setting("model.alerts", "std_ratio", "std_ratio", NUMBER, 3.0,
             "Predictive std over its own typical value above which the model is in caution "
-            "(reason `uncertainty_ratio`); 0 disables.", GE0),
+            "(reason `uncertainty_ratio`); 0 disables.", ZERO_OR_GT1),
     Setting("model.alerts", "std_half_life", "std_half_life", NUMBER, 50.0,
             "Half-life, in lab results, of the typical predictive std (taken at lab times).",
             GT0),
-    Setting("model.alerts", "leverage_limit", "leverage_limit", NUMBER, 1.0,
+    Setting("model.alerts", "leverage_limit", "leverage_limit", NUMBER, 3.0,
             "Leverage phi'V phi (weight uncertainty in units of the noise variance) above "
             "which the inputs are an extrapolation (reason `extrapolation`, caution); 0 "
             "disables.", GE0),
@@ -797,6 +835,23 @@ class DaemonConfig:
     fsync: str = _default("daemon", "fsync")
     group_commit: float = _default("daemon", "group_commit")
     on_corruption: str = _default("daemon", "on_corruption")
+    shard: str = _default("daemon", "shard")
+    curve_secret_key: str = _default("daemon", "curve_secret_key")
+    curve_clients: str = _default("daemon", "curve_clients")
+    curve_admins: str = _default("daemon", "curve_admins")
+    curve_feed_server_key: str = _default("daemon", "curve_feed_server_key")
+
+    def curve_keys(self):
+        """The CURVE key settings as :class:`daemon.security.CurveKeys`."""
+        from daemon.security import CurveKeys
+
+        return CurveKeys(self.curve_secret_key or None, self.curve_clients or None,
+                         self.curve_admins or None, self.curve_feed_server_key or None)
+
+    def shard_spec(self) -> tuple[int, int] | None:
+        from daemon.relay import parse_shard
+
+        return parse_shard(self.shard) if self.shard else None
 
 
 @dataclass(frozen=True)
@@ -1022,6 +1077,22 @@ def _parse_daemon(doc: dict, file: str | None) -> DaemonConfig:
     if values["control"] == values["publish"]:
         raise ctx.error("daemon.control", "an endpoint different from daemon.publish",
                         _show(values["control"]))
+    if values["curve_secret_key"]:
+        for key in ("curve_clients", "curve_admins"):
+            if not values[key]:
+                raise ctx.error(f"daemon.{key}", "a folder of allowed public keys (required "
+                                "with daemon.curve_secret_key)", _show(REQUIRED))
+    else:
+        for key in ("curve_clients", "curve_admins", "curve_feed_server_key"):
+            if values[key]:
+                raise ctx.error(f"daemon.{key}", 'no value (daemon.curve_secret_key is "")',
+                                _show(values[key]))
+        for key in ("publish", "control"):
+            if not is_loopback(values[key]):
+                raise ctx.error(f"daemon.{key}", "a loopback or ipc endpoint, or CURVE "
+                                "(daemon.curve_secret_key): without it anyone on the network "
+                                "could " + ("read the predictions" if key == "publish"
+                                            else "send commands"), _show(values[key]))
     if values["reconnect_ivl_max"] < values["reconnect_ivl"]:
         raise ctx.error("daemon.reconnect_ivl_max",
                         f"a duration >= daemon.reconnect_ivl "

@@ -43,6 +43,8 @@ from daemon.cli import EXIT_DURABILITY, EXIT_OK
 from daemon.config import ModelConfig
 from daemon.metrics import PREFIX, ServiceCollector
 from daemon.models import ModelRunner, PredBatch, Rejected
+from daemon.relay import select
+from daemon.security import DOMAIN_CONTROL, DOMAIN_PUBLISH, Security, check_binds
 from daemon.store import DurabilityError, Recovery, StateDir, StoreError
 
 log = logging.getLogger("posteriord")
@@ -88,9 +90,14 @@ class Service:
     def __init__(self, config, *, registry: CollectorRegistry | None = None,
                  context: zmq.Context | None = None, config_path: str | None = None,
                  fs=None):
+        self.shard = config.daemon.shard_spec()
+        # with a shard, this daemon is only ever given its share of the configured models
+        config = type(config)(daemon=config.daemon, models=select(config.models, self.shard),
+                              source=config.source)
         self.config = config
         self.config_path = config_path
         self.runners: dict[str, ModelRunner] = {m.name: ModelRunner(m) for m in config.models}
+        self.security: Security | None = None
         self.received: Counter = Counter()
         self.rejected_unknown: Counter = Counter()
         self.reloads: Counter = Counter()
@@ -344,7 +351,12 @@ class Service:
         """Open the state folder (:meth:`open_state`), then the sockets."""
         self.open_state()
         d = self.config.daemon
+        keys = d.curve_keys()
+        check_binds({"publish": d.publish, "control": d.control}, keys)
         ctx = self._ctx = self._ctx or zmq.Context()
+        # the authenticator must run before a CURVE server socket binds
+        self.security = Security(ctx, keys)
+        self.security.start()
         self.sub = ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.RCVHWM, d.hwm)
@@ -355,15 +367,18 @@ class Service:
         self.sub.setsockopt(zmq.RECONNECT_IVL_MAX, max(1, int(d.reconnect_ivl_max * 1000)))
         for name in self.runners:
             self.sub.setsockopt(zmq.SUBSCRIBE, name.encode())
+        self.security.client(self.sub)
         for ep in d.feeds:
             self.sub.connect(ep)
         self.pub = ctx.socket(zmq.PUB)
         self.pub.setsockopt(zmq.LINGER, PUB_LINGER_MS)
         self.pub.setsockopt(zmq.SNDHWM, d.hwm)
+        self.security.server(self.pub, DOMAIN_PUBLISH)
         self.pub.bind(d.publish)
         self.rep = ctx.socket(zmq.REP)
         self.rep.setsockopt(zmq.LINGER, 0)
         self.rep.setsockopt(zmq.MAXMSGSIZE, 65536)
+        self.security.server(self.rep, DOMAIN_CONTROL)
         self.rep.bind(d.control)
         if d.metrics:
             host, _, port = d.metrics.rpartition(":")
@@ -682,6 +697,10 @@ class Service:
             return False, str(exc)
         if new.daemon != self.config.daemon:
             log.warning("reload: daemon settings changed; endpoints take effect on restart")
+        if self.security is not None:
+            self.security.reload()  # key folders are re-read on every reload
+        new = type(new)(daemon=new.daemon, models=select(new.models, self.shard),
+                        source=new.source)
         old = self.runners
         kept = self.adopt(new.models)
         runners = self.runners
@@ -725,6 +744,11 @@ class Service:
             if s is not None:
                 s.close()
         self._wake_r = self._wake_w = None
+        if self.security is not None:
+            if self.security.auth is not None:
+                self.closed_order.append("auth")
+            self.security.stop()
+            self.security = None
         if self._own_ctx and self._ctx is not None:
             self._ctx.term()
             self.closed_order.append("context")

@@ -112,6 +112,11 @@ DAEMON_DEFAULTS = {
     "fsync": "group",
     "group_commit": 0.05,
     "on_corruption": "refuse",
+    "shard": "",
+    "curve_secret_key": "",
+    "curve_clients": "",
+    "curve_admins": "",
+    "curve_feed_server_key": "",
 }
 MODEL_DEFAULTS = {
     "basis_kind": "polynomial",
@@ -145,7 +150,7 @@ MODEL_DEFAULTS = {
     "std_limit": None,
     "std_ratio": 3.0,
     "std_half_life": 50.0,
-    "leverage_limit": 1.0,
+    "leverage_limit": 3.0,
     "region_limit": 5.0,
     "region_half_life": 200.0,
     "drift_window": 7 * DAY,
@@ -283,7 +288,27 @@ def test_is_loopback_rejects(bad):
     "tcp://eth0:65535", "ipc:///run/p.sock", "inproc://x",
 ])
 def test_endpoint_accepted(endpoint):
-    assert loads(f'[daemon]\npublish = "{endpoint}"\n').daemon.publish == endpoint
+    curve = ('curve_secret_key = "k/d.key_secret"\ncurve_clients = "c"\ncurve_admins = "a"\n'
+             if not is_loopback(endpoint) else "")
+    assert loads(f'[daemon]\npublish = "{endpoint}"\n{curve}').daemon.publish == endpoint
+
+
+@pytest.mark.parametrize("key", ["publish", "control"])
+def test_non_loopback_bind_without_curve_is_refused(key):
+    e = _err(f'[daemon]\n{key} = "tcp://0.0.0.0:5599"\n')
+    assert e.key == f"daemon.{key}"
+    assert e.expected.startswith("a loopback or ipc endpoint, or CURVE")
+    e = _err('[daemon]\ncurve_clients = "c"\n')
+    assert e.key == "daemon.curve_clients"
+    e = _err('[daemon]\ncurve_secret_key = "k"\ncurve_admins = "a"\n')
+    assert e.key == "daemon.curve_clients"
+
+
+def test_shard_setting():
+    assert loads('[daemon]\nshard = " 1 / 3 "\n').daemon.shard_spec() == (1, 3)
+    assert loads("").daemon.shard_spec() is None
+    e = _err('[daemon]\nshard = "3/3"\n')
+    assert e.key == "daemon.shard" and e.got == '"3/3"'
 
 
 @pytest.mark.parametrize("endpoint", [
@@ -343,6 +368,7 @@ def test_every_setting_rejects_wrong_type(row):
 
 
 _VIOLATING = {"> 0": "0", ">= 0": "-1", ">= 1": "0", "in (0, 1)": "1.0", "> 1": "1.0",
+              "0 or > 1": "0.5",
               "in [0, 1]": "1.5"}
 
 
@@ -706,7 +732,8 @@ def test_describe_demo_mentions_every_term_and_setting():
 
 def test_describe_variants():
     text = describe(loads(
-        '[daemon]\npublish = "tcp://*:5556"\nmetrics = ""\n' + MINIMAL
+        '[daemon]\npublish = "tcp://*:5556"\nmetrics = ""\ncurve_secret_key = "k"\n'
+        'curve_clients = "c"\ncurve_admins = "a"\n' + MINIMAL
         + '[model.basis]\nkind = "identity"\n[model.noise]\nstd = 3\n'
         '[model.forgetting]\npolicy = "random_walk"\nq = 1e-7\n[model.gate]\nk = 0\n'))
     assert "tcp://*:5556  (reachable from other hosts)" in text

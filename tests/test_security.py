@@ -172,3 +172,70 @@ def test_feed_socket_is_a_curve_client_of_the_publisher(keyring, tmp_path):
         psec.stop()
         dctx.term()
         pctx.term()
+
+
+def test_daemon_with_curve_serves_only_listed_keys(keyring, tmp_path):
+    """The real Service: CURVE on publish and control, admins only on control."""
+    import threading
+
+    import msgpack
+    from conftest import free_port
+
+    from daemon.config import loads
+    from daemon.service import Service
+
+    feed_ep = f"ipc://{tmp_path}/feed"
+    text = (f'[daemon]\nfeeds = ["{feed_ep}"]\npublish = "tcp://127.0.0.1:{free_port()}"\n'
+            f'control = "tcp://127.0.0.1:{free_port()}"\nmetrics = ""\n'
+            f'state_dir = "{tmp_path}/state"\n'
+            f'log_level = "warning"\ncurve_secret_key = "{keyring["server"][1]}"\n'
+            f'curve_clients = "{keyring["clients"]}"\ncurve_admins = "{keyring["admins"]}"\n'
+            '[[model]]\nname = "m"\ninputs = [{ tag = "A", lo = 0, hi = 1 }]\n')
+    ctx = zmq.Context()
+    feed = ctx.socket(zmq.XPUB)
+    feed.setsockopt(zmq.LINGER, 0)
+    feed.bind(feed_ep)
+    svc = Service(loads(text, "<test>"))
+    svc.open()
+    pub_ep, ctl_ep = svc.publish_endpoint, svc.control_endpoint
+    th = threading.Thread(target=svc.run, daemon=True)
+    th.start()
+    cctx = zmq.Context()
+    try:
+        assert feed.poll(5000) and feed.recv() == b"\x01m"
+        subs = {}
+        for name in ("dashboard", "stranger", None):
+            s = _client(cctx, zmq.SUB, keyring, name)
+            s.setsockopt(zmq.SUBSCRIBE, b"pred/")
+            s.connect(pub_ep)
+            subs[name] = s
+        got, t, deadline = 0, 0.0, time.monotonic() + 10
+        while got < 5 and time.monotonic() < deadline:
+            t += 1
+            feed.send_multipart([b"m", msgpack.packb({"t": t, "x": [0.5]})])
+            if subs["dashboard"].poll(20):
+                subs["dashboard"].recv_multipart()
+                got += 1
+        assert got == 5
+        assert subs["stranger"].poll(200) == 0 and subs[None].poll(10) == 0
+
+        def command(name):
+            req = _client(cctx, zmq.REQ, keyring, name)
+            req.connect(ctl_ep)
+            req.send(msgpack.packb({"cmd": "ping"}))
+            reply = msgpack.unpackb(req.recv()) if req.poll(1500) else None
+            req.close()
+            return reply
+
+        assert command("operator") == {"ok": True}
+        assert command("dashboard") is None
+        assert command(None) is None
+    finally:
+        for s in subs.values():
+            s.close()
+        cctx.term()
+        svc.post_event("stop")
+        th.join(10)
+        feed.close()
+        ctx.term()
+    assert svc.closed_order[-2:] == ["auth", "context"]
