@@ -12,6 +12,7 @@ arrived. Unknown keys are errors, with a suggestion when a known key is close.
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 import hashlib
 import ipaddress
@@ -1142,11 +1143,10 @@ def _parse_model(i: int, raw: Any, file: str | None) -> ModelConfig:
     if not isinstance(raw, dict):
         raise ConfigError(file, f"model[{i}]", "a [[model]] table", _show(raw))
     name_row = next(r for r in _BY_SECTION["model"] if r.key == "name")
-    try:
+    # a valid name makes the error messages clearer; a bad one is reported by _parse_table
+    with contextlib.suppress(_Bad):
         name = name_row.parse(raw.get("name"))
         ctx = _Ctx(file, f'model[{i}] "{name}"', f"model[{i}]")
-    except _Bad:
-        pass
     values, present = _parse_table("model", raw, ctx, "")
     values["inputs"] = _parse_inputs(raw, ctx)
     for sub in SECTIONS:

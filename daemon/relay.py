@@ -10,6 +10,7 @@ shards still only send what someone asked for).
 
 from __future__ import annotations
 
+import contextlib
 import re
 import signal
 import threading
@@ -71,10 +72,9 @@ class Relay:
 
     def run(self) -> None:
         """Forward until :meth:`stop` (blocking)."""
-        try:
+        # a terminated context ends the proxy as TERMINATE does
+        with contextlib.suppress(zmq.ContextTerminated):
             zmq.proxy_steerable(self.xsub, self.xpub, None, self._ctl_in)
-        except zmq.ContextTerminated:
-            pass
 
     def start(self) -> Relay:
         self._thread = threading.Thread(target=self.run, name="posteriord-relay", daemon=True)

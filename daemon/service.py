@@ -23,6 +23,7 @@ and wake the poller; the loop acts on it. A failed write or fsync of the state f
 
 from __future__ import annotations
 
+import contextlib
 import gc
 import logging
 import math
@@ -432,11 +433,10 @@ class Service:
             while not self._stop:
                 socks = dict(self.poller.poll(self._poll_ms()))
                 if self._wake_r in socks:
-                    try:
+                    # empty the wake-up pipe; the events themselves are in the queue
+                    with contextlib.suppress(BlockingIOError):
                         while self._wake_r.recv(4096):
-                            pass
-                    except BlockingIOError:
-                        pass
+                            continue
                 while self._events:
                     self._event(self._events.popleft())
                 if socks.get(self.sub):

@@ -12,6 +12,7 @@ write-ahead log, applies it as a restarted daemon would replay it, and writes a 
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import os
@@ -301,10 +302,8 @@ def _write_file(path: str, data: bytes) -> None:
             os.fsync(f.fileno())
         os.replace(tmp, path)
     except BaseException:
-        try:
+        with contextlib.suppress(OSError):  # the temporary file may not exist yet
             os.unlink(tmp)
-        except OSError:
-            pass
         raise
 
 

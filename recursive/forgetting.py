@@ -94,7 +94,20 @@ class Forgetting(ABC):
 
 
 @dataclass(frozen=True)
-class Exponential(Forgetting):
+class _HalfLife(Forgetting):
+    """A policy given by one half-life (checked positive)."""
+
+    half_life: float
+
+    def __post_init__(self):
+        object.__setattr__(self, "half_life", _check_half_life(self.half_life))
+
+    def to_dict(self):
+        return {"kind": self.kind, "half_life": self.half_life}
+
+
+@dataclass(frozen=True)
+class Exponential(_HalfLife):
     """Exponential forgetting: discount all information by ``delta = 2**(-dt/half_life)``.
 
     Parameters
@@ -111,12 +124,8 @@ class Exponential(Forgetting):
     ("windup"). This is the classical baseline; :class:`Stabilized` avoids the windup.
     """
 
-    half_life: float
     kind = "exponential"
     may_lose_rank = True
-
-    def __post_init__(self):
-        object.__setattr__(self, "half_life", _check_half_life(self.half_life))
 
     def forget(self, R, z, nu, ss, prior, dt):
         d = float(_delta(self.half_life, dt))
@@ -131,12 +140,9 @@ class Exponential(Forgetting):
             lev = np.einsum("ij,ij->j", u, u) / d
         return mean, lev, nu * d, ss * d
 
-    def to_dict(self):
-        return {"kind": self.kind, "half_life": self.half_life}
-
 
 @dataclass(frozen=True)
-class Stabilized(Forgetting):
+class Stabilized(_HalfLife):
     """Stabilized forgetting: flatten the posterior toward the prior.
 
     Parameters
@@ -170,11 +176,7 @@ class Stabilized(Forgetting):
     ``g = W^T R^{-T} phi``, and the mean follows likewise, so each row costs O(n).
     """
 
-    half_life: float
     kind = "stabilized"
-
-    def __post_init__(self):
-        object.__setattr__(self, "half_life", _check_half_life(self.half_life))
 
     def forget(self, R, z, nu, ss, prior, dt):
         d = float(_delta(self.half_life, dt))
@@ -201,9 +203,6 @@ class Stabilized(Forgetting):
                          / denom)
         lev = np.einsum("ij,ij->j", g, g / denom)
         return mean, lev, d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
-
-    def to_dict(self):
-        return {"kind": self.kind, "half_life": self.half_life}
 
 
 @dataclass(frozen=True)
