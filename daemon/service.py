@@ -38,6 +38,7 @@ import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry, start_http_server
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+from zmq.utils.monitor import recv_monitor_message
 
 from daemon import wire
 from daemon.cli import EXIT_DURABILITY, EXIT_OK
@@ -99,6 +100,8 @@ class Service:
         self.config_path = config_path
         self.runners: dict[str, ModelRunner] = {m.name: ModelRunner(m) for m in config.models}
         self.security: Security | None = None
+        self._feed_monitor = None
+        self.feed_disconnects: Counter = Counter()
         self.received: Counter = Counter()
         self.rejected_unknown: Counter = Counter()
         self.reloads: Counter = Counter()
@@ -128,8 +131,14 @@ class Service:
 
     # ------------------------------------------------------------------ hooks for later layers
     def extra_metrics(self):
+        drops = CounterMetricFamily(f"{PREFIX}_feed_disconnects", "Feed connections dropped "
+                                    "(and reconnected), per feed endpoint.",
+                                    labels=["endpoint"])
+        for ep in self.config.daemon.feeds:
+            drops.add_metric([ep], self.feed_disconnects.get(ep, 0))
+        yield drops
         if self.store is None:
-            return []
+            return
         records = CounterMetricFamily(f"{PREFIX}_wal_records", "Write-ahead log records "
                                       "appended by this process.")
         records.add_metric([], self.wal_records)
@@ -142,7 +151,7 @@ class Service:
         pending = GaugeMetricFamily(f"{PREFIX}_wal_pending_records", "Records written but "
                                     "not fsynced yet.")
         pending.add_metric([], self.store.pending)
-        return [records, ckpts, replayed, pending]
+        yield from (records, ckpts, replayed, pending)
 
     # ------------------------------------------------------------------ durable state
     def open_state(self) -> None:
@@ -361,9 +370,12 @@ class Service:
         self.sub = ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.RCVHWM, d.hwm)
-        # no ZMQ_MAXMSGSIZE here: libzmq closes a connection that exceeds it as a protocol
-        # error and never reconnects, so one oversize message would silence that feed for
-        # good; the decoder drops (and counts) messages over max_message_bytes instead
+        # ZMQ_MAXMSGSIZE bounds the memory one message can take. libzmq drops a connection
+        # that exceeds it and does not reconnect by itself, so a monitor socket watches for
+        # disconnections and the loop reconnects that feed (counted and logged). The margin
+        # lets a message a little over the limit reach the decoder and be counted too_large.
+        self.sub.setsockopt(zmq.MAXMSGSIZE, 2 * d.max_message_bytes + 4096)
+        self._feed_monitor = self.sub.get_monitor_socket(zmq.EVENT_DISCONNECTED)
         self.sub.setsockopt(zmq.RECONNECT_IVL, max(1, int(d.reconnect_ivl * 1000)))
         self.sub.setsockopt(zmq.RECONNECT_IVL_MAX, max(1, int(d.reconnect_ivl_max * 1000)))
         for name in self.runners:
@@ -392,6 +404,7 @@ class Service:
         self.poller.register(self.sub, zmq.POLLIN)
         self.poller.register(self.rep, zmq.POLLIN)
         self.poller.register(self._wake_r, zmq.POLLIN)
+        self.poller.register(self._feed_monitor, zmq.POLLIN)
 
     @property
     def publish_endpoint(self) -> str:
@@ -439,6 +452,8 @@ class Service:
                             continue
                 while self._events:
                     self._event(self._events.popleft())
+                if socks.get(self._feed_monitor):
+                    self._feed_dropped()
                 if socks.get(self.sub):
                     self.drain()
                 if socks.get(self.rep):
@@ -459,6 +474,24 @@ class Service:
             self._stop = True
         elif what == "reload":
             self.reload()
+
+    def _feed_dropped(self) -> None:
+        """Reconnect a feed whose connection libzmq dropped (e.g. an oversize message)."""
+        while True:
+            try:
+                event = recv_monitor_message(self._feed_monitor, zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            ep = event["endpoint"].decode("utf-8", "replace")
+            feeds = self.config.daemon.feeds
+            targets = [ep] if ep in feeds else list(feeds)
+            self.feed_disconnects[ep] += 1
+            log.warning("feed %s disconnected (a message over ZMQ_MAXMSGSIZE, or the "
+                        "publisher went away); reconnecting %s", ep, ", ".join(targets))
+            for target in targets:
+                with contextlib.suppress(zmq.ZMQError):  # not connected any more
+                    self.sub.disconnect(target)
+                self.sub.connect(target)
 
     def drain(self) -> int:
         """Take up to ``batch_limit`` feed messages without blocking, process, publish."""
@@ -721,6 +754,10 @@ class Service:
     def close(self) -> None:
         """Close everything in the documented order (idempotent)."""
         if self.sub is not None:
+            if self._feed_monitor is not None:
+                self.sub.disable_monitor()
+                self._feed_monitor.close(linger=0)
+                self._feed_monitor = None
             self.sub.close(linger=0)
             self.closed_order.append("feed")
             self.sub = None
