@@ -19,9 +19,9 @@ LIMIT = 65536
 scalars = st.one_of(st.none(), st.booleans(), st.integers(-2**63, 2**64 - 1),
                     st.floats(allow_nan=True, allow_infinity=True), st.text(max_size=12),
                     st.binary(max_size=12))
+map_keys = st.one_of(st.text(max_size=6), st.integers(-2**63, 2**63))
 values = st.recursive(scalars, lambda inner: st.one_of(
-    st.lists(inner, max_size=6), st.dictionaries(st.one_of(st.text(max_size=6), st.integers(-2**63, 2**63)),
-                                                inner, max_size=6)), max_leaves=30)
+    st.lists(inner, max_size=6), st.dictionaries(map_keys, inner, max_size=6)), max_leaves=30)
 keys = st.sampled_from(["t", "x", "y", "id", "seq", "pad"])
 messages = st.dictionaries(keys, values, max_size=6)
 
