@@ -267,6 +267,9 @@ def soak(args) -> dict:
                 victim.send(m[3])
             sent_first += due - pos
             pos = due
+            if "ref_warm" not in rss and pos >= len(msgs) // 5:
+                # after warm-up: buffers filled to their bounds, caches built
+                rss["ref_warm"] = rss_kib(ref.proc.pid)
             while preds.poll(0):
                 topic, body = preds.recv_multipart()
                 msg = msgpack.unpackb(body, raw=False)
@@ -355,6 +358,10 @@ def main(argv=None) -> int:
         r = report["rss_kib"]
         print(f"  VmRSS kiB            victim {r['victim_start']} -> {r['victim_end']} "
               f"(since its last restart), reference {r['ref_start']} -> {r['ref_end']}")
+        if r.get("ref_warm") and r.get("ref_end"):
+            growth = 100.0 * (r["ref_end"] - r["ref_warm"]) / r["ref_warm"]
+            print(f"  reference after warm-up (first 20% of the feed): {r['ref_warm']} -> "
+                  f"{r['ref_end']} kiB ({growth:+.1f}%)")
         print(f"  exit codes           {report['exit_codes']}")
         print(f"  final state equal    {report['equal']}")
         print("OK" if report["ok"] else "DIVERGED")
