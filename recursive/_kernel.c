@@ -192,6 +192,38 @@ check_nargs(const char *fname, Py_ssize_t nargs, Py_ssize_t want)
  * sign of the old one, and w_i becomes exactly 0, so w ends as zeros.  When both are zero
  * there is nothing to rotate in that column.  hypot avoids overflow in r.
  */
+/*
+ * sqrt(a^2 + b^2) for the rotations.  libm's hypot guards against overflow and underflow at
+ * every call, which costs more than the rest of a small rotation; the plain formula is exact
+ * enough (within an ulp) whenever the squares can neither overflow nor underflow, and the
+ * guarded call is kept for the extremes.
+ */
+static inline double
+norm2(double a, double b)
+{
+    double aa = fabs(a), bb = fabs(b);
+    double m = aa > bb ? aa : bb;
+    if (m > 1e150 || m < 1e-150) {
+        return hypot(a, b);
+    }
+    return sqrt(a * a + b * b);
+}
+
+/*
+ * Apply the plane rotation [c s; -s c] to entries j0..n-1 of the rows u and v.  The rows never
+ * overlap (restrict), which lets the compiler vectorize the loop.
+ */
+static inline void
+rotate_pair(double *restrict u, double *restrict v, double c, double s, Py_ssize_t j0,
+            Py_ssize_t n)
+{
+    for (Py_ssize_t j = j0; j < n; j++) {
+        double t = u[j];
+        u[j] = c * t + s * v[j];
+        v[j] = c * v[j] - s * t;
+    }
+}
+
 static double
 rotate_in(double *R, double *z, double *w, double y, Py_ssize_t n, Py_ssize_t i0)
 {
@@ -201,14 +233,10 @@ rotate_in(double *R, double *z, double *w, double y, Py_ssize_t n, Py_ssize_t i0
         if (a == 0.0 && b == 0.0) {
             continue;
         }
-        double r = hypot(a, b), c = a / r, s = b / r;
+        double r = norm2(a, b), c = a / r, s = b / r;
         Ri[i] = r;
         w[i] = 0.0;
-        for (Py_ssize_t j = i + 1; j < n; j++) {
-            double t = Ri[j];
-            Ri[j] = c * t + s * w[j];
-            w[j] = c * w[j] - s * t;
-        }
+        rotate_pair(Ri, w, c, s, i + 1, n);
         double t = z[i];
         z[i] = c * t + s * y;
         y = c * y - s * t;
@@ -262,19 +290,11 @@ random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
                 continue;
             }
             double a = pl[k];
-            double r = hypot(a, b), cs = a / r, sn = b / r;
+            double r = norm2(a, b), cs = a / r, sn = b / r;
             pl[k] = r;
             Ri[k] = 0.0;
-            for (Py_ssize_t j = k + 1; j < n; j++) {
-                double t = pl[j];
-                pl[j] = cs * t + sn * Ri[j];
-                Ri[j] = cs * Ri[j] - sn * t;
-            }
-            for (Py_ssize_t j = i; j < n; j++) {
-                double t = pm[j];
-                pm[j] = cs * t + sn * Mi[j];
-                Mi[j] = cs * Mi[j] - sn * t;
-            }
+            rotate_pair(pl, Ri, cs, sn, k + 1, n);
+            rotate_pair(pm, Mi, cs, sn, i, n);
             double t = pz;
             pz = cs * t + sn * z[i];
             z[i] = cs * z[i] - sn * t;
