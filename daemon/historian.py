@@ -613,6 +613,8 @@ class Aligner:
         times = self._t
         cutoff = times[-1] - self.history_s
         head = self._head
+        if times[head] >= cutoff and len(times) - head <= self.max_rows:
+            return  # nothing to forget (the common case between compactions)
         while times[head] < cutoff:
             head += 1
         head = max(head, len(times) - self.max_rows)

@@ -538,13 +538,27 @@ class Service:
 
     def _feed(self, msg: wire.Feed, pending: dict) -> None:
         runner = self.runners[msg.model]
-        runner.note_seq(msg.seq)
+        if msg.seq is not None:
+            runner.note_seq(msg.seq)
         seg = pending.get(msg.model)
         if seg is None:
             seg = pending[msg.model] = [[], [], [], [], msg.block]
         elif seg[4] != msg.block:
             self._flush(runner, seg)
             seg[4] = msg.block
+        if not msg.block and not msg.has_y:
+            # the common message: one feature sample, buffered for a batched prediction
+            t, row, ident = msg.t[0], msg.x[0], msg.ids[0]
+            try:
+                runner.add_features(t, row, ident)
+            except Rejected as exc:
+                runner.rejected[exc.reason] += 1
+                self._rlog.warn(runner.name, exc.reason, exc.detail)
+                return
+            seg[0].append(t)
+            seg[1].append(row)
+            seg[2].append(ident)
+            return
         if msg.block and not msg.has_y and isinstance(msg.x, np.ndarray) and runner.add_block(
                 msg.t, msg.x, msg.ids if msg.has_id else None, msg.increasing):
             # the common block: features only, in order; predicted in one call

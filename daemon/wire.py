@@ -7,7 +7,7 @@ every container and string has a size limit so a hostile message cannot exhaust 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from typing import NamedTuple
 
 import msgpack
 import numpy as np
@@ -76,9 +76,8 @@ packb = _packer.pack
 
 
 # ------------------------------------------------------------------ feed messages
-@dataclass(frozen=True)
-class Feed:
-    """One decoded feed message, normalized to blocks of rows.
+class Feed(NamedTuple):
+    """One decoded feed message, normalized to blocks of rows (an immutable named tuple).
 
     ``x`` is a list of rows (each a list of floats in input order, or None where the row
     carries no features), or for a block with features a (k, n) float array; ``y`` is a
