@@ -193,6 +193,9 @@ class Monitor:
         if self.clock is not None and clock < self.clock:
             clock = self.clock  # lab results carry older sample times; the clock never goes back
         self.clock = clock
+        if not self.lab_active and not self.pred_active and self.trust.level == 0 \
+                and not self.trust.reasons:
+            return []  # nothing active and nothing held: a trust step would change nothing
         active = {**self.lab_active, **self.pred_active}
         step = self.trust.step(clock, active)
         if not step.changed:

@@ -182,8 +182,13 @@ def _quantile(dof, p):
     1e-13 relative and saves an iterative inversion per row.
     """
     dof = np.asarray(dof, float)
-    if dof.ndim == 1 and dof.size > 8:
+    if dof.ndim == 1 and dof.size:
         lo, hi = dof.min(), dof.max()
+        if lo == hi == math.inf:
+            return np.full(dof.shape, float(special.ndtri(p)))
+        if dof.size <= 8 and lo > 0 and np.isfinite(hi):
+            return special.stdtrit(dof, p)
+    if dof.ndim == 1 and dof.size > 8:
         if lo >= 1.0 and np.isfinite(hi) and hi - lo <= 1e-4 * lo:
             if hi == lo:
                 return np.full(dof.shape, float(special.stdtrit(lo, p)))
