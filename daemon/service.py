@@ -548,16 +548,7 @@ class Service:
             seg[4] = msg.block
         if not msg.block and not msg.has_y:
             # the common message: one feature sample, buffered for a batched prediction
-            t, row, ident = msg.t[0], msg.x[0], msg.ids[0]
-            try:
-                runner.add_features(t, row, ident)
-            except Rejected as exc:
-                runner.rejected[exc.reason] += 1
-                self._rlog.warn(runner.name, exc.reason, exc.detail)
-                return
-            seg[0].append(t)
-            seg[1].append(row)
-            seg[2].append(ident)
+            self._buffer(runner, seg, msg.t[0], msg.x[0], msg.ids[0])
             return
         if msg.block and not msg.has_y and isinstance(msg.x, np.ndarray) and runner.add_block(
                 msg.t, msg.x, msg.ids if msg.has_id else None, msg.increasing):
@@ -568,16 +559,8 @@ class Service:
             return
         parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
-            if row is not None:
-                try:
-                    runner.add_features(t, row, ident)
-                except Rejected as exc:
-                    runner.rejected[exc.reason] += 1
-                    self._rlog.warn(runner.name, exc.reason, exc.detail)
-                    continue
-                seg[0].append(t)
-                seg[1].append(row)
-                seg[2].append(ident)
+            if row is not None and not self._buffer(runner, seg, t, row, ident):
+                continue
             if y is not None:
                 self._flush(runner, seg, parts)
                 self._learn(runner, t, y, ident)
@@ -588,6 +571,19 @@ class Service:
                 ids = [i for p in parts for i in p[1]]
                 self._publish(runner, ts, ids, _concat([p[2] for p in parts]), True,
                               any(i is not None for i in ids))
+
+    def _buffer(self, runner: ModelRunner, seg: list, t: float, row, ident) -> bool:
+        """Buffer one feature sample for the next batched prediction; False if rejected."""
+        try:
+            runner.add_features(t, row, ident)
+        except Rejected as exc:
+            runner.rejected[exc.reason] += 1
+            self._rlog.warn(runner.name, exc.reason, exc.detail)
+            return False
+        seg[0].append(t)
+        seg[1].append(row)
+        seg[2].append(ident)
+        return True
 
     def _flush(self, runner: ModelRunner, seg: list, parts: list | None = None) -> None:
         ts, rows, ids = seg[0], seg[1], seg[2]
