@@ -36,7 +36,7 @@ import json
 import math
 import os
 import sys
-from bisect import bisect_right
+from bisect import bisect_left, bisect_right
 from collections.abc import Iterator, Mapping, Sequence
 from datetime import UTC, datetime
 from typing import NamedTuple
@@ -615,8 +615,8 @@ class Aligner:
         head = self._head
         if times[head] >= cutoff and len(times) - head <= self.max_rows:
             return  # nothing to forget (the common case between compactions)
-        while times[head] < cutoff:
-            head += 1
+        if times[head] < cutoff:
+            head = bisect_left(times, cutoff, head)
         head = max(head, len(times) - self.max_rows)
         if head >= 256 and 2 * head >= len(times):
             del self._t[:head]
