@@ -186,9 +186,9 @@ def _quantile(dof, p):
         lo, hi = dof.min(), dof.max()
         if lo == hi == math.inf:
             return np.full(dof.shape, float(special.ndtri(p)))
-        if dof.size <= 8 and lo > 0 and np.isfinite(hi):
+        if dof.size <= 3 and lo > 0 and np.isfinite(hi):
             return special.stdtrit(dof, p)
-    if dof.ndim == 1 and dof.size > 8:
+    if dof.ndim == 1 and dof.size > 3:
         if lo >= 1.0 and np.isfinite(hi) and hi - lo <= 1e-4 * lo:
             if hi == lo:
                 return np.full(dof.shape, float(special.stdtrit(lo, p)))

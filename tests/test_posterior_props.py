@@ -181,6 +181,10 @@ def test_batch_quantile_interpolation_matches_scipy_stdtrit():
         dof = base * (1 + 1e-4 * rng.random(100))
         for p in (0.55, 0.975, 0.9995):
             np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p), rtol=1e-12)
+    for k in (1, 2, 3, 4, 5, 9):  # small batches: exact below four rows, interpolated above
+        dof = 25.0 * (1 + 1e-5 * rng.random(k))
+        np.testing.assert_allclose(_quantile(dof, 0.975), special.stdtrit(dof, 0.975),
+                                   rtol=1e-12)
     wide = np.linspace(2.0, 50.0, 40)  # too spread for interpolation: exact path
     np.testing.assert_allclose(_quantile(wide, 0.975), special.stdtrit(wide, 0.975), rtol=1e-14)
 
