@@ -199,7 +199,12 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
         return _decode_block(name, msg, t, tags, index, seq)
     x = msg.get("x")
     y = msg.get("y")
-    ident = _id(msg.get("id"))
+    ident = msg.get("id")
+    if y is None and ident is None and type(t) is float and t - t == 0.0 and x is not None:
+        # the common message: a finite float time and a feature row
+        return Feed(name, [t], [_row(x, tags, index)], [None], [None], seq, False,
+                    has_y=False, has_id=False)
+    ident = _id(ident)
     if x is None and y is None:
         raise WireError("bad_x", "message has neither x nor y")
     if t is None:
