@@ -185,6 +185,12 @@ def test_batch_quantile_interpolation_matches_scipy_stdtrit():
         dof = 25.0 * (1 + 1e-5 * rng.random(k))
         np.testing.assert_allclose(_quantile(dof, 0.975), special.stdtrit(dof, 0.975),
                                    rtol=1e-12)
+    for spread in (1e-3, 1e-2):  # wider batches: several interpolation segments
+        for base in (1.0, 3.0, 40.0):
+            dof = base * (1 + spread * rng.random(400))
+            for p in (0.975, 0.9995):
+                np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p),
+                                           rtol=1e-12)
     wide = np.linspace(2.0, 50.0, 40)  # too spread for interpolation: exact path
     np.testing.assert_allclose(_quantile(wide, 0.975), special.stdtrit(wide, 0.975), rtol=1e-14)
 
