@@ -134,8 +134,8 @@ def main(argv=None) -> int:
     c.add_argument("file", nargs="?", help="TOML config file (default: the built-in demo)")
     c.set_defaults(func=cmd_check)
     k = sub.add_parser("ctl", help="send a control command to a running daemon")
-    k.add_argument("command", help="ping, status, posterior, freeze, resume, reset, checkpoint, "
-                                   "reload")
+    k.add_argument("command", help="ping, status, posterior, detectors, acknowledge, freeze, "
+                                   "resume, reset, checkpoint, reload")
     k.add_argument("--model", help="model name, for the commands that take one")
     k.add_argument("--endpoint", default="tcp://127.0.0.1:5557", help="control endpoint")
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
