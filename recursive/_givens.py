@@ -15,7 +15,8 @@ output arrays in place and allocates nothing the caller sees. Only the upper tri
 ``R`` is read or written. Argument errors raise ``TypeError`` (not a float64 buffer, not a
 number) or ``ValueError`` (dimensions, shapes, layout, read-only output, outputs sharing
 memory with another argument, ``n > MAX_N``, values out of range). Both implementations
-perform the same rotations in the same order, so they agree to rounding.
+perform the same rotations, reflections and substitutions in the same order (the C code
+only groups some sums differently), so they agree to rounding.
 """
 
 from __future__ import annotations
@@ -219,30 +220,26 @@ def random_walk(R, z, c, /) -> None:
 
     Notes
     -----
-    With ``w = c^{-1/2}``, the square-root information time update triangularizes
+    The new information matrix is
 
     .. math::
 
-        \\begin{bmatrix} -w I & w I & 0 \\\\ R & 0 & z \\end{bmatrix}
-
-    (columns: old weights, new weights, 1) and keeps the lower-right block. Its Gram matrix
-    is the Schur complement
-
-    .. math::
-
-        w^2 I - w^4 (w^2 I + \\Lambda)^{-1} = \\Lambda (I + c \\Lambda)^{-1}
+        \\Lambda' = \\Lambda (I + c \\Lambda)^{-1} = R^T (I + c R R^T)^{-1} R
         = (\\Lambda^{-1} + c I)^{-1},
 
-    the last form only when ``Lambda`` is invertible; the new information vector is
-    ``(I + c Lambda)^{-1} eta``, which leaves the mean unchanged. No inverse of ``R`` is
-    needed, so a singular ``R`` (weights not yet identified) is fine.
+    the middle form by the push-through identity, the last only when ``Lambda`` is
+    invertible; the new information vector is ``(I + c Lambda)^{-1} eta``, which leaves the
+    mean unchanged. With ``U`` lower triangular and ``U^T U = I + c R R^T``,
+    ``R' = U^{-T} R`` is upper triangular and ``R'^T R' = Lambda'``; ``z' = U^{-T} z``.
 
-    Column ``k`` of the left block is cleared by rotating the pivot row ``k``, still
-    ``[-w e_k, w e_k, 0]`` at that point, with each lower row ``i <= k`` holding a nonzero
-    ``R_ik``. Taking those rows from ``i = k`` down to 0 keeps the middle block of the
-    lower rows upper triangular (row ``i`` only receives entries in columns ``>= i``), so
-    no further factorization is needed. Rows with a negative diagonal are negated at the
-    end (an orthogonal change) so that the diagonal is non-negative.
+    ``U`` is found without forming ``R R^T``: Householder reflections triangularize the
+    stacked ``[I; sqrt(c) R^T]`` from the last column to the first (a QL factorization).
+    When column ``k`` is reached the top row ``k`` is still ``e_k`` and every bottom row
+    lives in columns ``0..k``, so the reflection mixes that top row with the bottom rows
+    ``k..n-1`` only. The diagonal of ``U`` is at least 1, so the back substitution
+    ``U^T R' = R`` is always defined and a singular ``R`` (weights not yet identified) is
+    fine. ``R'_ii = R_ii / U_ii`` keeps the sign of ``R``'s diagonal; rows with a negative
+    diagonal are negated at the end (an orthogonal change).
     """
     cv = _real(c, "c")
     if not (cv > 0.0 and math.isfinite(cv)):
@@ -252,34 +249,36 @@ def random_walk(R, z, c, /) -> None:
     _check_n(n)
     Rv = _array(R, "R", 2, n, True)
     _check_disjoint({"z": zv, "R": Rv}, {})
-    w = 1.0 / math.sqrt(cv)
-    M = np.zeros((n, n))
-    for k in range(n):
-        pl = np.zeros(n)
-        pm = np.zeros(n)
-        pl[k], pm[k] = -w, w
-        pz = 0.0
-        for i in range(k, -1, -1):
-            b = float(Rv[i, k])
-            if b == 0.0:
-                continue
-            a = float(pl[k])
-            r = math.hypot(a, b)
-            cs, sn = a / r, b / r
-            pl[k] = r
-            Rv[i, k] = 0.0
-            t = pl[k + 1:].copy()
-            pl[k + 1:] = cs * t + sn * Rv[i, k + 1:]
-            Rv[i, k + 1:] = cs * Rv[i, k + 1:] - sn * t
-            t = pm[i:].copy()
-            pm[i:] = cs * t + sn * M[i, i:]
-            M[i, i:] = cs * M[i, i:] - sn * t
-            zi = float(zv[i])
-            pz, zv[i] = cs * pz + sn * zi, cs * zi - sn * pz
+    Ru = np.triu(Rv)  # only the upper triangle is read
+    T = np.eye(n)
+    B = math.sqrt(cv) * Ru.T.copy()  # bottom row i: column i of R
+    for k in range(n - 1, -1, -1):
+        x = B[k:, k]
+        m = max(1.0, float(np.max(np.abs(x))))
+        scale = 1.0 / m if m > 1e150 else 1.0  # the top entry is >= 1: guard overflow only
+        v = scale * x
+        sigma = float(v @ v)
+        if sigma == 0.0:
+            continue
+        a = scale * T[k, k]
+        beta = math.sqrt(a * a + sigma)
+        v0 = -sigma / (a + beta)  # a - beta without cancellation
+        tau = -1.0 / (beta * v0)
+        T[k, k] = beta / scale
+        s = v @ B[k:, :k]  # the top row is still e_k: nothing from it below column k
+        T[k, :k] = -tau * v0 * s
+        B[k:, :k] -= np.outer(tau * v, s)
+        B[k:, k] = 0.0
+    X = np.zeros((n, n))
+    zn = np.empty(n)
+    for i in range(n - 1, -1, -1):
+        u = T[i + 1:, i]
+        X[i, i:] = (Ru[i, i:] - u @ X[i + 1:, i:]) / T[i, i]
+        zn[i] = (float(zv[i]) - float(u @ zn[i + 1:])) / T[i, i]
     for i in range(n):
-        sign = -1.0 if M[i, i] < 0.0 else 1.0
-        Rv[i, i:] = sign * M[i, i:]
-        zv[i] *= sign
+        sign = -1.0 if X[i, i] < 0.0 else 1.0
+        Rv[i, i:] = sign * X[i, i:]
+        zv[i] = sign * zn[i]
 
 
 def predict(R, z, phi, /) -> tuple[float, float]:

@@ -55,80 +55,119 @@ def solve_upper_t(r: np.ndarray, b: np.ndarray) -> np.ndarray:
     return x
 
 
+# LAPACK versions of the kernels, used when the C extension is not built (and tested
+# against it either way). They allocate, so they cost more per call for small n.
+
+
+def lapack_rank_ratio(r: np.ndarray) -> float:
+    """Smallest ratio of a diagonal entry to its column's norm (upper triangle of ``r``)."""
+    r = np.triu(r)
+    d = np.abs(np.diagonal(r))
+    norms = np.sqrt(np.einsum("ij,ij->j", r, r))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(norms > 0, d / np.where(norms > 0, norms, 1.0), 0.0)
+    return float(ratio.min()) if ratio.size else 1.0
+
+
+def lapack_update(r, z, phi, y) -> float:
+    """Rotate the row ``[phi, y]`` into ``[r | z]``; return the residual entry ``e``."""
+    n = r.shape[0]
+    a = np.empty((n + 1, n + 1), order="F")
+    a[:n, :n] = np.triu(r)
+    a[:n, n] = z
+    a[n, :n] = phi
+    a[n, n] = y
+    qr, tau, _work, info = _dgeqrf(a, overwrite_a=1)
+    if info != 0:  # pragma: no cover - only on invalid LAPACK arguments
+        raise np.linalg.LinAlgError(f"dgeqrf failed with info={info}")
+    out = np.triu(qr)
+    # The kernels' e has the sign of the innovation: the whole orthogonal change, each
+    # reflection with tau != 0 (det -1) and the row negations below, must have det +1.
+    sign = np.where(np.diagonal(out)[:n] < 0.0, -1.0, 1.0)
+    out[:n] *= sign[:, None]
+    e = float(out[n, n])
+    if (np.count_nonzero(tau) + np.count_nonzero(sign < 0.0)) % 2:
+        e = -e
+    r[...] = np.where(np.triu(np.ones((n, n), bool)), out[:n, :n], r)
+    z[...] = out[:n, n]
+    phi[...] = 0.0
+    return e
+
+
+def lapack_stabilize(r, z, r0, z0, delta) -> None:
+    """``[r | z] <- factor of [sqrt(d) r, sqrt(d) z; sqrt(1-d) diag(r0), sqrt(1-d) z0]``."""
+    n = r.shape[0]
+    if n == 0:
+        return
+    a = np.zeros((2 * n, n + 1), order="F")
+    s, c = math.sqrt(delta), math.sqrt(1.0 - delta)
+    a[:n, :n] = np.triu(r) * s
+    a[:n, n] = z * s
+    a[n:, :n] = np.diag(r0 * c)
+    a[n:, n] = z0 * c
+    out = _positive_rows(qr_r(a)[:n])
+    r[...] = np.where(np.triu(np.ones((n, n), bool)), out[:, :n], r)
+    z[...] = out[:, n]
+
+
+def lapack_random_walk(r, z, c) -> None:
+    """Time update for a random walk with covariance ``c I`` (see ``_givens.random_walk``).
+
+    ``U`` (lower triangular, ``U^T U = I + c R R^T``) comes from a QR factorization of
+    ``[I; sqrt(c) R^T]`` with its columns reversed, reversed back; then ``R' = U^{-T} R``.
+    """
+    n = r.shape[0]
+    if n == 0:
+        return
+    ru = np.triu(r)
+    a = np.empty((2 * n, n), order="F")
+    a[:n] = np.eye(n)
+    a[n:] = math.sqrt(c) * ru.T
+    u = qr_r(a[:, ::-1].copy(order="F"))[::-1, ::-1]
+    u *= np.where(np.diagonal(u) < 0.0, -1.0, 1.0)[:, None]
+    rhs = np.empty((n, n + 1), order="F")
+    rhs[:, :n] = ru
+    rhs[:, n] = z
+    x, info = _dtrtrs(u, rhs, lower=1, trans=1)
+    if info != 0:  # pragma: no cover - U has a diagonal >= 1
+        raise np.linalg.LinAlgError(f"singular factor in random_walk (info={info})")
+    x[:, :n] = np.triu(x[:, :n])
+    x = _positive_rows(x)
+    r[...] = np.where(np.triu(np.ones((n, n), bool)), x[:, :n], r)
+    z[...] = x[:, n]
+
+
+def lapack_predict(r, z, phi) -> tuple[float, float]:
+    """``(phi^T m, phi^T V phi)`` for one regressor; nan if ``r`` has a zero diagonal entry."""
+    if r.shape[0] == 0:
+        return 0.0, 0.0
+    if np.any(np.diagonal(r) == 0.0):
+        return math.nan, math.nan
+    u = solve_upper_t(np.triu(r), phi)
+    return float(u @ z), float(u @ u)
+
+
+def _positive_rows(a: np.ndarray) -> np.ndarray:
+    """Negate the rows of a triangular factor whose diagonal entry is negative."""
+    k = min(a.shape)
+    sign = np.where(np.diagonal(a[:k, :k]) < 0.0, -1.0, 1.0)
+    a[:k] *= sign[:, None]
+    return a
+
+
 if _kernel is not None:
-
-    def rank_ratio(r: np.ndarray) -> float:
-        return _kernel.rank_ratio(r)
-
-    def update(r: np.ndarray, z: np.ndarray, phi: np.ndarray, y: float) -> float:
-        """Rotate the row ``[phi, y]`` into ``[r | z]``; return the residual entry ``e``.
-
-        ``phi`` is overwritten.
-        """
-        return _kernel.update(r, z, phi, y)
-
-    def stabilize(r, z, r0, z0, delta: float) -> None:
-        """``[r | z] <- factor of [sqrt(d) r, sqrt(d) z; sqrt(1-d) diag(r0), sqrt(1-d) z0]``."""
-        _kernel.stabilize(r, z, r0, z0, delta)
-
-    def random_walk(r, z, c: float) -> None:
-        """Square-root information time update for a random walk with covariance ``c I``."""
-        _kernel.random_walk(r, z, c)
-
-    def predict(r, z, phi) -> tuple[float, float]:
-        """``(phi^T m, phi^T V phi)`` for one regressor."""
-        return _kernel.predict(r, z, phi)
-
+    # bound directly: a Python wrapper would cost more than the kernel for small n
+    rank_ratio = _kernel.rank_ratio
+    update = _kernel.update
+    stabilize = _kernel.stabilize
+    random_walk = _kernel.random_walk
+    predict = _kernel.predict
 else:
-
-    def rank_ratio(r: np.ndarray) -> float:
-        d = np.abs(np.diagonal(r))
-        norms = np.sqrt(np.einsum("ij,ij->j", r, r))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            ratio = np.where(norms > 0, d / np.where(norms > 0, norms, 1.0), 0.0)
-        return float(ratio.min())
-
-    def update(r, z, phi, y):
-        n = r.shape[0]
-        a = np.empty((n + 1, n + 1), order="F")
-        a[:n, :n] = r
-        a[:n, n] = z
-        a[n, :n] = phi
-        a[n, n] = y
-        out = qr_r(a)
-        r[...] = out[:n, :n]
-        z[...] = out[:n, n]
-        return float(out[n, n])
-
-    def stabilize(r, z, r0, z0, delta):
-        n = r.shape[0]
-        a = np.zeros((2 * n, n + 1), order="F")
-        s, c = math.sqrt(delta), math.sqrt(1.0 - delta)
-        a[:n, :n] = r * s
-        a[:n, n] = z * s
-        a[n:, :n] = np.diag(r0 * c)
-        a[n:, n] = z0 * c
-        out = qr_r(a)
-        r[...] = out[:n, :n]
-        z[...] = out[:n, n]
-
-    def random_walk(r, z, c):
-        # SRIF time update: triangularize [[-w I, w I, 0], [R, 0, z]]; keep the lower-right block.
-        n = r.shape[0]
-        w = 1.0 / math.sqrt(c)
-        a = np.zeros((2 * n, 2 * n + 1), order="F")
-        idx = np.arange(n)
-        a[idx, idx] = -w
-        a[idx, n + idx] = w
-        a[n:, :n] = r
-        a[n:, 2 * n] = z
-        out = qr_r(a)
-        r[...] = out[n:2 * n, n:2 * n]
-        z[...] = out[n:2 * n, 2 * n]
-
-    def predict(r, z, phi):
-        u = solve_upper_t(r, phi)
-        return float(u @ z), float(u @ u)
+    rank_ratio = lapack_rank_ratio
+    update = lapack_update
+    stabilize = lapack_stabilize
+    random_walk = lapack_random_walk
+    predict = lapack_predict
 
 
 def full_rank(r: np.ndarray) -> bool:
