@@ -547,15 +547,19 @@ class Posterior:
         phi = np.ascontiguousarray(phi, dtype=float)
         if phi.shape != (self._n,):
             raise ValueError(f"phi must have shape ({self._n},), got {phi.shape}")
-        if not np.all(np.isfinite(phi)):
+        # phi . phi is finite for finite phi unless the squares overflow; the full check
+        # (a few times dearer than the whole update for small n) only runs then
+        if not math.isfinite(phi.dot(phi)) and not np.isfinite(phi).all():
             raise ValueError(f"phi must be finite, got {phi.tolist()!r}")
-        y = _as_float("y", y)
+        if type(y) is not float or not math.isfinite(y):
+            y = _as_float("y", y)
         if t is None:
             if self._clock == "time":
                 raise ValueError("this posterior was updated with times; pass t")
             dt = 1.0 if self._n_updates > 0 else 0.0
         else:
-            t = _as_float("t", t)
+            if type(t) is not float or not math.isfinite(t):
+                t = _as_float("t", t)
             if self._clock == "samples":
                 raise ValueError("this posterior was updated without times; omit t")
             if self._t_last is not None and t < self._t_last:
