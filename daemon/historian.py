@@ -561,7 +561,11 @@ class Aligner:
         self.tolerance_s = float(tolerance_s)
         self.max_rows = max_rows
         self._t: list[float] = []
-        self._x: list[tuple[float, ...]] = []
+        # _x[j] is row j itself (_r[j] < 0) or, for rows pushed as a block, the block's 2-D
+        # array with the row at index _r[j]: a block costs two list extends, not one Python
+        # object per row to create now and free when it is forgotten
+        self._x: list = []
+        self._r: list[int] = []
         self._head = 0  # rows before _head are forgotten; the lists are compacted now and then
 
     def __len__(self) -> int:
@@ -591,6 +595,7 @@ class Aligner:
             raise ValueError(f"t={t!r} is not after the previous row at {self._t[-1]!r}")
         self._t.append(t)
         self._x.append(tuple(float(v) for v in x))
+        self._r.append(-1)
         self._trim()
 
     def push_trusted(self, t: float, x: list) -> None:
@@ -601,12 +606,25 @@ class Aligner:
         """
         self._t.append(t)
         self._x.append(x)
+        self._r.append(-1)
         self._trim()
 
     def push_many_trusted(self, ts: list, xs: list) -> None:
         """Several `push_trusted` rows at once (times increasing)."""
         self._t.extend(ts)
         self._x.extend(xs)
+        self._r.extend([-1] * len(xs))
+        self._trim()
+
+    def push_block_trusted(self, ts: list, X: np.ndarray) -> None:
+        """`push_many_trusted` of the rows of a 2-D float array, kept by reference.
+
+        The caller must not modify ``X`` afterwards.
+        """
+        k = len(ts)
+        self._t.extend(ts)
+        self._x.extend([X] * k)
+        self._r.extend(range(k))
         self._trim()
 
     def _trim(self) -> None:
@@ -621,6 +639,7 @@ class Aligner:
         if head >= 256 and 2 * head >= len(times):
             del self._t[:head]
             del self._x[:head]
+            del self._r[:head]
             head = 0
         self._head = head
 
@@ -636,8 +655,36 @@ class Aligner:
             j = bisect_right(times, s, self._head) - 1
             if j < self._head or s - times[j] > self.tolerance_s:
                 return None
-            out.append(self._x[j][i])
+            r = self._r[j]
+            out.append(self._x[j][i] if r < 0 else float(self._x[j][r, i]))
         return tuple(out)
+
+    def rows(self) -> np.ndarray:
+        """The remembered rows as one float array of shape (len(self), len(tags))."""
+        n = len(self.tags)
+        xs, rs = self._x, self._r
+        parts: list = []
+        plain: list = []
+        j, end = self._head, len(xs)
+        while j < end:
+            r = rs[j]
+            if r < 0:
+                plain.append(xs[j])
+                j += 1
+                continue
+            if plain:
+                parts.append(np.asarray(plain, dtype=float).reshape(len(plain), n))
+                plain = []
+            X = xs[j]
+            # the block's rows r, r+1, ... follow one another up to its end
+            stop = min(end, j + X.shape[0] - r)
+            parts.append(X[r:r + stop - j])
+            j = stop
+        if plain:
+            parts.append(np.asarray(plain, dtype=float).reshape(len(plain), n))
+        if not parts:
+            return np.empty((0, n))
+        return np.concatenate(parts).astype(float, copy=False)
 
     def to_state(self) -> dict:
         """Plain-data state (settings and the remembered rows)."""
@@ -649,7 +696,8 @@ class Aligner:
             "tolerance_s": self.tolerance_s,
             "max_rows": self.max_rows,
             "t": self._t[self._head :],
-            "x": [list(r) for r in self._x[self._head :]],
+            "x": [list(x) if r < 0 else [float(v) for v in x[r]]
+                  for x, r in zip(self._x[self._head :], self._r[self._head :], strict=True)],
         }
 
     @classmethod

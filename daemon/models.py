@@ -153,7 +153,7 @@ class ModelRunner:
             return False
         self.last_x_t = ts[-1]
         self.n_features += len(ts)
-        self.aligner.push_many_trusted(ts, list(X))
+        self.aligner.push_block_trusted(ts, X)
         if ids is not None:
             for ident, t in zip(ids, ts, strict=True):
                 if ident is not None:
@@ -406,14 +406,13 @@ class ModelRunner:
 
 
 def _aligner_state(al: Aligner) -> dict:
-    """``al.to_state()`` with the rows converted by numpy in one call.
+    """``al.to_state()`` with the rows converted by numpy in a few calls.
 
-    Rows pushed from blocks are numpy views: converting them one by one took seconds for 200
-    models of 5000 rows, with the service loop waiting. Same layout and values (the tests
-    compare the two).
+    Rows pushed from blocks are rows of numpy arrays: converting them one by one took
+    seconds for 200 models of 5000 rows, with the service loop waiting. Same layout and
+    values (the tests compare the two).
     """
     head = al._head
-    rows = al._x[head:]
     return {
         "schema": al.SCHEMA,
         "tags": list(al.tags),
@@ -422,7 +421,7 @@ def _aligner_state(al: Aligner) -> dict:
         "tolerance_s": al.tolerance_s,
         "max_rows": al.max_rows,
         "t": np.asarray(al._t[head:], dtype=float).tolist(),
-        "x": np.asarray(rows, dtype=float).reshape(len(rows), len(al.tags)).tolist(),
+        "x": al.rows().tolist(),
     }
 
 

@@ -366,20 +366,26 @@ def test_model_settings_and_feature_buffers_round_trip_as_plain_data():
         ModelConfig.from_state({**state, "colour": "red"})
 
     # the fast conversion of the feature buffer gives what Aligner.to_state gives, for rows
-    # pushed one at a time (tuples) and from blocks (numpy views), nan blanks included
+    # pushed one at a time (tuples), as lists of numpy views and as blocks (the oldest block
+    # partly forgotten: max_rows is 50), nan blanks included
     al = Aligner(("a", "b"), (0.0, 60.0), 3600.0, tolerance_s=30.0, max_rows=50)
     for k in range(30):
         al.push_trusted(float(k), (float(k), math.nan if k % 7 == 0 else -float(k)))
     X = np.arange(80, dtype=float).reshape(40, 2)
     al.push_many_trusted([30.0 + k for k in range(40)], list(X))
+    al.push_block_trusted([70.0 + k for k in range(15)], X[:15] + 0.5)
+    al.push_block_trusted([85.0 + k for k in range(10)], X[:10] - 0.5)
     fast, ref = _aligner_state(al), al.to_state()
     assert msgpack.packb(fast) == msgpack.packb(
         {**ref, "x": [[float(v) for v in r] for r in ref["x"]]})
     back = _aligner_from_state(fast)
     assert msgpack.packb(_aligner_state(back)) == msgpack.packb(
         _aligner_state(Aligner.from_state(fast)))
-    assert [back.lookup(t) for t in (45.5, 69.0, 100.0)] == \
-        [al.lookup(t) for t in (45.5, 69.0, 100.0)]
+    assert len(fast["x"]) == 50 and fast["t"][0] == 45.0
+    assert fast["x"][25] == [0.5, 1.5] and fast["x"][-1] == [17.5, 18.5]
+    assert [back.lookup(t) for t in (45.5, 69.0, 100.0, 110.0, 120.0)] == \
+        [al.lookup(t) for t in (45.5, 69.0, 100.0, 110.0, 120.0)]
+    assert al.lookup(110.0) == (17.5, 41.0)
     with pytest.raises(ValueError, match="increasing"):
         _aligner_from_state({**fast, "t": fast["t"][::-1]})
 
