@@ -199,9 +199,14 @@ class Stabilized(_HalfLife):
         kappa, w, c, c0 = self._pencil(R, z, prior, cache)
         g = w.T @ u
         denom = d[None, :] + (1.0 - d)[None, :] * kappa[:, None]
-        mean = np.einsum("ij,ij->j", g, (d[None, :] * c[:, None] + (1.0 - d)[None, :] * c0[:, None])
-                         / denom)
-        lev = np.einsum("ij,ij->j", g, g / denom)
+        # denom is 0 only where delta underflowed to 0 in a direction without prior
+        # information: nothing is known there any more, and a row touching it gets an
+        # infinite leverage (reported as not identified)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            inv = 1.0 / denom
+            mean = np.einsum("ij,ij->j", g, (d[None, :] * c[:, None]
+                                             + (1.0 - d)[None, :] * c0[:, None]) * inv)
+            lev = np.einsum("ij,ij->j", g, g * inv)
         return mean, lev, d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
 
 

@@ -516,13 +516,16 @@ class Posterior:
         if self._noise_std is not None:
             s2 = np.full(k, self._prior.ref_var)
             dof = np.full(k, np.inf)
-            ident = np.ones(k, bool)
+            ident = np.isfinite(lev)  # infinite after forgetting everything (underflow)
             scale = np.sqrt(s2 * (1.0 + lev))
             var = scale * scale
+            if not ident.all():
+                mean, scale, var, dof = (np.where(ident, a, np.nan)
+                                         for a in (mean, scale, var, dof))
         else:
             dof = np.broadcast_to(np.asarray(nu, float) - self._p_flat, (k,)).copy()
             ss = np.broadcast_to(np.asarray(ss, float), (k,))
-            ident = dof > 0
+            ident = (dof > 0) & np.isfinite(lev)
             with np.errstate(divide="ignore", invalid="ignore"):
                 s2 = np.where(ident, ss / np.where(ident, dof, 1.0), np.nan)
                 scale = np.sqrt(s2 * (1.0 + lev))
@@ -530,6 +533,7 @@ class Posterior:
             dof = np.where(ident, dof, np.nan)
             var = np.where(ident, var, np.nan)
             mean = np.where(ident, mean, np.nan)
+            scale = np.where(ident, scale, np.nan)
         return Prediction(mean=mean, scale=scale, var=var, std=np.sqrt(var), dof=dof,
                           leverage=lev, identified=ident)
 
