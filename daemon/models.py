@@ -183,6 +183,8 @@ class ModelRunner:
             status = [self.status_at(ts[0])] * len(ts)
         elif ts[-1] - self.last_lab_t <= self.cfg.stale_after:
             status = ["learning"] * len(ts)
+        elif ts[0] - self.last_lab_t > self.cfg.stale_after:
+            status = ["stale"] * len(ts)
         else:
             status = np.where(t - self.last_lab_t > self.cfg.stale_after, "stale",
                               "learning").tolist()

@@ -185,29 +185,30 @@ class Stabilized(_HalfLife):
         return d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
 
     def _pencil(self, R, z, prior, cache):
-        if "kappa" not in cache:
+        if "pencil" not in cache:
             x = solve_upper_t(R, np.diag(prior.r0))
             kappa, w = np.linalg.eigh(x @ x.T)
-            cache["kappa"] = np.maximum(kappa, 0.0)
-            cache["w"] = w
-            cache["c"] = w.T @ z
-            cache["c0"] = w.T @ (x @ prior.z0)
-        return cache["kappa"], cache["w"], cache["c"], cache["c0"]
+            kappa = np.maximum(kappa, 0.0)
+            c = w.T @ z
+            c0 = w.T @ (x @ prior.z0)
+            # denominators kappa + (1 - kappa) delta and numerators c0 + (c - c0) delta
+            cache["pencil"] = (w.T.copy(), kappa[:, None], (1.0 - kappa)[:, None],
+                               c0[:, None], (c - c0)[:, None])
+        return cache["pencil"]
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
         d = _delta(self.half_life, dt)
-        kappa, w, c, c0 = self._pencil(R, z, prior, cache)
-        g = w.T @ u
-        denom = d[None, :] + (1.0 - d)[None, :] * kappa[:, None]
-        # denom is 0 only where delta underflowed to 0 in a direction without prior
-        # information: nothing is known there any more, and a row touching it gets an
-        # infinite leverage (reported as not identified)
+        wt, kappa, one_minus_kappa, c0, dc = self._pencil(R, z, prior, cache)
+        g = wt @ u
+        # the denominator is 0 only where delta underflowed to 0 in a direction without
+        # prior information: nothing is known there any more, and a row touching it gets
+        # an infinite leverage (reported as not identified)
         with np.errstate(divide="ignore", invalid="ignore"):
-            inv = 1.0 / denom
-            mean = np.einsum("ij,ij->j", g, (d[None, :] * c[:, None]
-                                             + (1.0 - d)[None, :] * c0[:, None]) * inv)
-            lev = np.einsum("ij,ij->j", g, g * inv)
-        return mean, lev, d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
+            gi = g / (kappa + one_minus_kappa * d)
+            lev = np.einsum("ij,ij->j", g, gi)
+            mean = np.einsum("ij,ij->j", gi, c0 + dc * d)
+        dn = 1.0 - d
+        return mean, lev, d * nu + dn * prior.nu0, d * ss + dn * prior.ss0
 
 
 @dataclass(frozen=True)

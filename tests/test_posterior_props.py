@@ -177,20 +177,23 @@ def test_batch_quantile_interpolation_matches_scipy_stdtrit():
     from recursive.posterior import _quantile
 
     rng = np.random.default_rng(5)
-    for base in (1.5, 4.0, 37.0, 2e3, 1e6):
-        dof = base * (1 + 1e-4 * rng.random(100))
-        for p in (0.55, 0.975, 0.9995):
-            np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p), rtol=1e-12)
+    ps = (0.55, 0.975, 0.9995, 0.999995)
+    for base in (1.5, 2.0, 4.0, 37.0, 2e3, 1e6):  # one segment, or exact below dof 2
+        for spread in (1e-6, 1e-4):
+            dof = base * (1 + spread * rng.random(100))
+            for p in ps:
+                np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p),
+                                           rtol=5e-14)
     for k in (1, 2, 3, 4, 5, 9):  # small batches: exact below four rows, interpolated above
         dof = 25.0 * (1 + 1e-5 * rng.random(k))
         np.testing.assert_allclose(_quantile(dof, 0.975), special.stdtrit(dof, 0.975),
-                                   rtol=1e-12)
+                                   rtol=5e-14)
     for spread in (1e-3, 1e-2):  # wider batches: several interpolation segments
-        for base in (1.0, 3.0, 40.0):
+        for base in (1.0, 2.0, 3.0, 40.0, 5e3):
             dof = base * (1 + spread * rng.random(400))
-            for p in (0.975, 0.9995):
+            for p in ps:
                 np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p),
-                                           rtol=1e-12)
+                                           rtol=5e-14)
     wide = np.linspace(2.0, 50.0, 40)  # too spread for interpolation: exact path
     np.testing.assert_allclose(_quantile(wide, 0.975), special.stdtrit(wide, 0.975), rtol=1e-14)
 

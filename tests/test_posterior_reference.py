@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import math
-import warnings
 import pathlib
+import warnings
 
 import numpy as np
 import pytest
