@@ -2,6 +2,8 @@
 
 Nothing is ever unpickled; msgpack extension types (including timestamps) are refused, and
 every container and string has a size limit so a hostile message cannot exhaust memory.
+Blocks may carry their numbers packed: msgpack bins of little-endian float64, read with
+``np.frombuffer`` and answered in kind (:func:`packed_floats`).
 """
 
 from __future__ import annotations
@@ -75,6 +77,11 @@ _packer = msgpack.Packer(use_bin_type=True)
 packb = _packer.pack
 
 
+def packed_floats(a) -> bytes:
+    """A 1-D float array as the bytes of a packed field: little-endian float64."""
+    return np.asarray(a, dtype="<f8").tobytes()
+
+
 # ------------------------------------------------------------------ feed messages
 class Feed(NamedTuple):
     """One decoded feed message, normalized to blocks of rows (an immutable named tuple).
@@ -82,7 +89,10 @@ class Feed(NamedTuple):
     ``x`` is a list of rows (each a list of floats in input order, or None where the row
     carries no features), or for a block with features a (k, n) float array; ``y`` is a
     list of floats or None; all as long as ``t``. In a block, booleans in ``x`` count as
-    0 and 1 (they are numbers to the array conversion used there).
+    0 and 1 (they are numbers to the array conversion used there). ``packed`` is True for a
+    block whose ``x`` came as a bin of little-endian float64 (see :func:`_packed_rows`); its
+    predictions are then published packed too. Its ``x`` is then a read-only view of the
+    message's (immutable) bytes.
     """
 
     model: str
@@ -95,6 +105,7 @@ class Feed(NamedTuple):
     has_y: bool = True
     has_id: bool = True
     increasing: bool = True
+    packed: bool = False
 
 
 def _num(v) -> float | None:
@@ -195,7 +206,7 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
     if seq is not None and (isinstance(seq, bool) or not isinstance(seq, int)):
         raise WireError("bad_id", "seq must be an integer")
     t = msg.get("t")
-    if isinstance(t, list):
+    if isinstance(t, list | bytes):
         return _decode_block(name, msg, t, tags, index, seq)
     x = msg.get("x")
     y = msg.get("y")
@@ -231,33 +242,103 @@ def _float_array(v) -> np.ndarray | None:
     return arr.astype(float, copy=False) if arr.dtype.kind in "biuf" else None
 
 
-def _decode_block(name, msg, t, tags, index, seq) -> Feed:
+def _packed(v: bytes, what: str, count: int | None, per: int = 1) -> np.ndarray:
+    """A bin of little-endian float64 as a 1-D float array (a read-only view of ``v``).
+
+    ``count`` rows of ``per`` values are expected (any whole number of rows if None).
+    """
+    size = len(v)
+    if count is None:
+        if size % (8 * per):
+            raise WireError("bad_block", f"packed {what} must hold a multiple of {8 * per} "
+                                         f"bytes (float64 little-endian), got {size} bytes")
+    elif size != 8 * count * per:
+        shape = f"{count} x {per}" if per > 1 else f"{count}"
+        raise WireError("bad_block", f"packed {what} must hold {shape} float64 = "
+                                     f"{8 * count * per} bytes, got {size} bytes")
+    # "<f8" is the native float on little-endian machines: astype is then a no-op
+    return np.frombuffer(v, dtype="<f8").astype(float, copy=False)
+
+
+def _block_times(t) -> tuple[list, np.ndarray]:
+    """The times of a block as a list of floats and as an array."""
+    if isinstance(t, bytes):
+        tarr = _packed(t, "t", None)
+        k = len(tarr)
+        if k == 0 or k > MAX_BLOCK:
+            raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k} "
+                                         f"(packed t of {len(t)} bytes)")
+        ok = np.isfinite(tarr)
+        if not ok.all():
+            i = int(np.argmin(ok))
+            raise WireError("bad_time", f"packed t[{i}] is {float(tarr[i])!r}, expected a "
+                                        "finite number")
+        return tarr.tolist(), tarr
     k = len(t)
     if k == 0 or k > MAX_BLOCK:
         raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k}")
     tarr = _float_array(t)
     if tarr is not None and tarr.shape == (k,) and np.isfinite(tarr).all():
-        ts = tarr.tolist()
-    else:
-        ts = [_time(v) for v in t]
-        tarr = np.array(ts)
+        return tarr.tolist(), tarr
+    ts = [_time(v) for v in t]
+    return ts, np.array(ts)
+
+
+def _decode_block(name, msg, t, tags, index, seq) -> Feed:
+    ts, tarr = _block_times(t)
+    k = len(ts)
     x = msg.get("x")
     y = msg.get("y")
     ids = msg.get("id")
-    if x is not None and (not isinstance(x, list) or len(x) != k):
-        raise WireError("bad_block", f"x must be a list of {k} rows")
-    if y is not None and (not isinstance(y, list) or len(y) != k):
-        raise WireError("bad_block", f"y must be a list of {k} values (nil for none)")
+    packed = isinstance(x, bytes)
+    if x is not None and not packed and (not isinstance(x, list) or len(x) != k):
+        raise WireError("bad_block", f"x must be a list of {k} rows or a bin of {k} x "
+                                     f"{len(tags)} float64")
+    if y is not None and not isinstance(y, bytes) and (not isinstance(y, list) or len(y) != k):
+        raise WireError("bad_block", f"y must be a list of {k} values (nil for none) or a bin "
+                                     f"of {k} float64 (nan for none)")
     if ids is not None and (not isinstance(ids, list) or len(ids) != k):
         raise WireError("bad_block", f"id must be a list of {k} values")
     if x is None and y is None:
         raise WireError("bad_block", "a block needs x, y or both")
-    rows = [None] * k if x is None else _block_rows(x, k, tags, index)
-    ys = [None] * k if y is None else [None if v is None else _y(v) for v in y]
+    if x is None:
+        rows = [None] * k
+    elif packed:
+        rows = _packed_rows(x, k, tags)
+    else:
+        rows = _block_rows(x, k, tags, index)
+    if y is None:
+        ys = [None] * k
+    elif isinstance(y, bytes):
+        ys = _packed_y(y, k)
+    else:
+        ys = [None if v is None else _y(v) for v in y]
     idl = [None] * k if ids is None else [_id(v) for v in ids]
     increasing = k == 1 or bool(np.all(tarr[1:] > tarr[:-1]))
     return Feed(name, ts, rows, ys, idl, seq, True, has_y=y is not None,
-                has_id=ids is not None, increasing=increasing)
+                has_id=ids is not None, increasing=increasing, packed=packed)
+
+
+def _packed_rows(x: bytes, k: int, tags) -> np.ndarray:
+    """A packed x: k rows of len(tags) little-endian float64, row-major, all finite."""
+    n = len(tags)
+    arr = _packed(x, "x", k, n).reshape(k, n)
+    ok = np.isfinite(arr)
+    if not ok.all():
+        i, j = divmod(int(np.argmin(ok)), n)
+        raise WireError("bad_x", f"packed x row {i}: value for {tags[j]} is "
+                                 f"{float(arr[i, j])!r}, expected a finite number")
+    return arr
+
+
+def _packed_y(y: bytes, k: int) -> list:
+    """A packed y: k little-endian float64, nan where the row has no lab value."""
+    arr = _packed(y, "y", k)
+    if np.isinf(arr).any():
+        i = int(np.argmax(np.isinf(arr)))
+        raise WireError("bad_y", f"packed y[{i}] is {float(arr[i])!r}, expected a finite "
+                                 "number or nan (none)")
+    return [None if v != v else v for v in arr.tolist()]
 
 
 def _block_rows(x: list, k: int, tags, index):

@@ -13,6 +13,7 @@ import math
 import struct
 
 import msgpack
+import numpy as np
 import pytest
 
 from daemon import plant, wire
@@ -252,3 +253,159 @@ def test_bad_control_payload(payload, reason):
     with pytest.raises(WireError) as info:
         decode_control(payload, 65536)
     assert info.value.reason == reason
+
+
+# ---------------------------------------------------------------------------------- packed blocks
+def f8(values) -> bytes:
+    """Values as a packed field: little-endian IEEE 754 float64, row-major."""
+    return np.asarray(values, dtype="<f8").tobytes()
+
+
+BLOCK_T = [1767571200.0, 1767571260.0, 1767571320.5]
+BLOCK_X = [ROW, [111.0, 13.5, 1.25, 4.0], [109.5, 14.25, 1.0, 6.5]]
+BLOCK_Y = [None, 171.5, None]
+BLOCK_IDS = ["a", None, 7]
+
+
+def test_packed_field_bytes_are_little_endian_float64_row_major():
+    # IEEE 754 binary64 of 1.0 is 0x3ff0000000000000; little-endian puts the low byte first
+    assert f8([1.0]) == b"\x00" * 6 + b"\xf0\x3f" == struct.pack("<d", 1.0)
+    assert f8([[1.0, 2.0], [3.0, 4.0]]) == struct.pack("<4d", 1.0, 2.0, 3.0, 4.0)
+    assert wire.packed_floats(np.array([1.0, math.nan])) == struct.pack("<2d", 1.0, math.nan)
+    # a bin travels as msgpack bin 8 (0xc4, one length byte)
+    assert wire.pack(f8([1.0])) == b"\xc4\x08" + struct.pack("<d", 1.0)
+
+
+def _same_feed(got, want, packed: bool) -> None:
+    assert (got.model, got.t, got.y, got.ids, got.seq, got.block) == (
+        want.model, want.t, want.y, want.ids, want.seq, want.block)
+    assert (got.has_y, got.has_id, got.increasing) == (want.has_y, want.has_id,
+                                                       want.increasing)
+    assert all(type(t) is float for t in got.t)
+    assert got.packed is packed and want.packed is False
+    if want.x[0] is None:
+        assert got.x == want.x
+    else:
+        assert isinstance(got.x, np.ndarray) and got.x.dtype == np.float64
+        assert got.x.shape == (len(got.t), len(TAGS))
+        np.testing.assert_array_equal(got.x, want.x)
+
+
+@pytest.mark.parametrize("pack_t", [False, True])
+@pytest.mark.parametrize("pack_x", [False, True])
+@pytest.mark.parametrize("pack_y", [False, True])
+def test_packed_block_decodes_as_the_list_form(pack_t, pack_x, pack_y):
+    body = {"t": BLOCK_T, "x": BLOCK_X, "y": BLOCK_Y, "id": BLOCK_IDS, "seq": 4}
+    want = decode(body)
+    packed = dict(body)
+    if pack_t:
+        packed["t"] = f8(BLOCK_T)
+    if pack_x:
+        packed["x"] = f8(BLOCK_X)
+    if pack_y:
+        packed["y"] = f8([math.nan if v is None else v for v in BLOCK_Y])
+    _same_feed(decode(packed), want, pack_x)
+
+
+@pytest.mark.parametrize("body", [
+    {"t": BLOCK_T, "x": BLOCK_X},
+    {"t": [5.0], "x": [ROW]},
+    {"t": [3.0, 2.0, 2.0], "x": BLOCK_X},            # not increasing: the careful path
+    {"t": BLOCK_T, "y": [1.0, 2.0, 3.0]},             # lab values only
+], ids=["features", "one row", "not increasing", "lab only"])
+def test_packed_block_variants_decode_as_the_list_form(body):
+    want = decode(body)
+    packed = {k: f8(v) for k, v in body.items()}
+    got = decode(packed)
+    _same_feed(got, want, "x" in body)
+    assert not got.has_id and got.has_y == ("y" in body)
+
+
+def test_packed_x_is_a_read_only_native_array_of_the_message():
+    msg = decode({"t": f8(BLOCK_T), "x": f8(BLOCK_X)})
+    assert msg.x.dtype.isnative and msg.x.flags.c_contiguous
+    # a view of an immutable bytes object: nothing downstream can write into it
+    assert not msg.x.flags.writeable
+    with pytest.raises(ValueError):
+        msg.x[0, 0] = 0.0
+
+
+def test_packed_y_nan_means_no_lab_value():
+    msg = decode({"t": f8(BLOCK_T), "y": f8([math.nan, 4.0, -math.nan])})
+    assert msg.y == [None, 4.0, None] and msg.x == [None] * 3 and msg.has_y
+
+
+# name -> (body, reason, pattern the message must match)
+BAD_PACKED = {
+    "x bytes not a multiple of 8": (
+        {"t": BLOCK_T, "x": f8(BLOCK_X)[:-3]}, "bad_block",
+        r"packed x must hold 3 x 4 float64 = 96 bytes, got 93 bytes"),
+    "x one row short": (
+        {"t": BLOCK_T, "x": f8(BLOCK_X[:2])}, "bad_block", r"96 bytes, got 64 bytes"),
+    "x one row long": (
+        {"t": f8(BLOCK_T[:2]), "x": f8(BLOCK_X)}, "bad_block",
+        r"2 x 4 float64 = 64 bytes, got 96 bytes"),
+    "x with a column too many": (
+        {"t": BLOCK_T, "x": f8([r + [0.0] for r in BLOCK_X])}, "bad_block",
+        r"96 bytes, got 120 bytes"),
+    "x as float32": (
+        {"t": BLOCK_T, "x": np.asarray(BLOCK_X, "<f4").tobytes()}, "bad_block",
+        r"96 bytes, got 48 bytes"),
+    "empty x": ({"t": BLOCK_T, "x": b""}, "bad_block", r"got 0 bytes"),
+    "nan in x": (
+        {"t": BLOCK_T, "x": f8([ROW, ROW, [110.0, 14.0, math.nan, 5.0]])}, "bad_x",
+        rf"packed x row 2: value for {TAGS[2]} is nan"),
+    "inf in x": (
+        {"t": f8(BLOCK_T), "x": f8([ROW, [110.0, -math.inf, 1.2, 5.0], ROW])}, "bad_x",
+        rf"packed x row 1: value for {TAGS[1]} is -inf"),
+    "first of two bad values": (
+        {"t": BLOCK_T, "x": f8([ROW, [math.inf, 14.0, 1.2, 5.0], [math.nan] * 4])}, "bad_x",
+        rf"packed x row 1: value for {TAGS[0]} is inf"),
+    "t bytes not a multiple of 8": (
+        {"t": f8(BLOCK_T)[:-1], "x": f8(BLOCK_X)}, "bad_block",
+        r"packed t must hold a multiple of 8 bytes .*got 23 bytes"),
+    "empty t": ({"t": b"", "x": b""}, "bad_block", r"1\.\.65536 rows, got 0"),
+    "nan in t": (
+        {"t": f8([1.0, math.nan, 3.0]), "x": f8(BLOCK_X)}, "bad_time", r"packed t\[1\] is nan"),
+    "inf in t": (
+        {"t": f8([math.inf, 2.0, 3.0]), "x": BLOCK_X}, "bad_time", r"packed t\[0\] is inf"),
+    "y of the wrong length": (
+        {"t": f8(BLOCK_T), "x": f8(BLOCK_X), "y": f8([1.0, 2.0])}, "bad_block",
+        r"packed y must hold 3 float64 = 24 bytes, got 16 bytes"),
+    "inf in y": (
+        {"t": BLOCK_T, "y": f8([1.0, math.inf, 2.0])}, "bad_y", r"packed y\[1\] is inf"),
+    "id shorter than a packed t": (
+        {"t": f8(BLOCK_T), "x": f8(BLOCK_X), "id": ["a"]}, "bad_block",
+        r"id must be a list of 3 values"),
+    "packed x without t": ({"x": f8(ROW)}, "bad_time", r"t is required"),
+    "packed x in a single message": ({"t": 1.0, "x": f8(ROW)}, "bad_x",
+                                     r"x must be a list or a map, got bytes"),
+}
+
+
+@pytest.mark.parametrize("case", list(BAD_PACKED))
+def test_bad_packed_block_is_rejected_with_its_reason(case):
+    body, reason, pattern = BAD_PACKED[case]
+    with pytest.raises(WireError, match=pattern) as info:
+        decode_feed(frames(body), SPECS, LIMIT)
+    assert info.value.reason == reason
+
+
+def test_packed_block_longer_than_the_limit():
+    n = MAX_BLOCK + 1
+    payload = msgpack.packb({"t": f8(np.arange(n, dtype=float)), "y": f8(np.ones(n))},
+                            use_bin_type=True)
+    with pytest.raises(WireError, match=rf"1\.\.{MAX_BLOCK} rows, got {n}") as info:
+        decode_feed([MODEL.encode(), payload], SPECS, len(payload))
+    assert info.value.reason == "bad_block"
+    ok = msgpack.packb({"t": f8(np.arange(MAX_BLOCK, dtype=float)),
+                        "x": f8(np.ones((MAX_BLOCK, len(TAGS))))}, use_bin_type=True)
+    msg = decode_feed([MODEL.encode(), ok], SPECS, len(ok))
+    assert len(msg.t) == MAX_BLOCK and msg.x.shape == (MAX_BLOCK, len(TAGS)) and msg.packed
+
+
+def test_packed_bins_are_bounded_by_the_size_limit():
+    payload = msgpack.packb({"t": f8(np.arange(600, dtype=float)), "y": f8(np.ones(600))},
+                            use_bin_type=True)
+    assert len(payload) > LIMIT
+    assert reason_of([MODEL.encode(), payload]) == "too_large"
