@@ -555,7 +555,7 @@ class Service:
             # the common block: features only, in order; predicted in one call
             self._flush(runner, seg)
             self._publish(runner, msg.t, msg.ids, runner.predict(msg.t, msg.x, msg.ids),
-                          True, msg.has_id)
+                          True, msg.has_id, msg.packed)
             return
         parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
@@ -570,7 +570,7 @@ class Service:
                 ts = [t for p in parts for t in p[0]]
                 ids = [i for p in parts for i in p[1]]
                 self._publish(runner, ts, ids, _concat([p[2] for p in parts]), True,
-                              any(i is not None for i in ids))
+                              any(i is not None for i in ids), msg.packed)
 
     def _buffer(self, runner: ModelRunner, seg: list, t: float, row, ident) -> bool:
         """Buffer one feature sample for the next batched prediction; False if rejected."""
@@ -598,20 +598,32 @@ class Service:
         seg[0], seg[1], seg[2] = [], [], []
 
     def _publish(self, runner: ModelRunner, ts: list, ids: list, batch, block: bool,
-                 has_id: bool) -> None:
+                 has_id: bool, packed: bool = False) -> None:
         topic = b"pred/" + runner.name.encode()
         level = runner.cfg.level
-        mean, std, var = batch.mean.tolist(), batch.std.tolist(), batch.var.tolist()
-        lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
-        send = self.pub.send_multipart
         trust = runner.trust
-        if block:
-            body = {"t": ts, "mean": mean, "std": std, "var": var, "lo": lo, "hi": hi,
-                    "level": level, "dof": dof, "status": batch.status, "trust": trust}
+        if packed:
+            # a block whose x came packed is answered in kind: the numbers as bins of
+            # little-endian float64
+            f = wire.packed_floats
+            body = {"t": f(batch.t), "mean": f(batch.mean), "std": f(batch.std),
+                    "var": f(batch.var), "lo": f(batch.lo), "hi": f(batch.hi),
+                    "level": level, "dof": f(batch.dof), "status": batch.status,
+                    "trust": trust, "packed": True}
             if has_id:
                 body["id"] = ids
-            send([topic, wire.packb(body)])
+            self.pub.send_multipart([topic, wire.packb(body)])
+        elif block:
+            body = {"t": ts, "mean": batch.mean.tolist(), "std": batch.std.tolist(),
+                    "var": batch.var.tolist(), "lo": batch.lo.tolist(),
+                    "hi": batch.hi.tolist(), "level": level, "dof": batch.dof.tolist(),
+                    "status": batch.status, "trust": trust}
+            if has_id:
+                body["id"] = ids
+            self.pub.send_multipart([topic, wire.packb(body)])
         else:
+            mean, std, var = batch.mean.tolist(), batch.std.tolist(), batch.var.tolist()
+            lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
             status = batch.status
             emit = self._emitter()
             packb = wire.packb

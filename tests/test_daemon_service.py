@@ -27,12 +27,16 @@ from conftest import (
     c301_model,
     metric,
     rejected,
+    toml_config,
     wait_until,
 )
+from prometheus_client import CollectorRegistry
 from scipy import stats
 from sklearn.linear_model import Ridge
 
 from daemon import plant
+from daemon.config import loads
+from daemon.service import Service
 
 RTOL = 1e-9
 PRED = f"pred/{MODEL}"
@@ -148,6 +152,26 @@ def unblock(blocks: list[dict]) -> list[dict]:
                 row["id"] = b["id"][i]
             rows.append(row)
     return rows
+
+
+def f8(values) -> bytes:
+    """Values as a packed field: little-endian float64, row-major."""
+    return np.asarray(values, dtype="<f8").tobytes()
+
+
+PACKED = ("t", *NUMERIC)
+
+
+def unpack_block(body: dict) -> dict:
+    """A packed prediction block with its bins read back as lists of floats."""
+    assert body["packed"] is True
+    k = len(body["status"])
+    out = dict(body)
+    for name in PACKED:
+        assert isinstance(body[name], bytes) and len(body[name]) == 8 * k, name
+        out[name] = np.frombuffer(body[name], dtype="<f8").tolist()
+    del out["packed"]
+    return out
 
 
 # ---------------------------------------------------------------------------------- scenario
@@ -314,6 +338,134 @@ def test_block_with_lab_values_on_feature_rows(start_service, run):
     assert_fits(fits, want_fits)
 
 
+class Recorder:
+    """Stands in for the PUB socket of an in-process Service: keeps (topic, body)."""
+
+    def __init__(self):
+        self.out: list[tuple[str, dict]] = []
+
+    def send_multipart(self, frames) -> None:
+        self.out.append((bytes(frames[0]).decode(),
+                         msgpack.unpackb(bytes(frames[1]), raw=False)))
+
+
+def recording_service() -> Service:
+    svc = Service(loads(toml_config({"metrics": ""}, [c301_model()]), "<test>"),
+                  registry=CollectorRegistry())
+    svc.pub = Recorder()
+    return svc
+
+
+def packed_and_list_feeds(run) -> list[tuple[dict, dict]]:
+    """The run as pairs of the same message in list and packed form: feature blocks
+    (with ids on every other one), lab-only blocks, blocks carrying lab values on feature
+    rows, and a block whose first rows repeat times already sent."""
+    lab_y = dict(zip(run.lab_index.tolist(), run.lab_y.tolist(), strict=True))
+    t_all, x_all = run.t.tolist(), run.X.tolist()
+    pairs = []
+
+    def add(ks, *, ids=False, y=False):
+        ts = [t_all[k] for k in ks]
+        body = {"t": ts, "x": [x_all[k] for k in ks]}
+        packed = {"t": f8(ts), "x": f8(body["x"])}
+        if ids:
+            body["id"] = packed["id"] = [sample_id(k) if k % 3 else None for k in ks]
+        if y:
+            ys = [lab_y.get(k) for k in ks]
+            body["y"] = ys
+            packed["y"] = f8([math.nan if v is None else v for v in ys])
+        pairs.append((body, packed))
+
+    n = len(t_all)
+    # the first hours: nothing learned yet, every prediction unidentified (nan)
+    for b, start in enumerate(range(0, 36, 12)):
+        add(range(start, start + 12), ids=b % 2 == 1)
+    # the rest of the first day (to row 276) with the lab values on their rows (the careful path)
+    for start in range(36, 276, 24):
+        add(range(start, start + 24), y=True)
+    # features only, in blocks of 16, with the late lab results of that stretch as
+    # lab-only blocks between them
+    labs = [(k, y) for k, y in sorted(lab_y.items()) if 276 <= k < n]
+    end = 276
+    for b, start in enumerate(range(276, n - 32, 16)):
+        end = start + 16
+        add(range(start, end), ids=b % 2 == 0)
+        done = [(k, y) for k, y in labs if k < end]
+        if done:
+            labs = labs[len(done):]
+            ts, ys = [t_all[k] for k, _ in done], [y for _, y in done]
+            pairs.append(({"t": ts, "y": ys}, {"t": f8(ts), "y": f8(ys)}))
+    # a block overlapping the last one: its 4 repeated rows are rejected one by one (3 out
+    # of order, 1 duplicate), the 8 new ones predicted
+    add(range(end - 4, end + 8))
+    return pairs
+
+
+def test_packed_blocks_answer_in_kind_with_the_numbers_of_the_list_form(run):
+    """Two identical services fed the same blocks, one in list form and one packed: the
+    packed answers are bins that decode to exactly the list form's numbers (nan included),
+    and the lab results learned, the rejections and the posteriors are the same."""
+    lists, packed = recording_service(), recording_service()
+    for body, pbody in packed_and_list_feeds(run):
+        lists.process([[MODEL.encode(), msgpack.packb(body, use_bin_type=True)]])
+        packed.process([[MODEL.encode(), msgpack.packb(pbody, use_bin_type=True)]])
+    got, want = packed.pub.out, lists.pub.out
+    assert [topic for topic, _ in got] == [topic for topic, _ in want]
+    preds = [(g, w) for (topic, g), (_, w) in zip(got, want, strict=True) if topic == PRED]
+    assert len(preds) > 20
+    n_nan = n_learning = 0
+    for g, w in preds:
+        assert "packed" not in w
+        assert set(g) == set(w) | {"packed"}
+        plain = unpack_block(g)
+        for name in PACKED:
+            np.testing.assert_array_equal(plain[name], w[name], err_msg=name)
+        for name in ("status", "level", "trust", "id"):
+            assert plain.get(name) == w.get(name), name
+        n_nan += sum(math.isnan(v) for v in plain["mean"])
+        n_learning += plain["status"].count("learning")
+    assert n_nan >= 36 and n_learning > 100  # unidentified rows carry nan
+    assert len(preds[-1][0]["status"]) == 8
+    # fit/ and alert/ messages byte for byte (nan == nan there)
+    others = [[msgpack.packb(b) for topic, b in out if topic != PRED] for out in (got, want)]
+    assert others[0] == others[1] and len(others[0]) > 10
+    ra, rb = packed.runners[MODEL], lists.runners[MODEL]
+    assert ra.rejected == rb.rejected
+    assert (ra.rejected["out_of_order"], ra.rejected["duplicate"]) == (3, 1)
+    assert ra.n_features == rb.n_features and ra.n_learned == rb.n_learned >= 5
+    np.testing.assert_array_equal(ra.post.mean, rb.post.mean)
+    np.testing.assert_array_equal(ra.aligner.rows(), rb.aligner.rows())
+
+
+def test_packed_blocks_over_the_sockets(start_service, run):
+    """A packed block through the running daemon is answered with packed predictions equal
+    to the posterior run directly; the packed flag is set only on those."""
+    h = start_service([c301_model()])
+    ref = Reference(h.model_config())
+    x_at = run.X.tolist()
+    want_preds, want_fits, sizes = [], [], []
+    for b, (kind, items) in enumerate(feature_blocks(run, size=12)):
+        ts = [t for t, _, _ in items]
+        if kind == "x":
+            if b % 2:
+                h.feed.send(MODEL, {"t": f8(ts), "x": f8([r for _, r, _ in items]),
+                                    "id": [sample_id(k) for _, _, k in items]})
+            else:
+                h.feed.send(MODEL, {"t": ts, "x": [list(r) for _, r, _ in items],
+                                    "id": [sample_id(k) for _, _, k in items]})
+            want_preds += [ref.predict(t, r, sample_id(k)) for t, r, k in items]
+            sizes.append((len(items), b % 2 == 1))
+        else:
+            h.feed.send(MODEL, {"t": f8(ts), "y": f8([y for _, y, _ in items])})
+            want_fits += [ref.learn(t, x_at[k], y) for t, y, k in items]
+    blocks, fits = split(h.barrier())
+    assert [(len(b["status"]), b.get("packed", False)) for b in blocks] == sizes
+    assert all("packed" not in b or b["packed"] is True for b in blocks)
+    preds = unblock([unpack_block(b) if b.get("packed") else b for b in blocks])
+    assert_preds(preds, want_preds)
+    assert_fits(fits, want_fits)
+
+
 def test_known_noise_without_forgetting_is_ridge_regression(start_service, run):
     """With known noise sigma, no forgetting and no gate, the posterior is ridge regression.
 
@@ -433,6 +585,23 @@ BAD_INPUT = {
                                      _m({"t": [h.clock + 60], "x": [ROW], "y": [None, 1.0]}),
                                      _m({"t": [h.clock + 60], "x": [ROW], "id": []}),
                                      _m({"t": [], "x": []})], MODEL, "bad_block", 4),
+    "bad packed block sizes": (lambda h: [
+        _m({"t": f8(h.clock + 60.0 * np.arange(1, 3))[:-1], "x": f8([ROW, ROW])}),
+        _m({"t": f8(h.clock + 60.0 * np.arange(1, 3)), "x": f8([ROW, ROW])[:-8]}),
+        _m({"t": f8(h.clock + 60.0 * np.arange(1, 3)), "x": f8([ROW, ROW, ROW])}),
+        _m({"t": b"", "x": b""}),
+        _m({"t": f8([h.clock + 60.0]), "x": f8([ROW]), "y": f8([1.0, 2.0])})],
+        MODEL, "bad_block", 5),
+    "non-finite packed x": (lambda h: [
+        _m({"t": f8(h.clock + 60.0 * np.arange(1, 3)),
+            "x": f8([ROW, [110.0, 14.0, math.nan, 5.0]])}),
+        _m({"t": [h.clock + 60.0], "x": f8([[math.inf, 14.0, 1.2, 5.0]])})],
+        MODEL, "bad_x", 2),
+    "non-finite packed t": (lambda h: [
+        _m({"t": f8([h.clock + 60.0, math.nan]), "x": f8([ROW, ROW])}),
+        _m({"t": f8([math.inf]), "x": [ROW]})], MODEL, "bad_time", 2),
+    "infinite packed y": (lambda h: [_m({"t": f8([h.clock - 600.0]), "y": f8([math.inf])})],
+                          MODEL, "bad_y", 1),
     "lab result too old": (lambda h: [_m({"t": h.clock - 86400.0, "y": 100.0})], MODEL,
                            "lab_too_old", 1),
     "lab result with no features near": (lambda h: [_m({"t": h.clock + 3600.0, "y": 100.0})],
@@ -474,6 +643,38 @@ def test_bad_input_is_counted_and_changes_nothing(learned, case):
     else:
         assert delta == {frozenset({("model", label), ("reason", reason)}): count}
         assert received == len(messages)
+
+
+def test_rejected_packed_block_buffers_nothing(learned):
+    """After bad packed blocks, a good one at the same times is taken whole: none of the
+    bad ones reached the feature buffer."""
+    h = learned
+    ts = (h.clock + 60.0 * np.arange(1, 9)).tolist()
+    X = [[110.0 + i, 14.0, 1.2, 5.0] for i in range(8)]
+    before_post, before = h.posterior(), h.scrape()
+    bad_x = [row[:] for row in X]
+    bad_x[5][3] = math.nan
+    h.feed.send(MODEL, {"t": f8(ts), "x": f8(bad_x)})
+    h.feed.send(MODEL, {"t": f8(ts), "x": f8(X)[:-8]})
+    h.feed.send(MODEL, {"t": f8(ts[:4] + [math.inf] + ts[5:]), "x": f8(X)})
+    assert h.barrier() == []
+    assert h.posterior() == before_post
+    mid = h.scrape()
+    for name in ("posteriord_feature_samples_total", "posteriord_predictions_published_total"):
+        assert metric(mid, name, model=MODEL) == metric(before, name, model=MODEL), name
+    h.feed.send(MODEL, {"t": f8(ts), "x": f8(X)})
+    h.clock = ts[-1]
+    preds, fits = split(h.barrier())
+    assert fits == [] and len(preds) == 1 and preds[0]["packed"] is True
+    assert unpack_block(preds[0])["t"] == ts
+    after = h.scrape()
+    assert metric(after, "posteriord_feature_samples_total", model=MODEL) == \
+        metric(before, "posteriord_feature_samples_total", model=MODEL) + len(ts)
+    delta = {k: v - _rejections(before).get(k, 0.0) for k, v in _rejections(after).items()
+             if v != _rejections(before).get(k, 0.0)}
+    assert delta == {frozenset({("model", MODEL), ("reason", "bad_x")}): 1,
+                     frozenset({("model", MODEL), ("reason", "bad_block")}): 1,
+                     frozenset({("model", MODEL), ("reason", "bad_time")}): 1}
 
 
 @pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")
