@@ -172,12 +172,12 @@ class Monitor:
             if cfg.std_ratio > 0 and math.isfinite(self.std.baseline):
                 self.last["std_ratio"] = math.inf
                 act["uncertainty_ratio"] = (1, math.inf, cfg.std_ratio)
-        lev = float(np.max(leverage)) if len(leverage) else math.nan
+        lev = float(leverage.max()) if len(leverage) else math.nan
         self.last["leverage"] = lev
         if cfg.leverage_limit > 0 and lev > cfg.leverage_limit:
             act["extrapolation"] = (1, lev, cfg.leverage_limit)
         if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
-            dist = float(np.max(self.region.distances(X)))
+            dist = float(self.region.distances(X).max())
             self.last["region"] = dist
             if dist > cfg.region_limit:
                 act["outside_region"] = (1, dist, cfg.region_limit)

@@ -192,21 +192,21 @@ class Stabilized(_HalfLife):
             c = w.T @ z
             c0 = w.T @ (x @ prior.z0)
             # denominators kappa + (1 - kappa) delta and numerators c0 + (c - c0) delta
-            cache["pencil"] = (w.T.copy(), kappa[:, None], (1.0 - kappa)[:, None],
-                               c0[:, None], (c - c0)[:, None])
+            cache["pencil"] = (w.T.copy(), kappa[:, None], (1.0 - kappa)[:, None], c0,
+                               c - c0)
         return cache["pencil"]
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
         d = _delta(self.half_life, dt)
         wt, kappa, one_minus_kappa, c0, dc = self._pencil(R, z, prior, cache)
-        g = wt @ u
         # the denominator is 0 only where delta underflowed to 0 in a direction without
         # prior information: nothing is known there any more, and a row touching it gets
         # an infinite leverage (reported as not identified)
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            g = wt @ u
             gi = g / (kappa + one_minus_kappa * d)
             lev = np.einsum("ij,ij->j", g, gi)
-            mean = np.einsum("ij,ij->j", gi, c0 + dc * d)
+            mean = c0 @ gi + d * (dc @ gi)
         dn = 1.0 - d
         return mean, lev, d * nu + dn * prior.nu0, d * ss + dn * prior.ss0
 
