@@ -60,6 +60,8 @@ class Monitor:
     def __init__(self, cfg, basis):
         self.cfg = cfg
         self.basis = basis
+        self._lo = np.array([inp.lo for inp in basis.inputs], dtype=float)
+        self._hi = np.array([inp.hi for inp in basis.inputs], dtype=float)
         n_in = len(cfg.inputs)
         self.cusum = Cusum(cfg.cusum_k, cfg.cusum_h, cfg.head_start)
         self.spread = SpreadCusum(cfg.spread_sigma, cfg.spread_h)
@@ -181,7 +183,11 @@ class Monitor:
             self.last["region"] = dist
             if dist > cfg.region_limit:
                 act["outside_region"] = (1, dist, cfg.region_limit)
-        outside = int(np.count_nonzero(self.basis.out_of_range(X).any(axis=1)))
+        # two column reductions settle the common batch with every reading in range
+        if (X.min(axis=0) >= self._lo).all() and (X.max(axis=0) <= self._hi).all():
+            outside = 0
+        else:
+            outside = int(np.count_nonzero(self.basis.out_of_range(X).any(axis=1)))
         self.last["out_of_range"] = float(outside)
         if outside:
             act["out_of_range"] = (1, float(outside), 0.0)
@@ -197,11 +203,13 @@ class Monitor:
                 and not self.trust.reasons:
             return []  # nothing active and nothing held: a trust step would change nothing
         active = {**self.lab_active, **self.pred_active}
-        step = self.trust.step(clock, active)
-        if not step.changed:
+        # the entries are built here as (int, float, float): no need to validate them again
+        old = self.trust.level
+        if not self.trust.advance(clock, active, checked=True):
             return []
-        return [{"t": clock, "kind": "state", "old": step.old, "new": step.state,
-                 "reasons": _reasons(step.reasons), "acknowledged": step.acknowledged}]
+        trust = self.trust
+        return [{"t": clock, "kind": "state", "old": STATES[old], "new": trust.state,
+                 "reasons": _reasons(trust.reasons), "acknowledged": trust.acknowledged}]
 
     def acknowledge(self) -> dict:
         self.trust.acknowledge()

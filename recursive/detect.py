@@ -1652,10 +1652,21 @@ class Trust:
 
     def step(self, t: float, active: dict) -> TrustStep:
         """Advance one step at clock value ``t`` with the currently active reasons."""
+        old = self._level
+        self.advance(t, active)
+        return self._result(old)
+
+    def advance(self, t: float, active: dict, *, checked: bool = False) -> bool:
+        """:meth:`step` without building its result; True if the level changed.
+
+        With ``checked=True`` the caller vouches that ``active`` maps non-empty names to
+        ``(level, value, limit)`` tuples of an int in ``1..len(levels)-1`` and two floats
+        (the validation costs more than the step on a hot path).
+        """
         t = _finite("t", t)
         if self._n and t < self._last_t:
             raise ValueError(f"t must not decrease: got {t!r} after {self._last_t!r}")
-        act = self._check_active(active)
+        act = active if checked else self._check_active(active)
         old = self._level
         for name, (lvl, value, limit) in act.items():
             r = self._reasons.get(name)
@@ -1687,7 +1698,7 @@ class Trust:
         self._level = max((max(r["held"]) for r in self._reasons.values()), default=0)
         self._n += 1
         self._last_t = t
-        return self._result(old)
+        return self._level != old
 
     def acknowledge(self) -> None:
         """Mark every held reason as acknowledged at its current level (does not clear it)."""

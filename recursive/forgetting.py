@@ -86,7 +86,12 @@ class Forgetting(ABC):
 
     @abstractmethod
     def widen(self, R, z, nu, ss, prior: Prior, phit, u, mean, dt, cache: dict):
-        """Return per-row ``(mean, leverage, nu, ss)`` after times ``dt`` (arrays)."""
+        """Return per-row ``(mean, leverage, nu, ss)`` after times ``dt`` (arrays).
+
+        Called by :meth:`Posterior.predict` inside ``np.errstate`` that silences division
+        by zero, overflow and invalid operations (a prediction of a state that forgot
+        everything has an infinite leverage).
+        """
 
     @abstractmethod
     def to_dict(self) -> dict:
@@ -199,14 +204,14 @@ class Stabilized(_HalfLife):
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
         d = _delta(self.half_life, dt)
         wt, kappa, one_minus_kappa, c0, dc = self._pencil(R, z, prior, cache)
-        # the denominator is 0 only where delta underflowed to 0 in a direction without
+        # The denominator is 0 only where delta underflowed to 0 in a direction without
         # prior information: nothing is known there any more, and a row touching it gets
-        # an infinite leverage (reported as not identified)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            g = wt @ u
-            gi = g / (kappa + one_minus_kappa * d)
-            lev = np.einsum("ij,ij->j", g, gi)
-            mean = c0 @ gi + d * (dc @ gi)
+        # an infinite leverage (reported as not identified). The caller sets the
+        # floating-point error state (Posterior.predict silences it).
+        g = wt @ u
+        gi = g / (kappa + one_minus_kappa * d)
+        lev = np.einsum("ij,ij->j", g, gi)
+        mean = c0 @ gi + d * (dc @ gi)
         dn = 1.0 - d
         return mean, lev, d * nu + dn * prior.nu0, d * ss + dn * prior.ss0
 

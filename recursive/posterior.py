@@ -497,8 +497,9 @@ class Posterior:
             out = Prediction(nan, nan, nan, nan, nan, nan, np.zeros(k, bool))
             return _squeeze(out) if single else out
         dt = self._elapsed(t, k)
-        # a regressor that overflowed (inf) gives nan rows, as substitution would, silently
-        with np.errstate(invalid="ignore", over="ignore"):
+        # a regressor that overflowed (inf) gives nan rows, as substitution would, and a
+        # widening may divide by zero (see the policies): silently
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             u = self._inv_t() @ P.T
             mean = P @ self._m
             nu, ss = self._nu, self._ss
