@@ -597,8 +597,15 @@ SETTINGS: tuple[Setting, ...] = (
             "info", "Least severe log level written."),
     Setting("daemon", "log_format", "log_format", _choice("text", "json"), "text",
             "Log lines as plain text or as one JSON object per line."),
-    Setting("daemon", "batch_limit", "batch_limit", INTEGER, 1024,
-            "Most messages handled per wake-up before the control socket gets a turn.", GE1),
+    Setting("daemon", "batch_limit", "batch_limit", INTEGER, 16384,
+            "Most messages taken per wake-up before they are processed and the control "
+            "socket and signals get a turn. A wake-up takes only what is queued, so at low "
+            "load batches stay small (latency); under load they grow, and each model "
+            "predicts more samples per call (throughput).", GE1),
+    Setting("daemon", "batch_bytes", "batch_bytes", INTEGER, 64 * _MIB,
+            "Most payload bytes taken per wake-up (the batch ends after the message that "
+            "crosses it), which bounds the memory a batch of large block messages holds.",
+            GE1),
     Setting("daemon", "max_message_bytes", "max_message_bytes", INTEGER, _MIB,
             "Largest accepted message; longer ones are dropped.", GE1),
     Setting("daemon", "reconnect_ivl", "reconnect_ivl", DURATION, 0.1,
@@ -828,6 +835,7 @@ class DaemonConfig:
     log_level: str = _default("daemon", "log_level")
     log_format: str = _default("daemon", "log_format")
     batch_limit: int = _default("daemon", "batch_limit")
+    batch_bytes: int = _default("daemon", "batch_bytes")
     max_message_bytes: int = _default("daemon", "max_message_bytes")
     reconnect_ivl: float = _default("daemon", "reconnect_ivl")
     reconnect_ivl_max: float = _default("daemon", "reconnect_ivl_max")
@@ -1297,7 +1305,8 @@ def describe(config: Config) -> str:
         lines.append("  metrics (HTTP)         disabled")
     lines.append(f"  state_dir              {d.state_dir}")
     lines.append(f"  log                    {d.log_level}, {d.log_format}")
-    lines.append(f"  batch_limit            {d.batch_limit} messages per wake-up")
+    lines.append(f"  batch_limit            {d.batch_limit} messages, {d.batch_bytes} bytes per "
+                 f"wake-up")
     lines.append(f"  max_message_bytes      {d.max_message_bytes}")
     lines.append(f"  hwm                    {d.hwm}" + (" (no limit)" if d.hwm == 0 else ""))
     lines.append(f"  reconnect              {format_duration(d.reconnect_ivl)} .. "

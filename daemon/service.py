@@ -494,15 +494,24 @@ class Service:
                 self.sub.connect(target)
 
     def drain(self) -> int:
-        """Take up to ``batch_limit`` feed messages without blocking, process, publish."""
+        """Take queued feed messages without blocking, process, publish.
+
+        At most ``batch_limit`` messages and, counting payloads, about ``batch_bytes``.
+        """
         limit = self.config.daemon.batch_limit
+        budget = self.config.daemon.batch_bytes
         recv = self.sub.recv_multipart
         batch = []
         while len(batch) < limit:
             try:
-                batch.append(recv(zmq.NOBLOCK))
+                frames = recv(zmq.NOBLOCK)
             except zmq.Again:
                 break
+            batch.append(frames)
+            if len(frames) > 1:
+                budget -= len(frames[-1])
+                if budget <= 0:
+                    break
         self.process(batch)
         return len(batch)
 

@@ -909,3 +909,35 @@ def test_shutdown_order_with_a_shared_context_and_no_metrics(start_service):
     h = start_service([c301_model()], metrics=False, own_context=False)
     assert h.metrics_address is None
     assert h.stop() == ["feed", "control", "state", "publish"]
+
+
+class _Queue:
+    """Stands in for the SUB socket: hands out queued messages, then zmq.Again."""
+
+    def __init__(self, messages):
+        self.messages = list(messages)
+
+    def recv_multipart(self, flags=0):
+        if not self.messages:
+            raise zmq.Again()
+        return self.messages.pop(0)
+
+
+@pytest.mark.parametrize(("limit", "budget", "sizes"), [
+    (16384, 64 << 20, [10]),         # everything queued, in one batch
+    (4, 64 << 20, [4, 4, 2]),        # the count limit
+    (16384, 1000, [4, 4, 2]),        # the byte budget: ends after the message crossing it
+])
+def test_drain_takes_what_is_queued_up_to_the_limits(limit, budget, sizes):
+    svc = Service(loads(toml_config({"metrics": "", "batch_limit": limit,
+                                     "batch_bytes": budget}, [c301_model()]), "<test>"),
+                  registry=CollectorRegistry())
+    svc.pub = Recorder()
+    payload = msgpack.packb({"t": 1.0, "pad": "x" * 290})
+    assert 290 < len(payload) < 334  # four cross 1000 bytes, three do not
+    svc.sub = _Queue([[b"C-301", payload]] * 10)
+    seen = []
+    svc.process = lambda batch: seen.append(len(batch))
+    while svc.drain():
+        pass
+    assert seen == sizes + [0]

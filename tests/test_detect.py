@@ -967,3 +967,18 @@ def test_input_region_distances_match_scipy_mahalanobis_row_by_row():
         assert d[i] == pytest.approx(mahalanobis(X[i], data.mean(0), vi), rel=1e-6)
     with pytest.raises(ValueError, match="shape"):
         reg.distances(np.zeros((2, 4)))
+
+
+def test_trust_advance_is_step_without_the_result():
+    """advance() changes the state exactly as step() does and reports a level change."""
+    seq = [{"a": (1, 2.0, 1.0)}, {"a": (2, 3.0, 1.0), "b": (1, 1.0, 0.5)}, {}, {}, {},
+           {"b": (1, 0.7, 0.5)}, {}, {}, {}, {}]
+    one, two, three = (Trust(("ok", "caution", "alarm"), 2, 0.0) for _ in range(3))
+    for i, active in enumerate(seq):
+        old = one.level
+        step = one.step(float(i), active)
+        assert two.advance(float(i), active) == step.changed == (one.level != old)
+        assert three.advance(float(i), dict(active), checked=True) == step.changed
+        assert two.to_state() == one.to_state() == three.to_state()
+    with pytest.raises(ValueError, match="level"):
+        two.advance(20.0, {"a": (5, 1.0, 1.0)})

@@ -85,7 +85,7 @@ class Target:
             with open(cfg, "w") as fh:
                 fh.write(f'[daemon]\nfeeds = ["{self.feed}"]\npublish = "{self.out}"\n'
                          f'control = "{self.ctl}"\nmetrics = ""\nhwm = 0\n'
-                         f'batch_limit = 4096\nlog_level = "error"\n'
+                         f'log_level = "error"\n'
                          f'state_dir = "{os.path.join(self.tmp, "state")}"\n\n')
                 for m in range(n_models):
                     fh.write(model_toml(f"m{m:03d}", n_inputs, detectors) + "\n")
