@@ -79,6 +79,8 @@ class Forgetting(ABC):
     kind = "none"
     #: whether a time update can make an identified posterior unidentified (underflow)
     may_lose_rank = False
+    #: whether `widen` uses ``u = R^{-T} phi`` and the unwidened mean (else they are None)
+    needs_u = True
 
     @abstractmethod
     def forget(self, R, z, nu, ss, prior: Prior, dt: float):
@@ -189,6 +191,8 @@ class Stabilized(_HalfLife):
             _linalg.stabilize(R, z, prior.r0, prior.z0, d)
         return d * nu + (1.0 - d) * prior.nu0, d * ss + (1.0 - d) * prior.ss0
 
+    needs_u = False
+
     def _pencil(self, R, z, prior, cache):
         if "pencil" not in cache:
             x = solve_upper_t(R, np.diag(prior.r0))
@@ -196,19 +200,20 @@ class Stabilized(_HalfLife):
             kappa = np.maximum(kappa, 0.0)
             c = w.T @ z
             c0 = w.T @ (x @ prior.z0)
-            # denominators kappa + (1 - kappa) delta and numerators c0 + (c - c0) delta
-            cache["pencil"] = (w.T.copy(), kappa[:, None], (1.0 - kappa)[:, None], c0,
-                               c - c0)
+            # g = W^T R^{-T} phi in one product; denominators kappa + (1 - kappa) delta
+            # and numerators c0 + (c - c0) delta
+            m = w.T @ solve_upper_t(R, np.eye(R.shape[0]))
+            cache["pencil"] = (m, kappa[:, None], (1.0 - kappa)[:, None], c0, c - c0)
         return cache["pencil"]
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
         d = _delta(self.half_life, dt)
-        wt, kappa, one_minus_kappa, c0, dc = self._pencil(R, z, prior, cache)
+        m, kappa, one_minus_kappa, c0, dc = self._pencil(R, z, prior, cache)
         # The denominator is 0 only where delta underflowed to 0 in a direction without
         # prior information: nothing is known there any more, and a row touching it gets
         # an infinite leverage (reported as not identified). The caller sets the
         # floating-point error state (Posterior.predict silences it).
-        g = wt @ u
+        g = m @ phit
         gi = g / (kappa + one_minus_kappa * d)
         lev = np.einsum("ij,ij->j", g, gi)
         mean = c0 @ gi + d * (dc @ gi)

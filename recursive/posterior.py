@@ -499,14 +499,19 @@ class Posterior:
         dt = self._elapsed(t, k)
         # a regressor that overflowed (inf) gives nan rows, as substitution would, and a
         # widening may divide by zero (see the policies): silently
+        f = self._forgetting
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            u = self._inv_t() @ P.T
-            mean = P @ self._m
-            nu, ss = self._nu, self._ss
-            if dt is not None and self._forgetting is not None:
-                mean, lev, nu, ss = self._forgetting.widen(
-                    self._R, self._z, nu, ss, self._prior, P.T, u, mean, dt, self._cache)
+            if dt is not None and f is not None:
+                u = mean = None
+                if f.needs_u:
+                    u = self._inv_t() @ P.T
+                    mean = P @ self._m
+                mean, lev, nu, ss = f.widen(self._R, self._z, self._nu, self._ss, self._prior,
+                                            P.T, u, mean, dt, self._cache)
             else:
+                u = self._inv_t() @ P.T
+                mean = P @ self._m
+                nu, ss = self._nu, self._ss
                 lev = np.einsum("ij,ij->j", u, u)
         out = self._distribution(mean, lev, nu, ss)
         return _squeeze(out) if single else out
