@@ -621,7 +621,7 @@ class Service:
                     "trust": trust, "packed": True}
             if has_id:
                 body["id"] = ids
-            self._send_block(topic, wire.packb(body))
+            self.pub.send_multipart([topic, wire.packb(body)])
         elif block:
             body = {"t": ts, "mean": batch.mean.tolist(), "std": batch.std.tolist(),
                     "var": batch.var.tolist(), "lo": batch.lo.tolist(),
@@ -629,7 +629,7 @@ class Service:
                     "status": batch.status, "trust": trust}
             if has_id:
                 body["id"] = ids
-            self._send_block(topic, wire.packb(body))
+            self.pub.send_multipart([topic, wire.packb(body)])
         else:
             mean, std, var = batch.mean.tolist(), batch.std.tolist(), batch.var.tolist()
             lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
@@ -645,15 +645,6 @@ class Service:
                 emit(topic, packb(body))
         if runner.alerts:
             self._alerts(runner)
-
-    def _send_block(self, topic: bytes, payload: bytes) -> None:
-        """Send a block answer; on a ZeroMQ socket without copying the (large) payload."""
-        pub = self.pub
-        if isinstance(pub, zmq.Socket):
-            pub.send(topic, zmq.SNDMORE)
-            pub.send(payload, copy=False)
-        else:
-            pub.send_multipart([topic, payload])
 
     def _emitter(self):
         """A function sending one (topic, payload) message on the publisher.
