@@ -26,7 +26,7 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "update"]
+           "stabilized_rows", "update"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
 MAX_N = 256
@@ -49,6 +49,27 @@ def _array(obj, name: str, ndim: int, n: int | None, writable: bool) -> np.ndarr
         n = mv.shape[0]
     if mv.shape != (n,) * ndim:
         raise ValueError(f"{name} must have shape {(n,) * ndim}, got {mv.shape}")
+    if not mv.c_contiguous:
+        raise ValueError(f"{name} must be C-contiguous")
+    if writable and mv.readonly:
+        raise ValueError(f"{name} must be writable, got a read-only buffer")
+    return np.asarray(mv)
+
+
+def _matrix(obj, name: str, shape: tuple, writable: bool) -> np.ndarray:
+    """View ``obj`` as a 2-D ndarray of ``shape`` (None: any length there), as the C kernel."""
+    try:
+        mv = memoryview(obj)
+    except TypeError:
+        raise TypeError(f"{name} must be a float64 array, got {type(obj).__name__}") from None
+    if mv.format not in _FLOAT64_FORMATS or mv.itemsize != 8:
+        raise TypeError(f"{name} must be a float64 array (buffer format 'd'), "
+                        f"got format {mv.format!r}")
+    if mv.ndim != 2:
+        raise ValueError(f"{name} must have 2 dimension(s), got {mv.ndim}")
+    want = tuple(mv.shape[i] if s is None else s for i, s in enumerate(shape))
+    if mv.shape != want:
+        raise ValueError(f"{name} must have shape {want}, got {mv.shape}")
     if not mv.c_contiguous:
         raise ValueError(f"{name} must be C-contiguous")
     if writable and mv.readonly:
@@ -279,6 +300,62 @@ def random_walk(R, z, c, /) -> None:
         sign = -1.0 if X[i, i] < 0.0 else 1.0
         Rv[i, i:] = sign * X[i, i:]
         zv[i] = sign * zn[i]
+
+
+def stabilized_rows(out, M, kappa, c0, dc, P, dt, half_life, /) -> None:
+    """Per-row predictive mean and leverage under stabilized forgetting, for a batch.
+
+    Parameters
+    ----------
+    out : float64 buffer, shape (3, k)
+        Overwritten with the means, the leverages and the factors ``delta`` of the rows.
+    M : float64 buffer, shape (n, n)
+        ``W^T R^{-T}`` (see :class:`recursive.Stabilized`).
+    kappa, c0, dc : float64 buffers, shape (n,)
+        Eigenvalues of the pencil and the numerator terms ``c0`` and ``c - c0``.
+    P : float64 buffer, shape (k, n)
+        Regressors, one per row.
+    dt : float64 buffer, shape (k,)
+        Time since the last update of each row.
+    half_life : float
+        Positive and finite.
+
+    Notes
+    -----
+    For row ``j``, with ``delta_j = 2**(-dt_j / half_life)``, ``g = M P_j`` and
+    ``q_i = kappa_i + (1 - kappa_i) delta_j``:
+
+    .. math::
+
+        m_j = \\sum_i g_i (c0_i + dc_i \\delta_j) / q_i, \\qquad
+        \\ell_j = \\sum_i g_i^2 / q_i .
+
+    A term with ``g_i = 0`` adds nothing, even where ``q_i = 0``; otherwise a ``q_i`` of 0
+    (everything forgotten in a direction without prior information) gives an infinite
+    leverage.
+    """
+    h = _real(half_life, "half_life")
+    if not (h > 0.0 and math.isfinite(h)):
+        raise ValueError(f"half_life must be positive and finite, got {half_life!r}")
+    o = _matrix(out, "out", (3, None), True)
+    k = o.shape[1]
+    kv = _array(kappa, "kappa", 1, None, False)
+    n = kv.shape[0]
+    _check_n(n)
+    Mv = _matrix(M, "M", (n, n), False)
+    c0v = _array(c0, "c0", 1, n, False)
+    dcv = _array(dc, "dc", 1, n, False)
+    Pv = _matrix(P, "P", (k, n), False)
+    dtv = _array(dt, "dt", 1, k, False)
+    _check_disjoint({"out": o}, {"kappa": kv, "M": Mv, "c0": c0v, "dc": dcv, "P": Pv,
+                                 "dt": dtv})
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
+        d = np.exp2(-dtv / h)
+        g = Mv @ Pv.T
+        gi = np.where(g == 0.0, 0.0, g / (kv[:, None] + (1.0 - kv)[:, None] * d))
+        o[1] = np.einsum("ij,ij->j", g, gi)
+        o[0] = np.einsum("ij,ij->j", gi, c0v[:, None] + dcv[:, None] * d)
+        o[2] = d
 
 
 def predict(R, z, phi, /) -> tuple[float, float]:

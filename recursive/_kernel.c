@@ -28,7 +28,7 @@
 
 /* A set of buffers acquired by one call, released together on every exit path. */
 typedef struct {
-    Py_buffer view[5];
+    Py_buffer view[8];
     int count;
 } Buffers;
 
@@ -63,7 +63,8 @@ is_float64(const Py_buffer *v)
 
 /*
  * Acquire obj as a C-contiguous float64 array with `ndim` dimensions, each of length n
- * (n < 0: the first dimension may have any length).  On success the buffer is added to
+ * (n = -1: all as long as the first, which may have any length; n = -2: any shape, which
+ * get_matrix checks).  On success the buffer is added to
  * `bufs` and its data pointer returned; on failure an exception is set, nothing is held,
  * and NULL is returned.
  */
@@ -95,10 +96,13 @@ get_array(Buffers *bufs, PyObject *obj, const char *name, int ndim, Py_ssize_t n
                      v->ndim);
         goto fail;
     }
-    if (n < 0) {
+    if (n == -2) {
+        n = -1;  /* any shape: get_matrix checks it */
+    }
+    else if (n < 0) {
         n = v->shape[0];
     }
-    for (int d = 0; d < ndim; d++) {
+    for (int d = 0; d < ndim && n >= 0; d++) {
         if (v->shape[d] != n) {
             if (ndim == 1) {
                 PyErr_Format(PyExc_ValueError, "%s must have shape (%zd,), got (%zd,)", name,
@@ -124,6 +128,35 @@ get_array(Buffers *bufs, PyObject *obj, const char *name, int ndim, Py_ssize_t n
 fail:
     PyBuffer_Release(v);
     return NULL;
+}
+
+/*
+ * Acquire obj as a C-contiguous float64 matrix of shape (rows, cols); rows < 0 accepts any
+ * number of rows.  Same contract as get_array.
+ */
+static double *
+get_matrix(Buffers *bufs, PyObject *obj, const char *name, Py_ssize_t rows, Py_ssize_t cols,
+           int writable)
+{
+    double *p = get_array(bufs, obj, name, 2, -2, writable);
+    if (p == NULL) {
+        return NULL;
+    }
+    Py_buffer *v = &bufs->view[bufs->count - 1];
+    if ((rows >= 0 && v->shape[0] != rows) || v->shape[1] != cols) {
+        if (rows >= 0) {
+            PyErr_Format(PyExc_ValueError, "%s must have shape (%zd, %zd), got (%zd, %zd)", name,
+                         rows, cols, v->shape[0], v->shape[1]);
+        }
+        else {
+            PyErr_Format(PyExc_ValueError, "%s must have shape (k, %zd), got (%zd, %zd)", name,
+                         cols, v->shape[0], v->shape[1]);
+        }
+        PyBuffer_Release(v);
+        bufs->count--;
+        return NULL;
+    }
+    return p;
 }
 
 /* Raise if n is too large for the stack workspaces. */
@@ -572,6 +605,78 @@ kernel_random_walk(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     Py_RETURN_NONE;
 }
 
+PyDoc_STRVAR(stabilized_rows_doc,
+"stabilized_rows($module, out, M, kappa, c0, dc, P, dt, half_life, /)\n--\n\n"
+"Per-row predictive mean and leverage under stabilized forgetting, for a batch.\n\n"
+"For row j of P (k x n) with delta_j = 2**(-dt_j / half_life) and g = M P_j:\n"
+"out[0, j] = sum_i g_i (c0_i + dc_i delta_j) / q_i, out[1, j] = sum_i g_i^2 / q_i and\n"
+"out[2, j] = delta_j, where q_i = kappa_i + (1 - kappa_i) delta_j.  out is (3, k); M is\n"
+"(n, n); kappa, c0, dc have n entries and dt has k.  A term with g_i = 0 adds nothing\n"
+"(even where q_i = 0); a q_i of 0 otherwise gives an infinite leverage.");
+
+static PyObject *
+kernel_stabilized_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"out", "kappa", "M", "c0", "dc", "P", "dt"};
+    Buffers b = {.count = 0};
+    double h, *out, *M, *kappa, *c0, *dc, *P, *dt;
+    if (check_nargs("stabilized_rows", nargs, 8) < 0 ||
+        get_double(args[7], "half_life", &h) < 0) {
+        return NULL;
+    }
+    if (!(h > 0.0 && h <= DBL_MAX)) {
+        PyErr_Format(PyExc_ValueError, "half_life must be positive and finite, got %R",
+                     args[7]);
+        return NULL;
+    }
+    if ((out = get_array(&b, args[0], "out", 2, -2, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t k = b.view[0].shape[1];
+    if (b.view[0].shape[0] != 3) {
+        PyErr_Format(PyExc_ValueError, "out must have shape (3, k), got (%zd, %zd)",
+                     b.view[0].shape[0], k);
+        release_all(&b);
+        return NULL;
+    }
+    if ((kappa = get_array(&b, args[2], "kappa", 1, -1, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t n = b.view[1].shape[0];
+    if (check_n(n) < 0 || (M = get_matrix(&b, args[1], "M", n, n, 0)) == NULL ||
+        (c0 = get_array(&b, args[3], "c0", 1, n, 0)) == NULL ||
+        (dc = get_array(&b, args[4], "dc", 1, n, 0)) == NULL ||
+        (P = get_matrix(&b, args[5], "P", k, n, 0)) == NULL ||
+        (dt = get_array(&b, args[6], "dt", 1, k, 0)) == NULL ||
+        check_disjoint(&b, names, 1) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    double *mean = out, *lev = out + k, *delta = out + 2 * k;
+    for (Py_ssize_t j = 0; j < k; j++) {
+        const double *p = P + j * n;
+        double d = exp2(-dt[j] / h), m = 0.0, l = 0.0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            const double *Mi = M + i * n;
+            double g = 0.0;
+            for (Py_ssize_t c = 0; c < n; c++) {
+                g += Mi[c] * p[c];
+            }
+            /* a row with no component in a direction owes nothing to it, even to one whose
+             * q is 0 (0/0 would make the row look unidentified) */
+            double gi = g == 0.0 ? 0.0 : g / (kappa[i] + (1.0 - kappa[i]) * d);
+            l += g * gi;
+            m += gi * (c0[i] + dc[i] * d);
+        }
+        mean[j] = m;
+        lev[j] = l;
+        delta[j] = d;
+    }
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
 PyDoc_STRVAR(predict_doc,
 "predict($module, R, z, phi, /)\n--\n\n"
 "Return (mean, lev) = (u.z, u.u) with u = R^{-T} phi; nothing is modified.\n\n"
@@ -720,6 +825,8 @@ static PyMethodDef kernel_methods[] = {
     {"solve_upper", (PyCFunction)(void (*)(void))kernel_solve_upper, METH_FASTCALL,
      solve_upper_doc},
     {"rank_ratio", kernel_rank_ratio, METH_O, rank_ratio_doc},
+    {"stabilized_rows", (PyCFunction)(void (*)(void))kernel_stabilized_rows, METH_FASTCALL,
+     stabilized_rows_doc},
     {NULL, NULL, 0, NULL},
 };
 

@@ -15,6 +15,8 @@ import math
 import numpy as np
 from scipy.linalg import lapack
 
+from recursive import _givens
+
 try:
     from recursive import _kernel
 except ImportError:  # no compiler at install time: LAPACK fallback
@@ -162,12 +164,15 @@ if _kernel is not None:
     stabilize = _kernel.stabilize
     random_walk = _kernel.random_walk
     predict = _kernel.predict
+    stabilized_rows = _kernel.stabilized_rows
 else:
     rank_ratio = lapack_rank_ratio
     update = lapack_update
     stabilize = lapack_stabilize
     random_walk = lapack_random_walk
     predict = lapack_predict
+    # vectorized numpy already: the reference serves as the fallback
+    stabilized_rows = _givens.stabilized_rows
 
 
 def full_rank(r: np.ndarray) -> bool:

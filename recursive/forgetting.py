@@ -202,23 +202,26 @@ class Stabilized(_HalfLife):
             c0 = w.T @ (x @ prior.z0)
             # g = W^T R^{-T} phi in one product; denominators kappa + (1 - kappa) delta
             # and numerators c0 + (c - c0) delta
-            m = w.T @ solve_upper_t(R, np.eye(R.shape[0]))
-            cache["pencil"] = (m, kappa[:, None], (1.0 - kappa)[:, None], c0, c - c0)
+            m = np.ascontiguousarray(w.T @ solve_upper_t(R, np.eye(R.shape[0])))
+            cache["pencil"] = (m, np.ascontiguousarray(kappa), np.ascontiguousarray(c0),
+                               np.ascontiguousarray(c - c0))
         return cache["pencil"]
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
-        d = _delta(self.half_life, dt)
-        m, kappa, one_minus_kappa, c0, dc = self._pencil(R, z, prior, cache)
-        # The denominator is 0 only where delta underflowed to 0 in a direction without
-        # prior information: nothing is known there any more, and a row touching it gets
-        # an infinite leverage (reported as not identified). The caller sets the
-        # floating-point error state (Posterior.predict silences it).
-        g = m @ phit
-        gi = g / (kappa + one_minus_kappa * d)
-        lev = np.einsum("ij,ij->j", g, gi)
-        mean = c0 @ gi + d * (dc @ gi)
+        m, kappa, c0, dc = self._pencil(R, z, prior, cache)
+        # One kernel call per batch (recursive._linalg.stabilized_rows): for row j with
+        # g = W^T R^{-T} phi_j, the mean is sum_i g_i (c0_i + dc_i delta_j) / q_i and the
+        # leverage sum_i g_i^2 / q_i, q_i = kappa_i + (1 - kappa_i) delta_j. A q_i of 0 only
+        # happens where delta underflowed to 0 in a direction without prior information:
+        # nothing is known there any more, and the row gets an infinite leverage (reported
+        # as not identified).
+        P = np.ascontiguousarray(phit.T)
+        dt = np.ascontiguousarray(dt, dtype=float)
+        out = np.empty((3, P.shape[0]))
+        _linalg.stabilized_rows(out, m, kappa, c0, dc, P, dt, self.half_life)
+        d = out[2]
         dn = 1.0 - d
-        return mean, lev, d * nu + dn * prior.nu0, d * ss + dn * prior.ss0
+        return out[0], out[1], d * nu + dn * prior.nu0, d * ss + dn * prior.ss0
 
 
 @dataclass(frozen=True)

@@ -591,3 +591,85 @@ def test_lapack_fallback_agrees_with_reference():
         for u, v in zip(res["lapack"], res["py"], strict=True):
             assert_allclose(u, v, rtol=1e-12, atol=1e-12 * max(1.0, np.max(np.abs(v), initial=0)),
                             equal_nan=True)
+
+
+# ------------------------------------------------------------------ stabilized_rows
+def _rows_args(rng, n, k):
+    M = rng.normal(size=(n, n))
+    kappa = rng.uniform(0.0, 3.0, n)
+    c0, dc = rng.normal(size=n), rng.normal(size=n)
+    P, dt = rng.normal(size=(k, n)), rng.uniform(0.0, 500.0, k)
+    return M, kappa, c0, dc, P, dt
+
+
+@pytest.mark.parametrize(("n", "k"), [(1, 1), (3, 0), (9, 20), (17, 256)])
+def test_stabilized_rows_against_numpy(K, n, k):
+    """The per-row sums against the same formula written with numpy arrays."""
+    rng = np.random.default_rng(1500 + n + k)
+    M, kappa, c0, dc, P, dt = _rows_args(rng, n, k)
+    out = np.full((3, k), np.nan)
+    K.stabilized_rows(out, M, kappa, c0, dc, P, dt, 120.0)
+    d = 2.0 ** (-dt / 120.0)
+    g = M @ P.T
+    q = kappa[:, None] + (1.0 - kappa)[:, None] * d
+    assert_allclose(out[2], d, rtol=1e-15)
+    assert_allclose(out[1], (g * g / q).sum(axis=0), rtol=1e-12)
+    assert_allclose(out[0], (g / q * (c0[:, None] + dc[:, None] * d)).sum(axis=0),
+                    rtol=1e-12, atol=1e-12)
+
+
+def test_stabilized_rows_everything_forgotten_gives_infinite_leverage(K):
+    """delta underflows to 0 where kappa is 0: the division by zero shows, silently."""
+    M, kappa = np.eye(2), np.array([0.0, 1.0])
+    P = np.array([[1.0, 1.0], [0.0, 1.0]])
+    out = np.empty((3, 2))
+    with np.errstate(all="raise"):
+        K.stabilized_rows(out, M, kappa, np.ones(2), np.ones(2), P, np.full(2, 1e9), 1.0)
+    assert out[2].tolist() == [0.0, 0.0]
+    assert out[1, 0] == math.inf and out[1, 1] == 1.0
+
+
+def test_stabilized_rows_c_and_python_agree():
+    if _kernel is None:
+        pytest.skip(f"recursive._kernel is not built ({_KERNEL_ERROR})")
+    rng = np.random.default_rng(1600)
+    for _ in range(20):
+        n, k = int(rng.integers(1, 33)), int(rng.integers(0, 300))
+        args = _rows_args(rng, n, k)
+        a, b = np.empty((3, k)), np.empty((3, k))
+        _kernel.stabilized_rows(a, *args, 50.0)
+        _givens.stabilized_rows(b, *args, 50.0)
+        assert_allclose(a, b, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize(("change", "error", "match"), [
+    ({"out": np.empty((2, 4))}, ValueError, "out must have shape"),
+    ({"out": np.empty((3, 5))}, ValueError, "shape"),
+    ({"M": np.eye(4)}, ValueError, "M must have shape"),
+    ({"c0": np.ones(4)}, ValueError, "c0 must have shape"),
+    ({"P": np.ones((4, 4))}, ValueError, "P must have shape"),
+    ({"dt": np.ones(3)}, ValueError, "dt must have shape"),
+    ({"kappa": np.ones(3, dtype=np.float32)}, TypeError, "kappa must be a float64"),
+    ({"P": np.ones((4, 6))[:, ::2]}, ValueError, "C-contiguous"),
+    ({"half_life": 0.0}, ValueError, "half_life must be positive"),
+    ({"half_life": math.inf}, ValueError, "half_life must be positive"),
+    ({"half_life": "1"}, TypeError, "half_life must be a real number"),
+])
+def test_stabilized_rows_bad_arguments(K, change, error, match):
+    a = {"out": np.empty((3, 4)), "M": np.eye(3), "kappa": np.ones(3), "c0": np.ones(3),
+         "dc": np.ones(3), "P": np.ones((4, 3)), "dt": np.ones(4), "half_life": 1.0}
+    a.update(change)
+    with pytest.raises(error, match=match):
+        K.stabilized_rows(a["out"], a["M"], a["kappa"], a["c0"], a["dc"], a["P"], a["dt"],
+                          a["half_life"])
+
+
+def test_stabilized_rows_refuses_shared_or_read_only_output(K):
+    P = np.ones((4, 3))
+    out = np.empty((3, 4))
+    with pytest.raises(ValueError, match="out and"):
+        K.stabilized_rows(out, np.eye(3), np.ones(3), np.ones(3), np.ones(3), P, out[0], 1.0)
+    ro = np.empty((3, 4))
+    ro.flags.writeable = False
+    with pytest.raises(ValueError, match="writable"):
+        K.stabilized_rows(ro, np.eye(3), np.ones(3), np.ones(3), np.ones(3), P, np.ones(4), 1.0)
