@@ -33,6 +33,7 @@ import threading
 import time
 from collections import Counter, deque
 from contextlib import contextmanager
+from itertools import chain
 
 import numpy as np
 import zmq
@@ -561,11 +562,13 @@ class Service:
             return
         if msg.block and not msg.has_y and isinstance(msg.x, np.ndarray) and runner.add_block(
                 msg.t, msg.x, msg.ids if msg.has_id else None, msg.increasing):
-            # the common block: features only, in order; predicted in one call
-            self._flush(runner, seg)
-            self._publish(runner, msg.t, msg.ids, runner.predict(msg.t, msg.x, msg.ids),
-                          True, msg.has_id, msg.packed)
+            # the common block: features only, in order. Buffered with the model's other
+            # such blocks of this wake-up, predicted with them in one call and answered one
+            # message per block, as single samples are.
+            seg[3].append((msg.t, msg.x, msg.ids, msg.has_id, msg.packed))
             return
+        if seg[3]:
+            self._flush_blocks(runner, seg)
         parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
             if row is not None and not self._buffer(runner, seg, t, row, ident):
@@ -594,7 +597,28 @@ class Service:
         seg[2].append(ident)
         return True
 
+    def _flush_blocks(self, runner: ModelRunner, seg: list) -> None:
+        """Predict the buffered feature blocks of a model in one call; answer each block."""
+        blocks, seg[3] = seg[3], []
+        if len(blocks) == 1:
+            ts, X, ids, has_id, packed = blocks[0]
+            self._publish(runner, ts, ids, runner.predict(ts, X, ids), True, has_id, packed)
+            return
+        batch = runner.predict(list(chain.from_iterable(b[0] for b in blocks)),
+                               np.concatenate([b[1] for b in blocks]),
+                               list(chain.from_iterable(b[2] for b in blocks)))
+        start = 0
+        for ts, _X, ids, has_id, packed in blocks:
+            sl = slice(start, start + len(ts))
+            start = sl.stop
+            part = PredBatch(t=batch.t[sl], ids=ids, mean=batch.mean[sl], std=batch.std[sl],
+                             var=batch.var[sl], lo=batch.lo[sl], hi=batch.hi[sl],
+                             dof=batch.dof[sl], status=batch.status[sl])
+            self._publish(runner, ts, ids, part, True, has_id, packed)
+
     def _flush(self, runner: ModelRunner, seg: list, parts: list | None = None) -> None:
+        if seg[3]:
+            self._flush_blocks(runner, seg)
         ts, rows, ids = seg[0], seg[1], seg[2]
         if not ts:
             return

@@ -941,3 +941,41 @@ def test_drain_takes_what_is_queued_up_to_the_limits(limit, budget, sizes):
     while svc.drain():
         pass
     assert seen == sizes + [0]
+
+
+def test_blocks_of_one_wake_up_are_predicted_together_and_answered_one_by_one(run):
+    """A whole feed in one process() call (so consecutive feature blocks of the model are
+    predicted in one call) gives the same messages, in the same order, as one call per
+    message: the same topics, times, statuses and ids, and numbers equal to rounding."""
+    feed = [[MODEL.encode(), msgpack.packb(pb if k % 2 else body, use_bin_type=True)]
+            for k, (body, pb) in enumerate(packed_and_list_feeds(run))]
+    one, together = recording_service(), recording_service()
+    calls = {"one": 0, "together": 0}
+    for name, svc in (("one", one), ("together", together)):
+        runner = svc.runners[MODEL]
+
+        def counted(*args, _predict=runner.predict, _name=name):
+            calls[_name] += 1
+            return _predict(*args)
+        runner.predict = counted
+    for frames in feed:
+        one.process([frames])
+    together.process(feed)
+    assert calls["together"] < calls["one"] - 5  # runs of feature blocks went together
+    got, want = together.pub.out, one.pub.out
+    assert [topic for topic, _ in got] == [topic for topic, _ in want]
+    preds = [(g, w) for (topic, g), (_, w) in zip(got, want, strict=True) if topic == PRED]
+    assert len(preds) > 20
+    for g, w in preds:
+        g, w = (unpack_block(b) if b.get("packed") else b for b in (g, w))
+        assert g["t"] == w["t"] if isinstance(g["t"], list) else np.array_equal(g["t"], w["t"])
+        for name in ("status", "level", "id"):
+            assert g.get(name) == w.get(name), name
+        for name in ("mean", "std", "var", "lo", "hi", "dof"):
+            np.testing.assert_allclose(g[name], w[name], rtol=1e-11, atol=1e-12,
+                                       equal_nan=True, err_msg=name)
+    fits = [[b for topic, b in out if topic.startswith("fit/")] for out in (got, want)]
+    assert len(fits[0]) >= 5 and len(fits[0]) == len(fits[1])
+    ra, rb = together.runners[MODEL], one.runners[MODEL]
+    assert ra.rejected == rb.rejected and ra.n_learned == rb.n_learned
+    np.testing.assert_allclose(ra.post.mean, rb.post.mean, rtol=1e-12)
