@@ -14,14 +14,17 @@ from __future__ import annotations
 
 import math
 from collections import Counter, OrderedDict
-from dataclasses import dataclass, replace
+from collections.abc import Iterator
+from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
 from daemon.config import ModelConfig
 from daemon.historian import Aligner
 from daemon.monitor import Monitor
-from recursive import OutOfOrderError, Posterior
+from recursive import OutOfOrderError, Posterior, Prediction
+
+_PREDICTION_FIELDS = tuple(f.name for f in fields(Prediction))
 
 STATUSES = ("unidentified", "learning", "frozen", "stale")
 CONTROLS = ("freeze", "resume", "reset", "acknowledge")
@@ -173,8 +176,34 @@ class ModelRunner:
         """Vectorized predictions for feature samples already buffered."""
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
-        Phi = self.basis(X)
-        pred = self.post.predict(Phi, t=t)
+        return self._finish(ts, t, X, ids, self.post.predict(self.basis(X), t=t))
+
+    def predict_blocks(self, blocks: list) -> Iterator[PredBatch]:
+        """:meth:`predict` of several blocks ``(ts, X, ids)``, yielding one result per block.
+
+        When the posterior's predictions are row by row (each row's numbers do not depend
+        on the other rows of its batch: `Posterior.rowwise`), the rows of all blocks are
+        predicted in one call. The detectors, intervals and statuses still run block by
+        block, each when its result is asked for, so a caller that publishes each result
+        before asking for the next one sends the same messages, bit for bit and with the
+        same trust states and alerts in between, as block by block.
+        """
+        if len(blocks) == 1 or not self.post.rowwise:
+            for ts, X, ids in blocks:
+                yield self.predict(ts, X, ids)
+            return
+        t = np.concatenate([np.asarray(b[0], dtype=float) for b in blocks])
+        X = np.concatenate([b[1] for b in blocks])
+        pred = self.post.predict(self.basis(X), t=t)
+        start = 0
+        for ts, Xb, ids in blocks:
+            sl = slice(start, start + len(ts))
+            start = sl.stop
+            part = Prediction(**{f: getattr(pred, f)[sl] for f in _PREDICTION_FIELDS})
+            yield self._finish(ts, t[sl], Xb, ids, part)
+
+    def _finish(self, ts: list, t: np.ndarray, X: np.ndarray, ids: list,
+                pred: Prediction) -> PredBatch:
         if self.monitor is not None:
             self.alerts += self.monitor.on_predictions(ts[-1], X, pred.std, pred.leverage,
                                                        self.last_lab_t)

@@ -33,7 +33,6 @@ import threading
 import time
 from collections import Counter, deque
 from contextlib import contextmanager
-from itertools import chain
 
 import numpy as np
 import zmq
@@ -598,23 +597,13 @@ class Service:
         return True
 
     def _flush_blocks(self, runner: ModelRunner, seg: list) -> None:
-        """Predict the buffered feature blocks of a model in one call; answer each block."""
+        """Predict the buffered feature blocks of a model (together where that changes no
+        bit of the result: `ModelRunner.predict_blocks`); answer each block."""
         blocks, seg[3] = seg[3], []
-        if len(blocks) == 1:
-            ts, X, ids, has_id, packed = blocks[0]
-            self._publish(runner, ts, ids, runner.predict(ts, X, ids), True, has_id, packed)
-            return
-        batch = runner.predict(list(chain.from_iterable(b[0] for b in blocks)),
-                               np.concatenate([b[1] for b in blocks]),
-                               list(chain.from_iterable(b[2] for b in blocks)))
-        start = 0
-        for ts, _X, ids, has_id, packed in blocks:
-            sl = slice(start, start + len(ts))
-            start = sl.stop
-            part = PredBatch(t=batch.t[sl], ids=ids, mean=batch.mean[sl], std=batch.std[sl],
-                             var=batch.var[sl], lo=batch.lo[sl], hi=batch.hi[sl],
-                             dof=batch.dof[sl], status=batch.status[sl])
-            self._publish(runner, ts, ids, part, True, has_id, packed)
+        # each result is published before the next is asked for (see predict_blocks)
+        batches = runner.predict_blocks([(ts, X, ids) for ts, X, ids, _h, _p in blocks])
+        for (ts, _X, ids, has_id, packed), batch in zip(blocks, batches, strict=True):
+            self._publish(runner, ts, ids, batch, True, has_id, packed)
 
     def _flush(self, runner: ModelRunner, seg: list, parts: list | None = None) -> None:
         if seg[3]:

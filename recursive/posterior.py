@@ -500,6 +500,10 @@ class Posterior:
         # a regressor that overflowed (inf) gives nan rows, as substitution would, and a
         # widening may divide by zero (see the policies): silently
         f = self._forgetting
+        if dt is None and t is not None and self.rowwise:
+            # the widening path even with no time elapsed, so that whether a row is widened
+            # never depends on the other rows of its batch
+            dt = np.zeros(k)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             if dt is not None and f is not None:
                 u = mean = None
@@ -515,6 +519,17 @@ class Posterior:
                 lev = np.einsum("ij,ij->j", u, u)
         out = self._distribution(mean, lev, nu, ss)
         return _squeeze(out) if single else out
+
+    @property
+    def rowwise(self) -> bool:
+        """Whether a batch prediction with times is computed row by row.
+
+        Then each row's numbers are the same, bit for bit, whatever other rows share its
+        batch (no matrix product whose rounding depends on the batch): the stabilized
+        policy with the C kernel. Callers may then merge batches freely.
+        """
+        return (self._forgetting is not None and not self._forgetting.needs_u
+                and _linalg.HAVE_KERNEL)
 
     def _inv_t(self) -> np.ndarray:
         """``R^{-T}``, kept until the next change of the state.
@@ -573,7 +588,7 @@ class Posterior:
             # the common case: identified with a finite variance everywhere
             s2 = ss / dof
             scale = np.sqrt(s2 * (1.0 + lev))
-            var = scale * scale * (dof / (dof - 2.0))
+            var = scale * scale * dof / (dof - 2.0)
             return Prediction(mean=mean, scale=scale, var=var, std=np.sqrt(var), dof=dof,
                               leverage=lev, identified=np.ones(k, bool))
         ident = (dof > 0) & np.isfinite(lev)

@@ -37,6 +37,7 @@ from sklearn.linear_model import Ridge
 from daemon import plant
 from daemon.config import loads
 from daemon.service import Service
+from recursive import _linalg
 
 RTOL = 1e-9
 PRED = f"pred/{MODEL}"
@@ -944,12 +945,13 @@ def test_drain_takes_what_is_queued_up_to_the_limits(limit, budget, sizes):
 
 
 def test_blocks_of_one_wake_up_are_predicted_together_and_answered_one_by_one(run):
-    """A whole feed in one process() call (so consecutive feature blocks of the model are
-    predicted in one call) gives the same messages, in the same order, as one call per
-    message: the same topics, times, statuses and ids, and numbers equal to rounding."""
+    """A whole feed in one process() call (so runs of feature blocks of the model are
+    predicted in one call) gives the same messages, byte for byte and in the same order,
+    as one call per message: predictions, trust states, alerts and fits."""
     feed = [[MODEL.encode(), msgpack.packb(pb if k % 2 else body, use_bin_type=True)]
             for k, (body, pb) in enumerate(packed_and_list_feeds(run))]
     one, together = recording_service(), recording_service()
+    assert together.runners[MODEL].post.rowwise == _linalg.HAVE_KERNEL
     calls = {"one": 0, "together": 0}
     for name, svc in (("one", one), ("together", together)):
         runner = svc.runners[MODEL]
@@ -961,21 +963,12 @@ def test_blocks_of_one_wake_up_are_predicted_together_and_answered_one_by_one(ru
     for frames in feed:
         one.process([frames])
     together.process(feed)
-    assert calls["together"] < calls["one"] - 5  # runs of feature blocks went together
+    if _linalg.HAVE_KERNEL:
+        assert calls["together"] < calls["one"] - 5  # runs of feature blocks went together
     got, want = together.pub.out, one.pub.out
-    assert [topic for topic, _ in got] == [topic for topic, _ in want]
-    preds = [(g, w) for (topic, g), (_, w) in zip(got, want, strict=True) if topic == PRED]
-    assert len(preds) > 20
-    for g, w in preds:
-        g, w = (unpack_block(b) if b.get("packed") else b for b in (g, w))
-        assert g["t"] == w["t"] if isinstance(g["t"], list) else np.array_equal(g["t"], w["t"])
-        for name in ("status", "level", "id"):
-            assert g.get(name) == w.get(name), name
-        for name in ("mean", "std", "var", "lo", "hi", "dof"):
-            np.testing.assert_allclose(g[name], w[name], rtol=1e-11, atol=1e-12,
-                                       equal_nan=True, err_msg=name)
-    fits = [[b for topic, b in out if topic.startswith("fit/")] for out in (got, want)]
-    assert len(fits[0]) >= 5 and len(fits[0]) == len(fits[1])
+    assert len(got) == len(want) > 40
+    assert sum(topic == PRED for topic, _ in got) > 20
+    assert [(t, msgpack.packb(b)) for t, b in got] == [(t, msgpack.packb(b)) for t, b in want]
     ra, rb = together.runners[MODEL], one.runners[MODEL]
-    assert ra.rejected == rb.rejected and ra.n_learned == rb.n_learned
-    np.testing.assert_allclose(ra.post.mean, rb.post.mean, rtol=1e-12)
+    assert ra.rejected == rb.rejected and ra.n_learned == rb.n_learned >= 5
+    np.testing.assert_array_equal(ra.post.mean, rb.post.mean)
