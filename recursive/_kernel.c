@@ -395,20 +395,28 @@ random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
     double v[MAX_N], s[MAX_N];
     for (Py_ssize_t k = n - 1; k >= 0; k--) {
         double *Tk = T + k * n;
-        double a = Tk[k], m = a;
+        double a = Tk[k], scale = 1.0, sigma = 0.0;
         for (Py_ssize_t i = k; i < n; i++) {
-            double b = fabs(B[i * n + k]);
-            m = b > m ? b : m;
-        }
-        /* the top entry is >= 1, so only overflow needs a scaled sum of squares */
-        double scale = m > 1e150 ? 1.0 / m : 1.0;
-        double sigma = 0.0;
-        for (Py_ssize_t i = k; i < n; i++) {
-            v[i] = scale * B[i * n + k];
-            sigma += v[i] * v[i];
+            double b = B[i * n + k];
+            v[i] = b;
+            sigma += b * b;
         }
         if (sigma == 0.0) {
             continue;
+        }
+        if (!(sigma < 1e300)) {
+            /* the top entry is >= 1, so only overflow (or a nan) needs the scaled sum */
+            double m = a;
+            for (Py_ssize_t i = k; i < n; i++) {
+                double b = fabs(v[i]);
+                m = b > m ? b : m;
+            }
+            scale = 1.0 / m;
+            sigma = 0.0;
+            for (Py_ssize_t i = k; i < n; i++) {
+                v[i] *= scale;
+                sigma += v[i] * v[i];
+            }
         }
         a *= scale;
         double beta = sqrt(a * a + sigma);

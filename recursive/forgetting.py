@@ -280,6 +280,8 @@ class RandomWalk(Forgetting):
         if dt <= 0.0:
             return nu, ss
         _linalg.random_walk(R, z, self.q * dt / prior.ref_var)
+        if self.noise_half_life is None:
+            return nu, ss
         return self._noise(nu, ss, float(dt))
 
     def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):

@@ -637,9 +637,14 @@ class Posterior:
             dt = 0.0 if self._t_last is None else t - self._t_last
         # work on copies: a gated sample must leave the state exactly as it was
         R, z, nu, ss = self._R.copy(), self._z.copy(), self._nu, self._ss
-        if self._forgetting is not None and dt > 0.0:
-            nu, ss = self._forgetting.forget(R, z, nu, ss, self._prior, dt)
-        ident = self._identified(R, nu, self._ident)
+        f = self._forgetting
+        if f is not None and dt > 0.0:
+            nu, ss = f.forget(R, z, nu, ss, self._prior, dt)
+        if self._ident and (f is None or not f.may_lose_rank) and (
+                self._noise_std is not None or nu - self._p_flat > 0.0):
+            ident = True  # what _identified would say, without the call
+        else:
+            ident = self._identified(R, nu, self._ident)
         nan = math.nan
         pm = scale = std = dof = zs = logp = innov = nan
         reason = "not_identified"
