@@ -34,8 +34,11 @@ MAX_N = 256
 _FLOAT64_FORMATS = ("d", "@d", "=d", "<d" if np.little_endian else ">d")
 
 
-def _array(obj, name: str, ndim: int, n: int | None, writable: bool) -> np.ndarray:
-    """View ``obj`` as an ndarray after the checks the C kernel makes."""
+def _view(obj, name: str, ndim: int, want, writable: bool) -> np.ndarray:
+    """View ``obj`` as an ndarray after the checks the C kernel makes, in its order.
+
+    ``want`` maps the buffer's shape to the shape required.
+    """
     try:
         mv = memoryview(obj)
     except TypeError:
@@ -45,36 +48,25 @@ def _array(obj, name: str, ndim: int, n: int | None, writable: bool) -> np.ndarr
                         f"got format {mv.format!r}")
     if mv.ndim != ndim:
         raise ValueError(f"{name} must have {ndim} dimension(s), got {mv.ndim}")
-    if n is None:
-        n = mv.shape[0]
-    if mv.shape != (n,) * ndim:
-        raise ValueError(f"{name} must have shape {(n,) * ndim}, got {mv.shape}")
+    shape = want(mv.shape)
+    if mv.shape != shape:
+        raise ValueError(f"{name} must have shape {shape}, got {mv.shape}")
     if not mv.c_contiguous:
         raise ValueError(f"{name} must be C-contiguous")
     if writable and mv.readonly:
         raise ValueError(f"{name} must be writable, got a read-only buffer")
     return np.asarray(mv)
+
+
+def _array(obj, name: str, ndim: int, n: int | None, writable: bool) -> np.ndarray:
+    """A vector or square matrix of side ``n`` (None: any, taken from the first axis)."""
+    return _view(obj, name, ndim, lambda sh: (sh[0] if n is None else n,) * ndim, writable)
 
 
 def _matrix(obj, name: str, shape: tuple, writable: bool) -> np.ndarray:
-    """View ``obj`` as a 2-D ndarray of ``shape`` (None: any length there), as the C kernel."""
-    try:
-        mv = memoryview(obj)
-    except TypeError:
-        raise TypeError(f"{name} must be a float64 array, got {type(obj).__name__}") from None
-    if mv.format not in _FLOAT64_FORMATS or mv.itemsize != 8:
-        raise TypeError(f"{name} must be a float64 array (buffer format 'd'), "
-                        f"got format {mv.format!r}")
-    if mv.ndim != 2:
-        raise ValueError(f"{name} must have 2 dimension(s), got {mv.ndim}")
-    want = tuple(mv.shape[i] if s is None else s for i, s in enumerate(shape))
-    if mv.shape != want:
-        raise ValueError(f"{name} must have shape {want}, got {mv.shape}")
-    if not mv.c_contiguous:
-        raise ValueError(f"{name} must be C-contiguous")
-    if writable and mv.readonly:
-        raise ValueError(f"{name} must be writable, got a read-only buffer")
-    return np.asarray(mv)
+    """A 2-D array of ``shape`` (None: any length on that axis)."""
+    return _view(obj, name, 2, lambda sh: tuple(sh[i] if s is None else s
+                                                 for i, s in enumerate(shape)), writable)
 
 
 def _check_n(n: int) -> None:

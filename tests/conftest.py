@@ -145,6 +145,20 @@ def toml_config(daemon: dict, models: list[dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+class Recorder:
+    """Stands in for the PUB socket of an in-process Service: keeps every (topic, body)."""
+
+    def __init__(self):
+        self.out: list[tuple[str, dict]] = []
+
+    def send_multipart(self, frames) -> None:
+        self.out.append((bytes(frames[0]).decode(),
+                         msgpack.unpackb(bytes(frames[1]), raw=False)))
+
+    def bodies(self, prefix: str) -> list[dict]:
+        return [b for topic, b in self.out if topic.startswith(prefix)]
+
+
 def c301_model(name: str = MODEL, **tables) -> dict:
     """A model of the simulated C-301 column; keyword arguments replace whole sub-tables."""
     m = {

@@ -23,6 +23,7 @@ from conftest import (
     PROBE,
     TIMEOUT,
     Control,
+    Recorder,
     ServiceHarness,
     c301_model,
     metric,
@@ -337,17 +338,6 @@ def test_block_with_lab_values_on_feature_rows(start_service, run):
     assert [len(b["t"]) for b in blocks] == sizes
     assert_preds(unblock(blocks), want_preds)
     assert_fits(fits, want_fits)
-
-
-class Recorder:
-    """Stands in for the PUB socket of an in-process Service: keeps (topic, body)."""
-
-    def __init__(self):
-        self.out: list[tuple[str, dict]] = []
-
-    def send_multipart(self, frames) -> None:
-        self.out.append((bytes(frames[0]).decode(),
-                         msgpack.unpackb(bytes(frames[1]), raw=False)))
 
 
 def recording_service() -> Service:

@@ -24,10 +24,9 @@ import functools
 import math
 from dataclasses import dataclass, field
 
-import msgpack
 import numpy as np
 import pytest
-from conftest import MODEL, c301_model, toml_config
+from conftest import MODEL, Recorder, c301_model, toml_config
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 from scipy import stats
@@ -49,20 +48,6 @@ ARL0_CUSUM = 465.0  # two-sided, k = 0.5, h = 5 (Montgomery's table, from memory
 
 
 # ---------------------------------------------------------------------------------- harness
-class Recorder:
-    """Stands in for the PUB socket: keeps every (topic, body) published."""
-
-    def __init__(self):
-        self.out: list[tuple[str, dict]] = []
-
-    def send_multipart(self, frames) -> None:
-        self.out.append((bytes(frames[0]).decode(),
-                         msgpack.unpackb(bytes(frames[1]), raw=False)))
-
-    def bodies(self, prefix: str) -> list[dict]:
-        return [b for topic, b in self.out if topic.startswith(prefix)]
-
-
 def service(alerts: dict | None = None, **tables) -> Service:
     m = c301_model(**tables)
     if alerts:
