@@ -373,7 +373,7 @@ class ModelRunner:
     # ------------------------------------------------------------------ persistence
     def to_state(self) -> dict:
         """Everything needed to carry on after a restart, as plain data (with the config)."""
-        al = _aligner_state(self.aligner)
+        al = self.aligner.to_state()
         return {
             "schema": RUNNER_SCHEMA,
             "config": self.cfg.to_state(),
@@ -411,7 +411,7 @@ class ModelRunner:
             fresh, r.post = r.post, Posterior.from_state(state["posterior"])
             if r.post.config() != fresh.config():
                 raise ValueError("the posterior's settings differ from the model's config")
-            r.aligner = _aligner_from_state(state["aligner"])
+            r.aligner = Aligner.from_state(state["aligner"])
             if r.aligner.tags != r.tags:
                 raise ValueError(f"the feature buffer has tags {r.aligner.tags}, the model "
                                  f"{r.tags}")
@@ -434,43 +434,3 @@ class ModelRunner:
         except (KeyError, TypeError) as exc:
             raise ValueError(f"bad model state: {exc!r}") from None
         return r
-
-
-def _aligner_state(al: Aligner) -> dict:
-    """``al.to_state()`` with the rows converted by numpy in a few calls.
-
-    Rows pushed from blocks are rows of numpy arrays: converting them one by one took
-    seconds for 200 models of 5000 rows, with the service loop waiting. Same layout and
-    values (the tests compare the two).
-    """
-    head = al._head
-    return {
-        "schema": al.SCHEMA,
-        "tags": list(al.tags),
-        "dead_times_s": list(al.dead_times_s),
-        "history_s": al.history_s,
-        "tolerance_s": al.tolerance_s,
-        "max_rows": al.max_rows,
-        "t": np.asarray(al._t[head:], dtype=float).tolist(),
-        "x": al.rows().tolist(),
-    }
-
-
-def _aligner_from_state(state: dict) -> Aligner:
-    """``Aligner.from_state`` with the rows checked by numpy and pushed at once."""
-    if state.get("schema") != Aligner.SCHEMA:
-        raise ValueError(f"unknown aligner schema {state.get('schema')!r}")
-    al = Aligner(state["tags"], state["dead_times_s"], state["history_s"],
-                 tolerance_s=state["tolerance_s"], max_rows=state["max_rows"])
-    t = np.asarray(state["t"], dtype=float)
-    x = np.asarray(state["x"], dtype=float)
-    if not len(state["x"]):
-        x = x.reshape(0, len(al.tags))
-    if t.ndim != 1 or x.shape != (len(t), len(al.tags)):
-        raise ValueError(f"aligner state has times of shape {t.shape} and rows of shape "
-                         f"{x.shape}; expected ({len(t)}, {len(al.tags)}) rows")
-    if not np.isfinite(t).all() or np.any(np.diff(t) <= 0):
-        raise ValueError("aligner state times must be finite and increasing")
-    if len(t):
-        al.push_many_trusted(t.tolist(), [tuple(r) for r in x.tolist()])
-    return al

@@ -60,8 +60,6 @@ class Monitor:
     def __init__(self, cfg, basis):
         self.cfg = cfg
         self.basis = basis
-        self._lo = np.array([inp.lo for inp in basis.inputs], dtype=float)
-        self._hi = np.array([inp.hi for inp in basis.inputs], dtype=float)
         n_in = len(cfg.inputs)
         self.cusum = Cusum(cfg.cusum_k, cfg.cusum_h, cfg.head_start)
         self.spread = SpreadCusum(cfg.spread_sigma, cfg.spread_h)
@@ -183,11 +181,7 @@ class Monitor:
             self.last["region"] = dist
             if dist > cfg.region_limit:
                 act["outside_region"] = (1, dist, cfg.region_limit)
-        # two column reductions settle the common batch with every reading in range
-        if (X.min(axis=0) >= self._lo).all() and (X.max(axis=0) <= self._hi).all():
-            outside = 0
-        else:
-            outside = int(np.count_nonzero(self.basis.out_of_range(X).any(axis=1)))
+        outside = self.basis.rows_out_of_range(X)
         self.last["out_of_range"] = float(outside)
         if outside:
             act["out_of_range"] = (1, float(outside), 0.0)

@@ -566,8 +566,6 @@ class Service:
             # message per block, as single samples are.
             seg[3].append((msg.t, msg.x, msg.ids, msg.has_id, msg.packed))
             return
-        if seg[3]:
-            self._flush_blocks(runner, seg)
         parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
             if row is not None and not self._buffer(runner, seg, t, row, ident):
@@ -606,6 +604,8 @@ class Service:
             self._publish(runner, ts, ids, batch, True, has_id, packed)
 
     def _flush(self, runner: ModelRunner, seg: list, parts: list | None = None) -> None:
+        # buffered blocks first: everything published or learned after a flush must come
+        # after the predictions of what was buffered before it
         if seg[3]:
             self._flush_blocks(runner, seg)
         ts, rows, ids = seg[0], seg[1], seg[2]

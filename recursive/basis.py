@@ -240,6 +240,18 @@ class Basis(ABC):
         flags = (A < self._lo) | (A > self._hi)
         return flags[0] if single else flags
 
+    def rows_out_of_range(self, X: Any) -> int:
+        """Number of rows of ``X`` (k, d) with at least one reading :meth:`out_of_range`.
+
+        Two column reductions settle the common batch in which every reading is in range;
+        only otherwise are the readings flagged one by one.
+        """
+        A, _single = self._as_rows(X)
+        if not len(A) or ((A.min(axis=0) >= self._lo).all()
+                          and (A.max(axis=0) <= self._hi).all()):
+            return 0
+        return int(np.count_nonzero(((A < self._lo) | (A > self._hi)).any(axis=1)))
+
     # ------------------------------------------------------------------ prior helper
     def alpha_vector(self, alpha: Any) -> np.ndarray:
         """Per-term prior precisions.

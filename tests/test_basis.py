@@ -403,6 +403,12 @@ def test_out_of_range_single_and_batch():
         np.testing.assert_array_equal(single, exp)
     with pytest.raises(ValueError, match=re.escape("(3,)")):
         b.out_of_range([1.0, 2.0, 3.0])
+    # the row count, with its shortcut for all-in-range batches (nan rows included)
+    assert b.rows_out_of_range(X) == 3
+    assert b.rows_out_of_range(X[[0, 1]]) == 0
+    assert b.rows_out_of_range(X[[0, 5]]) == 0
+    assert b.rows_out_of_range(X[[2]]) == 1
+    assert b.rows_out_of_range(np.empty((0, 2))) == 0
 
 
 # --------------------------------------------------------------------------- shapes

@@ -54,7 +54,6 @@ from conftest import (
 from daemon import cli, plant
 from daemon.config import ModelConfig, load, loads
 from daemon.historian import Aligner
-from daemon.models import _aligner_from_state, _aligner_state
 from daemon.service import Service, StateError
 from daemon.statecli import describe_folder, read_export
 from daemon.store import CorruptionError, LockedError, OsFs
@@ -365,29 +364,43 @@ def test_model_settings_and_feature_buffers_round_trip_as_plain_data():
     with pytest.raises(ValueError, match="unknown \\['colour'\\]"):
         ModelConfig.from_state({**state, "colour": "red"})
 
-    # the fast conversion of the feature buffer gives what Aligner.to_state gives, for rows
-    # pushed one at a time (tuples), as lists of numpy views and as blocks (the oldest block
-    # partly forgotten: max_rows is 50), nan blanks included
+    # the feature buffer's state holds exactly the rows remembered, whether pushed one at a
+    # time (tuples), as lists of numpy views or as blocks (the oldest block partly
+    # forgotten: max_rows is 50), nan blanks included; restoring it answers the same lookups
     al = Aligner(("a", "b"), (0.0, 60.0), 3600.0, tolerance_s=30.0, max_rows=50)
+    pushed_t, pushed_x = [], []
     for k in range(30):
-        al.push_trusted(float(k), (float(k), math.nan if k % 7 == 0 else -float(k)))
+        row = (float(k), math.nan if k % 7 == 0 else -float(k))
+        al.push_trusted(float(k), row)
+        pushed_t.append(float(k))
+        pushed_x.append(list(row))
     X = np.arange(80, dtype=float).reshape(40, 2)
-    al.push_many_trusted([30.0 + k for k in range(40)], list(X))
-    al.push_block_trusted([70.0 + k for k in range(15)], X[:15] + 0.5)
-    al.push_block_trusted([85.0 + k for k in range(10)], X[:10] - 0.5)
-    fast, ref = _aligner_state(al), al.to_state()
-    assert msgpack.packb(fast) == msgpack.packb(
-        {**ref, "x": [[float(v) for v in r] for r in ref["x"]]})
-    back = _aligner_from_state(fast)
-    assert msgpack.packb(_aligner_state(back)) == msgpack.packb(
-        _aligner_state(Aligner.from_state(fast)))
-    assert len(fast["x"]) == 50 and fast["t"][0] == 45.0
-    assert fast["x"][25] == [0.5, 1.5] and fast["x"][-1] == [17.5, 18.5]
+    blocks = [([30.0 + k for k in range(40)], X, False),
+              ([70.0 + k for k in range(15)], X[:15] + 0.5, True),
+              ([85.0 + k for k in range(10)], X[:10] - 0.5, True)]
+    for ts, rows, as_block in blocks:
+        if as_block:
+            al.push_block_trusted(ts, rows)
+        else:
+            al.push_many_trusted(ts, list(rows))
+        pushed_t += ts
+        pushed_x += rows.tolist()
+    state = al.to_state()
+    assert msgpack.packb(state) == msgpack.packb({
+        "schema": Aligner.SCHEMA, "tags": ["a", "b"], "dead_times_s": [0.0, 60.0],
+        "history_s": 3600.0, "tolerance_s": 30.0, "max_rows": 50,
+        "t": pushed_t[-50:], "x": pushed_x[-50:]})
+    back = Aligner.from_state(msgpack.unpackb(msgpack.packb(state)))
+    assert msgpack.packb(back.to_state()) == msgpack.packb(state)
+    assert len(state["x"]) == 50 and state["t"][0] == 45.0
+    assert state["x"][25] == [0.5, 1.5] and state["x"][-1] == [17.5, 18.5]
     assert [back.lookup(t) for t in (45.5, 69.0, 100.0, 110.0, 120.0)] == \
         [al.lookup(t) for t in (45.5, 69.0, 100.0, 110.0, 120.0)]
     assert al.lookup(110.0) == (17.5, 41.0)
     with pytest.raises(ValueError, match="increasing"):
-        _aligner_from_state({**fast, "t": fast["t"][::-1]})
+        Aligner.from_state({**state, "t": state["t"][::-1]})
+    with pytest.raises(ValueError, match="rows of shape"):
+        Aligner.from_state({**state, "x": state["x"][:-1]})
 
 
 # ---------------------------------------------------------------------------------- damage
