@@ -195,14 +195,15 @@ class Stabilized(_HalfLife):
 
     def _pencil(self, R, z, prior, cache):
         if "pencil" not in cache:
-            x = solve_upper_t(R, np.diag(prior.r0))
+            inv_t = solve_upper_t(R, np.eye(R.shape[0]))  # R^{-T}
+            x = inv_t * prior.r0  # R^{-T} D, D = diag(r0)
             kappa, w = np.linalg.eigh(x @ x.T)
             kappa = np.maximum(kappa, 0.0)
             c = w.T @ z
             c0 = w.T @ (x @ prior.z0)
             # g = W^T R^{-T} phi in one product; denominators kappa + (1 - kappa) delta
             # and numerators c0 + (c - c0) delta
-            m = np.ascontiguousarray(w.T @ solve_upper_t(R, np.eye(R.shape[0])))
+            m = np.ascontiguousarray(w.T @ inv_t)
             cache["pencil"] = (m, np.ascontiguousarray(kappa), np.ascontiguousarray(c0),
                                np.ascontiguousarray(c - c0))
         return cache["pencil"]
