@@ -7,14 +7,11 @@ import json
 import logging
 import sys
 
-# Exit codes (documented in the README).
-EXIT_OK = 0
-EXIT_USAGE = 2
-EXIT_CONFIG = 3
-EXIT_RUNTIME = 4
-EXIT_LOCKED = 5      # another process holds the state folder's lock
-EXIT_CORRUPT = 6     # damaged or unusable state folder, on_corruption = "refuse"
-EXIT_DURABILITY = 7  # a write or fsync of the state folder failed
+from daemon.exitcodes import (
+    EXIT_CONFIG,
+    EXIT_OK,
+    EXIT_RUNTIME,
+)
 
 
 class _JsonFormatter(logging.Formatter):
@@ -51,7 +48,7 @@ def _load(path):
 
 
 def cmd_run(args) -> int:
-    from daemon.service import Service
+    from daemon.runtime.service import Service
 
     config, error = _load(args.config)
     if error:
@@ -62,7 +59,7 @@ def cmd_run(args) -> int:
     try:
         svc.open()
     except Exception as exc:  # noqa: BLE001 - any bind/listen failure ends start-up cleanly
-        from daemon.statecli import start_failure
+        from daemon.runtime.state_commands import start_failure
 
         code, text = start_failure(exc)
         logging.getLogger("posteriord").error("cannot start: %s", text)
@@ -86,7 +83,7 @@ def cmd_check(args) -> int:
 def cmd_ctl(args) -> int:
     import zmq
 
-    from daemon import wire
+    from daemon.runtime import wire
 
     msg = {"cmd": args.command}
     if args.model:
@@ -111,7 +108,7 @@ def cmd_ctl(args) -> int:
 
 
 def cmd_keys_new(args) -> int:
-    from daemon.security import SecurityError, new_keys
+    from daemon.runtime.security import SecurityError, new_keys
 
     try:
         public, secret = new_keys(args.dir, args.name)
@@ -141,9 +138,9 @@ def main(argv=None) -> int:
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
     k.set_defaults(func=cmd_ctl)
     # imported here: these modules import the service, which imports this module's exit codes
-    from daemon.relay import add_relay_command
-    from daemon.statecli import add_state_commands
-    from daemon.workcli import add_work_commands
+    from daemon.runtime.relay import add_relay_command
+    from daemon.runtime.state_commands import add_state_commands
+    from daemon.workbench.commands import add_work_commands
 
     add_work_commands(sub)
     add_state_commands(sub)

@@ -30,8 +30,8 @@ import pytest
 import zmq
 from prometheus_client.parser import text_string_to_metric_families
 
-from daemon import plant
 from daemon.config import loads
+from daemon.workbench import plant
 
 MODEL = "c301.bottoms_solvent"
 PROBE = "probe"
@@ -319,11 +319,11 @@ class Link:
 
 
 class ServiceHarness(Link):
-    """An in-process :class:`daemon.service.Service` running in a thread."""
+    """An in-process :class:`daemon.runtime.service.Service` running in a thread."""
 
     def __init__(self, folder: Path, models: list[dict], *, metrics: bool = True,
                  own_context: bool = True, **daemon):
-        from daemon.service import Service
+        from daemon.runtime.service import Service
 
         ctx = zmq.Context()
         super().__init__(ctx, FeedPublisher(ctx))

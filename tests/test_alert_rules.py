@@ -1,7 +1,7 @@
 """Checks of docs/prometheus-alerts.yml, the example alerting rules.
 
 The metric names, label names and label values the rules use are checked against what a real
-:class:`daemon.service.Service` exports: its collector is scraped through
+:class:`daemon.runtime.service.Service` exports: its collector is scraped through
 ``prometheus_client.generate_latest`` after a short simulated feed (with gross lab errors, a
 malformed message and failed reloads, so that every family has samples). The structure is
 checked with PyYAML against the Prometheus rule-file format (groups, alert, expr, for, labels,
@@ -25,10 +25,11 @@ from conftest import MODEL, c301_model, toml_config
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
-from daemon import plant, wire
 from daemon.config import loads
-from daemon.monitor import REASONS, STATES
-from daemon.service import Service
+from daemon.runtime import wire
+from daemon.runtime.monitor import REASONS, STATES
+from daemon.runtime.service import Service
+from daemon.workbench import plant
 
 RULES = Path(__file__).resolve().parent.parent / "docs" / "prometheus-alerts.yml"
 PROMTOOL = shutil.which("promtool")

@@ -11,9 +11,10 @@ import pytest
 from scipy import integrate, stats
 from sklearn.linear_model import Ridge
 
-from daemon import backtest, historian, plant
-from daemon.cli import EXIT_CONFIG, EXIT_OK, EXIT_USAGE, main
+from daemon.cli import main
 from daemon.config import demo_config, loads
+from daemon.exitcodes import EXIT_CONFIG, EXIT_OK, EXIT_USAGE
+from daemon.workbench import backtest, historian, plant
 from recursive import Posterior
 from tests.conftest import MODEL, c301_model, toml_config
 
@@ -31,7 +32,7 @@ def _demo_model():
 
 # ---------------------------------------------------------------------------------- messages
 def test_feed_messages_follow_the_arrival_order_of_plant_events(tmp_path):
-    # reference: daemon.plant.events, the simulator's own replay in arrival order (a lab
+    # reference: daemon.workbench.plant.events, the simulator's own replay in arrival order (a lab
     # result reported at a sample's instant comes after it), with every delay set to 2 h
     path, run = _csv(tmp_path, plant.Scenario(seed=3, days=2.0))
     delay = 7200.0

@@ -19,7 +19,6 @@ import statsmodels.api as sm
 from scipy.special import comb
 from sklearn.linear_model import Ridge
 
-from daemon import plant
 from daemon.config import (
     REQUIRED,
     SECTIONS,
@@ -32,12 +31,13 @@ from daemon.config import (
     demo_config,
     describe,
     format_duration,
-    is_loopback,
     load,
     loads,
     parse_duration,
     settings_markdown,
 )
+from daemon.endpoints import is_loopback
+from daemon.workbench import plant
 from recursive import Posterior
 from recursive.basis import Identity, Polynomial
 
@@ -703,13 +703,13 @@ def test_demo_config():
     for ep in (*d.feeds, d.publish, d.control, f"tcp://{d.metrics}"):
         assert ep.startswith("tcp://127.0.0.1:")
         assert is_loopback(ep)
-    text = (ROOT / "daemon" / "demo.toml").read_text()
+    text = (ROOT / "daemon" / "config" / "demo.toml").read_text()
     assert "fictitious" in text
 
 
 def test_demo_toml_is_package_data():
     pyproject = tomllib.loads((ROOT / "pyproject.toml").read_text())
-    patterns = pyproject["tool"]["setuptools"]["package-data"]["daemon"]
+    patterns = pyproject["tool"]["setuptools"]["package-data"]["daemon.config"]
     assert any(Path("demo.toml").match(p) for p in patterns)
 
 

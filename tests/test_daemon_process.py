@@ -36,8 +36,8 @@ from conftest import (
 )
 from scipy.special import comb
 
-from daemon import plant
 from daemon.config import load
+from daemon.workbench import plant
 
 ROW = [110.0, 14.0, 1.2, 5.0]
 SECOND = "c301.tops_water"

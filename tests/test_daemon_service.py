@@ -35,9 +35,9 @@ from prometheus_client import CollectorRegistry
 from scipy import stats
 from sklearn.linear_model import Ridge
 
-from daemon import plant
 from daemon.config import loads
-from daemon.service import Service
+from daemon.runtime.service import Service
+from daemon.workbench import plant
 from recursive import _linalg
 
 RTOL = 1e-9

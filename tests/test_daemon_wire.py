@@ -1,4 +1,4 @@
-"""Unit tests of daemon.wire: feed and control decoding, every rejection reason, encoding.
+"""Unit tests of daemon.runtime.wire: feed and control decoding, every rejection reason, encoding.
 
 Encoded bytes are checked against the layouts of the MessagePack specification
 (github.com/msgpack/msgpack, spec.md: fixmap 0x80|n, fixarray 0x90|n, fixstr 0xa0|n,
@@ -16,8 +16,16 @@ import msgpack
 import numpy as np
 import pytest
 
-from daemon import plant, wire
-from daemon.wire import MAX_BLOCK, MAX_ID_LEN, REASONS, WireError, decode_control, decode_feed
+from daemon.runtime import wire
+from daemon.runtime.wire import (
+    MAX_BLOCK,
+    MAX_ID_LEN,
+    REASONS,
+    WireError,
+    decode_control,
+    decode_feed,
+)
+from daemon.workbench import plant
 
 MODEL = "c301.bottoms_solvent"
 TAGS = plant.TAGS

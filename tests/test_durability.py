@@ -6,7 +6,7 @@ certainly processed; at the end every model's posterior (and the detector state 
 lab results) equals, bit for bit, that of an uninterrupted run of the same stream. Bit for bit
 means equal msgpack bytes of the plain-data state (floats as IEEE 754 doubles).
 
-The other checks run an in-process :class:`daemon.service.Service` without sockets (its
+The other checks run an in-process :class:`daemon.runtime.service.Service` without sockets (its
 publisher replaced by a recorder) on a state folder, and simulate a crash by copying the
 folder while the service still holds it (what a crashed process leaves: every record written
 so far, no shutdown checkpoint). External references: the record framing is read back with
@@ -51,12 +51,13 @@ from conftest import (
     wait_until,
 )
 
-from daemon import cli, plant
+from daemon import cli, exitcodes
 from daemon.config import ModelConfig, load, loads
-from daemon.historian import Aligner
-from daemon.service import Service, StateError
-from daemon.statecli import describe_folder, read_export
-from daemon.store import CorruptionError, LockedError, OsFs
+from daemon.runtime.alignment import Aligner
+from daemon.runtime.service import Service, StateError
+from daemon.runtime.state_commands import describe_folder, read_export
+from daemon.runtime.store import CorruptionError, LockedError, OsFs
+from daemon.workbench import plant
 
 A = "c301.single"   # single messages, ids on the features, half its lab results by id
 B = "c301.blocks"   # blocks of 12 feature rows, identity basis
@@ -625,7 +626,7 @@ def test_disk_full_or_fsync_failure_stops_the_daemon(tmp_path, run, fault, caplo
                     else {"t": ev[1], "y": ev[2]}
                 d.feed.send(A, body)
             d.thread.join(TIMEOUT)
-        assert not d.thread.is_alive() and d.rc == cli.EXIT_DURABILITY == 7
+        assert not d.thread.is_alive() and d.rc == exitcodes.EXIT_DURABILITY == 7
         assert "state folder write failed, stopping" in caplog.text
         got = []
         while d.out.poll(200):
@@ -655,7 +656,7 @@ def test_second_daemon_on_the_folder_exits_with_code_5(tmp_path):
                                  "state_dir": str(tmp_path / "state")}, [model_a()]))
     done = subprocess.run(cli_cmd("run", "--config", str(path)), capture_output=True,
                           text=True, env=blas_env(), timeout=START_TIMEOUT)
-    assert done.returncode == cli.EXIT_LOCKED == 5
+    assert done.returncode == exitcodes.EXIT_LOCKED == 5
     assert f"is locked by process {os.getpid()}" in done.stderr
     assert not (tmp_path / "p").exists()  # nothing bound
     holder.close()
@@ -673,7 +674,7 @@ def test_corrupt_log_exits_with_code_6_under_refuse(tmp_path, run):
                                  "state_dir": str(crashed)}, [model_a()]))
     done = subprocess.run(cli_cmd("run", "--config", str(path)), capture_output=True,
                           text=True, env=blas_env(), timeout=START_TIMEOUT)
-    assert done.returncode == cli.EXIT_CORRUPT == 6
+    assert done.returncode == exitcodes.EXIT_CORRUPT == 6
     assert f"WAL segment {segment.name} is corrupt" in done.stderr
     assert 'on_corruption = "checkpoint"' in done.stderr  # how to go on, in config terms
 
@@ -699,7 +700,8 @@ def test_state_inspect_export_import(tmp_path, run, capsys):
     assert after == before  # read-only
 
     exp = tmp_path / "a.export"
-    assert cli.main(["state", "export", str(tmp_path / "src"), A, str(exp)]) == cli.EXIT_LOCKED
+    code = cli.main(["state", "export", str(tmp_path / "src"), A, str(exp)])
+    assert code == exitcodes.EXIT_LOCKED
     assert "stop that daemon first" in capsys.readouterr().err
     reference = learned_state(src.runners[A])
     src.close()
@@ -713,11 +715,11 @@ def test_state_inspect_export_import(tmp_path, run, capsys):
     wrong = tmp_path / "wrong.toml"
     wrong.write_text(config_text(tmp_path / "dst", [model_a(prior={"alpha": 1.0})]))
     assert cli.main(["state", "import", str(tmp_path / "dst"), str(exp), "--config",
-                     str(wrong)]) == cli.EXIT_CONFIG
+                     str(wrong)]) == exitcodes.EXIT_CONFIG
     assert "other learning settings" in capsys.readouterr().err
     assert cli.main(["state", "import", str(tmp_path / "dst"), str(exp), "--config",
                      str(cfg)]) == 0
-    assert cli.main(["state", "import", str(tmp_path / "dst"), str(exp)]) == cli.EXIT_RUNTIME
+    assert cli.main(["state", "import", str(tmp_path / "dst"), str(exp)]) == exitcodes.EXIT_RUNTIME
     assert "--replace" in capsys.readouterr().err
     dst = Service(load(cfg), config_path=str(cfg))
     dst.open_state()

@@ -10,8 +10,8 @@ import msgpack
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from daemon import wire
 from daemon.config import ConfigError, loads
+from daemon.runtime import wire
 
 SPECS = {"c301": (("TI-104", "FI-201"), {"TI-104": 0, "FI-201": 1})}
 LIMIT = 65536

@@ -10,14 +10,9 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from daemon.historian import (
-    Aligner,
-    Row,
-    apply_dead_time,
-    read_csv,
-    write_csv,
-)
-from daemon.plant import TAGS, TARGET, Scenario, basis, simulate
+from daemon.runtime.alignment import Aligner, apply_dead_time
+from daemon.workbench.historian import Row, read_csv, write_csv
+from daemon.workbench.plant import TAGS, TARGET, Scenario, basis, simulate
 
 
 def utc(*fields):

@@ -12,10 +12,12 @@ import msgpack
 import pytest
 import zmq
 
-from daemon import backtest, historian, live, plant, wire
-from daemon.cli import EXIT_OK, main
+from daemon.cli import main
 from daemon.config import loads
-from daemon.service import Service
+from daemon.exitcodes import EXIT_OK
+from daemon.runtime import wire
+from daemon.runtime.service import Service
+from daemon.workbench import backtest, historian, live, plant
 from tests.conftest import (
     MODEL,
     PROBE,

@@ -1,4 +1,4 @@
-"""Unit tests of daemon.monitor: the detectors wired to one model, reasons, levels, events.
+"""Unit tests of daemon.runtime.monitor: the detectors wired to one model, reasons, levels, events.
 
 The monitor is fed hand-built :class:`recursive.Step` outcomes (whose ``y`` is made consistent
 with ``z`` through ``scipy.stats``) and a small stand-in posterior, so every number it acts on
@@ -22,10 +22,10 @@ from conftest import c301_model, toml_config
 from scipy import integrate, stats
 from scipy.spatial.distance import mahalanobis
 
-from daemon import monitor as monitor_mod
-from daemon import plant
 from daemon.config import loads
-from daemon.monitor import REASONS, STATES, Monitor
+from daemon.runtime import monitor as monitor_mod
+from daemon.runtime.monitor import REASONS, STATES, Monitor
+from daemon.workbench import plant
 from recursive import Step
 
 LO = np.array([plant.RANGES[t][0] for t in plant.TAGS])
@@ -35,7 +35,7 @@ MID = (LO + HI) / 2.0
 
 # ---------------------------------------------------------------------------------- helpers
 def doc_levels() -> dict[str, str]:
-    """Reason -> level name, read from the table in daemon.monitor's docstring."""
+    """Reason -> level name, read from the table in daemon.runtime.monitor's docstring."""
     out = {}
     for line in monitor_mod.__doc__.splitlines():
         m = re.match(r"^``(\w+)``\s+(\d)\s", line)

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from daemon.plant import (
+from daemon.workbench.plant import (
     BASE_COEF,
     CENTERS,
     COEF_NAMES,

@@ -11,10 +11,12 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
-from daemon import backtest, demo, historian, live, plant, report, wire
-from daemon.cli import EXIT_OK, EXIT_USAGE, main
+from daemon.cli import main
 from daemon.config import Config, DaemonConfig, demo_config
-from daemon.service import Service
+from daemon.exitcodes import EXIT_OK, EXIT_USAGE
+from daemon.runtime import wire
+from daemon.runtime.service import Service
+from daemon.workbench import backtest, demo, historian, live, plant, report
 from tests.conftest import MODEL
 
 

@@ -9,7 +9,8 @@ from types import SimpleNamespace
 import pytest
 import zmq
 
-from daemon.relay import Relay, parse_shard, select, shard_of
+from daemon.runtime.relay import Relay
+from daemon.sharding import parse_shard, select, shard_of
 
 
 def test_shard_is_crc32_of_the_name_modulo_n():
@@ -97,7 +98,7 @@ def test_two_shards_and_a_relay_publish_what_one_daemon_publishes(tmp_path):
     import numpy as np
 
     from daemon.config import loads
-    from daemon.service import Service
+    from daemon.runtime.service import Service
 
     names = [f"unit{k}.quality" for k in range(6)]
     assert all(select([SimpleNamespace(name=n) for n in names], (i, 2)) for i in range(2))

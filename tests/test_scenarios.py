@@ -1,6 +1,6 @@
 """Seeded plant scenarios through the whole per-message path of the service, without sockets.
 
-Each test simulates the fictitious C-301 column (:mod:`daemon.plant`), replays the feed in
+Each test simulates the fictitious C-301 column (:mod:`daemon.workbench.plant`), replays the feed in
 arrival order into :meth:`Service.process` (feature samples as blocks, lab results as single
 messages at their arrival time) and reads what would have been published on ``pred/``,
 ``fit/`` and ``alert/`` from a recording publisher. Samples come every 5 minutes (the
@@ -31,14 +31,15 @@ from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 from scipy import stats
 
-from daemon import plant, wire
 from daemon.config import loads
-from daemon.service import Service
+from daemon.runtime import wire
+from daemon.runtime.service import Service
+from daemon.workbench import plant
 
 DAY = 86400.0
 HOUR = 3600.0
 SAMPLE_S = 300.0
-# the demo config's forgetting (daemon/demo.toml)
+# the demo config's forgetting (daemon/config/demo.toml)
 DEMO_FORGETTING = {"policy": "stabilized", "half_life": "10d"}
 # input-based reasons judge where the inputs are, not the residuals; off where a test is
 # about the residual detectors alone

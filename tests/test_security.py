@@ -10,7 +10,7 @@ import pytest
 import zmq
 import zmq.auth
 
-from daemon.security import (
+from daemon.runtime.security import (
     DOMAIN_CONTROL,
     DOMAIN_PUBLISH,
     CurveKeys,
@@ -182,7 +182,7 @@ def test_daemon_with_curve_serves_only_listed_keys(keyring, tmp_path):
     from conftest import free_port
 
     from daemon.config import loads
-    from daemon.service import Service
+    from daemon.runtime.service import Service
 
     feed_ep = f"ipc://{tmp_path}/feed"
     text = (f'[daemon]\nfeeds = ["{feed_ep}"]\npublish = "tcp://127.0.0.1:{free_port()}"\n'

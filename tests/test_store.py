@@ -22,8 +22,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, rule
 
-from daemon import wire
-from daemon.store import (
+from daemon.runtime import wire
+from daemon.runtime.store import (
     CHECKPOINT_MAGIC,
     CorruptionError,
     DurabilityError,
@@ -457,7 +457,7 @@ def test_second_open_in_same_process_is_locked(tmp_path):
 def test_open_from_another_process_is_locked(tmp_path):
     path = tmp_path / "s"
     holder = opened(path)
-    code = ("import sys\nfrom daemon.store import StateDir, LockedError\n"
+    code = ("import sys\nfrom daemon.runtime.store import StateDir, LockedError\n"
             "try:\n    StateDir(sys.argv[1]).open()\n    print('opened')\n"
             "except LockedError as e:\n    print('locked', e.holder_pid)\n")
     out = subprocess.run([sys.executable, "-c", code, str(path)], capture_output=True,
@@ -468,7 +468,7 @@ def test_open_from_another_process_is_locked(tmp_path):
 
 def test_lock_held_by_another_process(tmp_path):
     path = tmp_path / "s"
-    code = ("import sys\nfrom daemon.store import StateDir\nsd = StateDir(sys.argv[1])\n"
+    code = ("import sys\nfrom daemon.runtime.store import StateDir\nsd = StateDir(sys.argv[1])\n"
             "sd.open()\nsd.recover()\nsd.append({'from': 'child'})\nprint('ready', flush=True)\n"
             "sys.stdin.readline()\nsd.close()\n")
     proc = subprocess.Popen([sys.executable, "-c", code, str(path)], stdin=subprocess.PIPE,

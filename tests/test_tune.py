@@ -10,9 +10,10 @@ import numpy as np
 import pytest
 from sklearn.linear_model import BayesianRidge
 
-from daemon import backtest, historian, plant, tune
-from daemon.cli import EXIT_OK, main
+from daemon.cli import main
 from daemon.config import InputConfig, ModelConfig, load, loads
+from daemon.exitcodes import EXIT_OK
+from daemon.workbench import backtest, historian, plant, tune
 from tests.conftest import c301_model, toml_config
 
 _HOUR = 3600.0

@@ -30,7 +30,7 @@ import zmq
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.dirname(HERE))
 
-from daemon.demo import free_port  # noqa: E402
+from daemon.workbench.demo import free_port  # noqa: E402
 
 RELAY = r"""
 import sys, zmq, msgpack

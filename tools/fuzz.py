@@ -17,8 +17,8 @@ import sys
 import atheris
 
 with atheris.instrument_imports():
-    from daemon import store, wire
     from daemon.config import ConfigError, loads
+    from daemon.runtime import store, wire
 
 SPECS = {"c301": (("TI-104", "FI-201"), {"TI-104": 0, "FI-201": 1})}
 

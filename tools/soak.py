@@ -2,7 +2,7 @@
 """Soak run: a steady feed with bad input mixed in, random SIGKILLs and restarts.
 
 Two ``posteriord run`` subprocesses get the same recorded plant stream (simulated data,
-:mod:`daemon.plant`) at a steady rate: the *victim* is killed with SIGKILL at random times
+:mod:`daemon.workbench.plant`) at a steady rate: the *victim* is killed with SIGKILL at random times
 and restarted on its state folder, then fed again from the first message it may not have
 processed (the one after the last feature sample it holds, by its ``status`` reply); the
 *reference* runs without interruption. At the end both are stopped with SIGTERM, each
@@ -37,7 +37,7 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.dirname(HERE))
 
 from daemon import plant  # noqa: E402
-from daemon.statecli import read_export  # noqa: E402
+from daemon.runtime.state_commands import read_export  # noqa: E402
 
 SINGLE = "soak.single"   # one message per feature sample, ids on them, some results by id
 BLOCKS = "soak.blocks"   # blocks of 12 feature samples, identity basis

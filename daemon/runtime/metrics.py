@@ -11,13 +11,13 @@ import math
 
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
-from daemon.monitor import REASONS, STATES, _calibration_means
+from daemon.runtime.monitor import REASONS, STATES, _calibration_means
 
 PREFIX = "posteriord"
 
 
 class ServiceCollector:
-    """Custom collector over a :class:`daemon.service.Service`."""
+    """Custom collector over a :class:`daemon.runtime.service.Service`."""
 
     def __init__(self, service):
         self._service = service

@@ -1,17 +1,17 @@
 """The demo: commissioning and running a soft sensor on the fictitious C-301 column.
 
-The whole story on simulated data (all of it from :mod:`daemon.plant`, none from a plant):
+The whole story on simulated data (all of it from :mod:`daemon.workbench.plant`, none from a plant):
 
 1. a historian CSV export of three months of the column (the ``Scenario.demo()`` preset: slow
    fouling, a feed-grade step, a lab outage, a few lab blunders);
-2. tuning the built-in demo model on the first four weeks of that export (`daemon.tune`);
+2. tuning the built-in demo model on the first four weeks of that export (`daemon.workbench.tune`);
 3. a backtest of the tuned model over the whole export, beside the static batch model and the
-   model without forgetting (`daemon.backtest`);
+   model without forgetting (`daemon.workbench.backtest`);
 4. the daemon itself (``posteriord run`` as a subprocess, tuned model, free loopback ports, a
    temporary state folder) on the simulated feed compressed into about a minute of wall time
    (one feature sample a minute of simulated time, lab results arriving hours after the
    sample was drawn), with the watch view and a line per lab result, the stream recorded;
-5. the report picture of the recorded stream (`daemon.report`).
+5. the report picture of the recorded stream (`daemon.workbench.report`).
 """
 
 from __future__ import annotations
@@ -32,7 +32,8 @@ from importlib import resources
 import numpy as np
 import zmq
 
-from daemon import backtest, historian, live, plant, report, tune, wire
+from daemon.runtime import wire
+from daemon.workbench import backtest, historian, live, plant, report, tune
 
 MODEL = "c301.bottoms_solvent"
 
@@ -45,7 +46,7 @@ def free_port() -> int:
 
 def demo_toml(feed: str, publish: str, control: str, metrics: str, state_dir: str) -> str:
     """The packaged demo config with the daemon's endpoints replaced."""
-    text = resources.files("daemon").joinpath("demo.toml").read_text()
+    text = resources.files("daemon.config").joinpath("demo.toml").read_text()
     subs = {"feeds": f'["{feed}"]', "publish": f'"{publish}"', "control": f'"{control}"',
             "metrics": f'"{metrics}"', "state_dir": f'"{state_dir}"', "log_level": '"warning"'}
     for key, value in subs.items():

@@ -21,7 +21,7 @@ import zmq
 import zmq.auth
 from zmq.auth.thread import ThreadAuthenticator
 
-from daemon.config import is_loopback
+from daemon.endpoints import is_loopback
 
 DOMAIN_PUBLISH = "publish"
 DOMAIN_CONTROL = "control"
@@ -43,6 +43,12 @@ class CurveKeys:
     @property
     def enabled(self) -> bool:
         return self.server_secret is not None
+
+    @classmethod
+    def from_config(cls, d) -> CurveKeys:
+        """The key settings of a :class:`daemon.config.DaemonConfig` ("" means not set)."""
+        return cls(d.curve_secret_key or None, d.curve_clients or None,
+                   d.curve_admins or None, d.curve_feed_server_key or None)
 
 
 def new_keys(folder: str, name: str) -> tuple[str, str]:

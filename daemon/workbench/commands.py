@@ -82,7 +82,7 @@ def _one_model(config, name):
 
 
 def _history(args, tags):
-    from daemon.backtest import load_history
+    from daemon.workbench.backtest import load_history
 
     try:
         return load_history(args.data, tags, target=args.target, tz=args.tz,
@@ -113,7 +113,7 @@ def _stop_on_signals() -> threading.Event:
 
 # ---------------------------------------------------------------------------------- commands
 def cmd_backtest(args) -> int:
-    from daemon import backtest
+    from daemon.workbench import backtest
 
     model = _one_model(_config(args.config), args.model)
     history = _history(args, [i.tag for i in model.inputs])
@@ -130,7 +130,7 @@ def cmd_backtest(args) -> int:
 
 
 def cmd_tune(args) -> int:
-    from daemon import tune
+    from daemon.workbench import tune
 
     if args.config or args.model:
         base = _one_model(_config(args.config), args.model)
@@ -163,7 +163,7 @@ def cmd_tune(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from daemon import report
+    from daemon.workbench import report
 
     try:
         track = report.load_track(args.source, args.model)
@@ -188,7 +188,7 @@ def cmd_report(args) -> int:
 def cmd_replay(args) -> int:
     import zmq
 
-    from daemon import backtest, live
+    from daemon.workbench import backtest, live
 
     config = _config(args.config)
     models = _models(config, args.model)
@@ -228,7 +228,7 @@ def cmd_replay(args) -> int:
 
 
 def cmd_record(args) -> int:
-    from daemon import live
+    from daemon.workbench import live
 
     endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
                                  else _PUBLISH)
@@ -243,7 +243,7 @@ def cmd_record(args) -> int:
 
 
 def cmd_watch(args) -> int:
-    from daemon import live
+    from daemon.workbench import live
 
     endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
                                  else _PUBLISH)

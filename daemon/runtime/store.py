@@ -2,7 +2,7 @@
 
 No service logic lives here: records and checkpoint bodies are dicts of plain data handed in by
 the caller and handed back, unchanged, by :meth:`StateDir.recover`. Encoding goes through
-:mod:`daemon.wire` (``wire.pack`` / ``wire.unpack``). Not thread-safe: one loop owns a
+:mod:`daemon.runtime.wire` (``wire.pack`` / ``wire.unpack``). Not thread-safe: one loop owns a
 :class:`StateDir`.
 
 Folder layout
@@ -102,7 +102,7 @@ import time
 import zlib
 from dataclasses import dataclass
 
-from daemon import wire
+from daemon.runtime import wire
 
 __all__ = [
     "CHECKPOINT_MAGIC",

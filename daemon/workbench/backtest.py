@@ -3,9 +3,9 @@
 The rows of the file become feed messages exactly as a live feed would carry them (feature
 blocks of ``block`` rows on the model's topic, each lab value as a late lab result at its drawn
 time, sent ``lab_delay`` after it was drawn), and every message goes through
-:meth:`daemon.service.Service.process`, with a publisher that records what would have left the
-daemon. The predictions written are therefore the daemon's, bit for bit: replaying the same
-messages into a running daemon gives the same bytes (tested).
+:meth:`daemon.runtime.service.Service.process`, with a publisher that records what would
+have left the daemon. The predictions written are therefore the daemon's, bit for bit:
+replaying the same messages into a running daemon gives the same bytes (tested).
 
 Beside the model as configured, two references are scored on the same lab results:
 
@@ -48,9 +48,10 @@ from datetime import UTC, datetime
 import numpy as np
 from scipy import special
 
-from daemon import wire
 from daemon.config import Config, DaemonConfig, ModelConfig, format_duration
-from daemon.historian import apply_dead_time, read_csv
+from daemon.runtime import wire
+from daemon.runtime.alignment import apply_dead_time
+from daemon.workbench.historian import read_csv
 from recursive.detect import crps_t, log_score_t
 
 __all__ = [
@@ -104,7 +105,7 @@ class History:
 
 def load_history(path, tags=None, *, target=None, tz=None, time_format="auto",
                  progress=False) -> History:
-    """Read a historian CSV (see :mod:`daemon.historian`) into memory.
+    """Read a historian CSV (see :mod:`daemon.workbench.historian`) into memory.
 
     ``tags`` are the input columns to keep (default: every column but time and target);
     ``target`` the lab column (default ``AX-350`` when present). Bad rows are skipped and
@@ -454,7 +455,7 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
                          f"would be too old to match")
     companion = replace(model, name=model.name + NOFORGET_SUFFIX, forgetting="none",
                         half_life=None, q=None)
-    from daemon.service import Service
+    from daemon.runtime.service import Service
 
     config = Config(daemon=DaemonConfig(), models=(model, companion), source="<backtest>")
     svc = Service(config)

@@ -31,8 +31,8 @@ from datetime import UTC, datetime
 import numpy as np
 from scipy import optimize, special
 
-from daemon.backtest import History, lab_features
 from daemon.config import InputConfig, ModelConfig, format_duration
+from daemon.workbench.backtest import History, lab_features
 
 __all__ = [
     "HALF_LIVES",

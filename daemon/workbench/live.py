@@ -3,7 +3,7 @@ publishes, watch it in a terminal.
 
 Replay binds an XPUB socket at the feed endpoint (the daemon's SUB connects to its
 ``daemon.feeds``), waits until the daemon has subscribed to the models' topics, then sends
-the feed messages of :func:`daemon.backtest.feed_messages` (feature blocks, lab results at
+the feed messages of :func:`daemon.workbench.backtest.feed_messages` (feature blocks, lab results at
 their drawn time after a lab delay) paced at a speed-up of the recorded time, or as fast as
 possible.
 
@@ -34,7 +34,7 @@ from datetime import UTC, datetime
 
 import zmq
 
-from daemon import wire
+from daemon.runtime import wire
 
 __all__ = [
     "FORMAT",

@@ -17,7 +17,7 @@ results; answer nothing more on the control socket and close it; write a checkpo
 unlock the state folder; close the publisher with its linger so queued predictions still
 leave; stop the metrics server; terminate the context. Signal handlers only queue an event
 and wake the poller; the loop acts on it. A failed write or fsync of the state folder
-(:class:`daemon.store.DurabilityError`) stops the loop; :meth:`Service.run` then returns
+(:class:`daemon.runtime.store.DurabilityError`) stops the loop; :meth:`Service.run` then returns
 ``EXIT_DURABILITY``.
 """
 
@@ -40,14 +40,20 @@ from prometheus_client import CollectorRegistry, start_http_server
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from zmq.utils.monitor import recv_monitor_message
 
-from daemon import wire
-from daemon.cli import EXIT_DURABILITY, EXIT_OK
 from daemon.config import ModelConfig
-from daemon.metrics import PREFIX, ServiceCollector
-from daemon.models import ModelRunner, PredBatch, Rejected
-from daemon.relay import select
-from daemon.security import DOMAIN_CONTROL, DOMAIN_PUBLISH, Security, check_binds
-from daemon.store import DurabilityError, Recovery, StateDir, StoreError
+from daemon.exitcodes import EXIT_DURABILITY, EXIT_OK
+from daemon.runtime import wire
+from daemon.runtime.metrics import PREFIX, ServiceCollector
+from daemon.runtime.runner import ModelRunner, PredBatch, Rejected
+from daemon.runtime.security import (
+    DOMAIN_CONTROL,
+    DOMAIN_PUBLISH,
+    CurveKeys,
+    Security,
+    check_binds,
+)
+from daemon.runtime.store import DurabilityError, Recovery, StateDir, StoreError
+from daemon.sharding import select
 
 log = logging.getLogger("posteriord")
 
@@ -87,7 +93,7 @@ class RateLimitedLog:
 
 
 class Service:
-    """posteriord's runner around :class:`daemon.models.ModelRunner` objects."""
+    """posteriord's runner around :class:`daemon.runtime.runner.ModelRunner` objects."""
 
     def __init__(self, config, *, registry: CollectorRegistry | None = None,
                  context: zmq.Context | None = None, config_path: str | None = None,
@@ -157,10 +163,10 @@ class Service:
     def open_state(self) -> None:
         """Lock the state folder, recover, replay, adopt the config, write a checkpoint.
 
-        Raises :class:`daemon.store.LockedError` when another process holds the folder,
-        :class:`daemon.store.CorruptionError` for a damaged log under ``on_corruption =
+        Raises :class:`daemon.runtime.store.LockedError` when another process holds the folder,
+        :class:`daemon.runtime.store.CorruptionError` for a damaged log under ``on_corruption =
         "refuse"``, :class:`StateError` for content that cannot be used, and other
-        :class:`daemon.store.StoreError` (including ``DurabilityError``) for file errors.
+        :class:`daemon.runtime.store.StoreError` (including ``DurabilityError``) for file errors.
         """
         if self.store is not None:
             return
@@ -361,7 +367,7 @@ class Service:
         """Open the state folder (:meth:`open_state`), then the sockets."""
         self.open_state()
         d = self.config.daemon
-        keys = d.curve_keys()
+        keys = CurveKeys.from_config(d)
         check_binds({"publish": d.publish, "control": d.control}, keys)
         ctx = self._ctx = self._ctx or zmq.Context()
         # the authenticator must run before a CURVE server socket binds

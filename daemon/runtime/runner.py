@@ -20,8 +20,8 @@ from dataclasses import dataclass, fields, replace
 import numpy as np
 
 from daemon.config import ModelConfig
-from daemon.historian import Aligner
-from daemon.monitor import Monitor
+from daemon.runtime.alignment import Aligner
+from daemon.runtime.monitor import Monitor
 from recursive import OutOfOrderError, Posterior, Prediction
 
 _PREDICTION_FIELDS = tuple(f.name for f in fields(Prediction))

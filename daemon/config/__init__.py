@@ -15,7 +15,6 @@ from __future__ import annotations
 import contextlib
 import difflib
 import hashlib
-import ipaddress
 import json
 import math
 import re
@@ -26,6 +25,8 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from daemon.endpoints import endpoint_problem, is_loopback, split_host_port
+from daemon.sharding import parse_shard
 from recursive import Exponential, Gate, Posterior, RandomWalk, Stabilized
 from recursive.basis import FAMILIES, Basis, Identity, Input, Polynomial
 
@@ -42,7 +43,6 @@ __all__ = [
     "demo_config",
     "describe",
     "format_duration",
-    "is_loopback",
     "load",
     "loads",
     "parse_duration",
@@ -218,64 +218,6 @@ def format_duration(seconds: float) -> str:
     return "".join(out)
 
 
-# ---------------------------------------------------------------------------------- endpoints
-_SCHEMES = ("tcp://", "ipc://", "inproc://")
-
-
-def _split_host_port(text: str) -> tuple[str, str]:
-    if text.startswith("["):
-        host, sep, rest = text[1:].partition("]")
-        if not sep or not rest.startswith(":"):
-            return "", ""
-        return host, rest[1:]
-    host, _, port = text.rpartition(":")
-    return host, port
-
-
-def _endpoint_problem(text: str) -> str | None:
-    """Why ``text`` is not a usable ZeroMQ endpoint, or None if it is."""
-    if not text.startswith(_SCHEMES):
-        return "it must start with tcp://, ipc:// or inproc://"
-    scheme, _, rest = text.partition("://")
-    if not rest:
-        return "nothing follows the scheme"
-    if scheme == "tcp":
-        # a connect may name a source address first: tcp://src;host:port
-        rest = rest.rpartition(";")[2]
-        host, port = _split_host_port(rest)
-        if not host:
-            return "a tcp endpoint needs host:port"
-        if port != "*" and not (port.isdigit() and 1 <= int(port) <= 65535):
-            return "the port must be 1..65535 (or * to bind any)"
-    return None
-
-
-def is_loopback(endpoint: str) -> bool:
-    """True if ``endpoint`` cannot be reached from another machine.
-
-    ``ipc://`` and ``inproc://`` endpoints, and ``tcp://`` on ``127.0.0.0/8``, ``[::1]`` or
-    ``localhost``. Wildcards (``tcp://*:5556``), interface names and other addresses are not.
-
-    Raises
-    ------
-    ValueError
-        If ``endpoint`` is not a string starting with tcp://, ipc:// or inproc://.
-    """
-    if not isinstance(endpoint, str) or not endpoint.startswith(_SCHEMES):
-        raise ValueError(f"endpoint must start with tcp://, ipc:// or inproc://, "
-                         f"got {endpoint!r}")
-    scheme, _, rest = endpoint.partition("://")
-    if scheme != "tcp":
-        return True
-    host, _ = _split_host_port(rest.rpartition(";")[2])
-    if host.lower() == "localhost":
-        return True
-    try:
-        return ipaddress.ip_address(host).is_loopback
-    except ValueError:
-        return False
-
-
 # ---------------------------------------------------------------------------------- value kinds
 @dataclass(frozen=True)
 class _Kind:
@@ -317,8 +259,6 @@ def _nonempty_string(v: Any) -> str:
 
 
 def _shard(v: Any) -> str:
-    from daemon.relay import parse_shard
-
     if v == "":
         return v
     try:
@@ -354,7 +294,7 @@ _ENDPOINT_EXAMPLE = '"tcp://127.0.0.1:5556", "ipc:///run/posteriord.sock" or "in
 
 
 def _endpoint(v: Any) -> str:
-    if not isinstance(v, str) or _endpoint_problem(v) is not None:
+    if not isinstance(v, str) or endpoint_problem(v) is not None:
         raise _Bad(f"a ZeroMQ endpoint like {_ENDPOINT_EXAMPLE}")
     return v
 
@@ -363,7 +303,7 @@ def _endpoints(v: Any) -> tuple[str, ...]:
     if not isinstance(v, list) or not v:
         raise _Bad('a non-empty array of ZeroMQ endpoints like ["tcp://127.0.0.1:5555"]')
     for x in v:
-        if not isinstance(x, str) or _endpoint_problem(x) is not None:
+        if not isinstance(x, str) or endpoint_problem(x) is not None:
             raise _Bad(f"an array of ZeroMQ endpoints, each like {_ENDPOINT_EXAMPLE}")
     return tuple(v)
 
@@ -373,7 +313,7 @@ def _host_port(v: Any) -> str:
         raise _Bad('"host:port" like "127.0.0.1:9108", or "" to disable')
     if v == "":
         return v
-    host, port = _split_host_port(v)
+    host, port = split_host_port(v)
     if not host or not (port.isdigit() and 1 <= int(port) <= 65535):
         raise _Bad('"host:port" like "127.0.0.1:9108" (port 1..65535), or "" to disable')
     return v
@@ -850,16 +790,7 @@ class DaemonConfig:
     curve_admins: str = _default("daemon", "curve_admins")
     curve_feed_server_key: str = _default("daemon", "curve_feed_server_key")
 
-    def curve_keys(self):
-        """The CURVE key settings as :class:`daemon.security.CurveKeys`."""
-        from daemon.security import CurveKeys
-
-        return CurveKeys(self.curve_secret_key or None, self.curve_clients or None,
-                         self.curve_admins or None, self.curve_feed_server_key or None)
-
     def shard_spec(self) -> tuple[int, int] | None:
-        from daemon.relay import parse_shard
-
         return parse_shard(self.shard) if self.shard else None
 
 
@@ -1277,7 +1208,7 @@ def load(path: str | Path) -> Config:
 
 def demo_config() -> Config:
     """The built-in demo configuration (the packaged ``daemon/demo.toml``)."""
-    text = resources.files("daemon").joinpath("demo.toml").read_text(encoding="utf-8")
+    text = resources.files("daemon.config").joinpath("demo.toml").read_text(encoding="utf-8")
     return loads(text, "<demo>")
 
 
@@ -1380,7 +1311,7 @@ _INTRO = """\
 regenerate, do not edit by hand. -->
 
 posteriord reads one TOML file (`posteriord run --config FILE`; `posteriord check-config
-FILE` checks it and prints what it understood). `daemon/demo.toml` is a complete example.
+FILE` checks it and prints what it understood). `daemon/config/demo.toml` is a complete example.
 
 * Durations are a number of seconds or a string of `<number><unit>` parts, largest unit
   first, each unit once: `"250ms"`, `"90s"`, `"5m"`, `"36h"`, `"1.5d"`, `"2w"`, `"1h30m"`.

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
-from daemon.backtest import Track, collect, read_predictions
+from daemon.workbench.backtest import Track, collect, read_predictions
 from recursive.detect import Cusum
 
 __all__ = ["calibration", "cusum_path", "load_track", "report", "staleness"]
@@ -35,10 +35,10 @@ _MAX_POINTS = 6000
 
 
 def load_track(path, model: str | None = None, *, level: float | None = None) -> Track:
-    """A `Track` from a predictions CSV (`daemon.backtest`) or a record file (`daemon.live`)."""
+    """A `Track` from a predictions CSV (`backtest`) or a record file (`live`)."""
     with open(path, "rb") as fh:
         head = fh.read(64)
-    from daemon import live
+    from daemon.workbench import live
 
     if head.startswith(live.FORMAT.encode()):
         msgs = [(topic, body) for _, topic, body in live.RecordReader(path)]

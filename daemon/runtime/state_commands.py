@@ -19,8 +19,7 @@ import os
 import sys
 from datetime import UTC, datetime
 
-from daemon import store as st
-from daemon.cli import (
+from daemon.exitcodes import (
     EXIT_CONFIG,
     EXIT_CORRUPT,
     EXIT_DURABILITY,
@@ -28,13 +27,14 @@ from daemon.cli import (
     EXIT_OK,
     EXIT_RUNTIME,
 )
+from daemon.runtime import store as st
 
 EXPORT_SCHEMA = "posteriord.model-export/1"
 
 
 def start_failure(exc: BaseException) -> tuple[int, str]:
     """The exit code and message of a daemon that could not start because of ``exc``."""
-    from daemon.service import StateError
+    from daemon.runtime.service import StateError
 
     if isinstance(exc, st.LockedError):
         return EXIT_LOCKED, f"{exc}; one daemon per state folder"
@@ -80,7 +80,7 @@ def _err(text: str) -> None:
 
 # ---------------------------------------------------------------------------------- inspect
 def describe_folder(path) -> dict:
-    """:func:`daemon.store.inspect` plus the models of the newest valid checkpoint and a
+    """:func:`daemon.runtime.store.inspect` plus the models of the newest valid checkpoint and a
     summary of the log records after it. Reads only."""
     info = st.inspect(path)
     info["models"] = []
@@ -259,7 +259,7 @@ def cmd_inspect(args) -> int:
 def _open_stopped(path: str, *, create: bool):
     """A recovered StateDir and a Service holding its state, or (None, exit code)."""
     from daemon.config import Config, DaemonConfig
-    from daemon.service import Service, StateError
+    from daemon.runtime.service import Service, StateError
 
     if not create and not os.path.isdir(path):
         _err(f"no state folder at {path}")
@@ -348,7 +348,7 @@ def read_export(path: str) -> dict:
 
 
 def cmd_import(args) -> int:
-    from daemon.models import ModelRunner
+    from daemon.runtime.runner import ModelRunner
 
     try:
         body = read_export(args.file)
