@@ -13,6 +13,7 @@ from scipy.linalg import lapack
 from recursive import _linalg
 from recursive._linalg import full_rank, solve_upper
 from recursive.forgetting import Forgetting, Prior, Stabilized, forgetting_from_dict
+from recursive.quantile import t_quantile
 
 _dtrtri = lapack.dtrtri
 
@@ -114,7 +115,7 @@ class Prediction:
     def interval(self, level: float = 0.95):
         """Central predictive interval ``(lo, hi)`` with probability ``level``."""
         level = _check_level(level)
-        q = _quantile(np.asarray(self.dof, float), 0.5 + level / 2.0)
+        q = t_quantile(np.asarray(self.dof, float), 0.5 + level / 2.0)
         half = q * np.asarray(self.scale, float)
         lo, hi = np.asarray(self.mean) - half, np.asarray(self.mean) + half
         if np.ndim(self.mean) == 0:
@@ -174,54 +175,6 @@ def _check_level(level) -> float:
     if not 0.0 < lv < 1.0:
         raise ValueError(f"level must be a number in (0, 1), got {level!r}")
     return lv
-
-
-def _quantile(dof, p):
-    """Standard-normal or Student-t quantile, elementwise over ``dof``.
-
-    A batch predicted between two lab results has degrees of freedom that differ only
-    slightly (forgetting moves them slowly). For ``dof >= 2`` the quantile is then
-    interpolated, piecewise quadratically in ``1/dof``, through exact values at the ends
-    and middle of segments of relative width ``min(1e-2, 1.2e-5 * dof_min)``. The error of
-    such an interpolation grows as the width cubed and falls as ``dof**-3``; with these
-    widths it stays below about 2e-14 relative for probabilities up to 0.999995 (checked
-    against ``scipy.special.stdtrit`` in the tests), and a batch needs a few inversions
-    instead of one per row.
-    """
-    dof = np.asarray(dof, float)
-    if dof.ndim == 1 and dof.size:
-        lo, hi = dof.min(), dof.max()
-        if lo == hi == math.inf:
-            return np.full(dof.shape, float(special.ndtri(p)))
-        if lo >= 1.0 and hi == lo:
-            return np.full(dof.shape, float(special.stdtrit(lo, p)))
-        if lo >= 2.0 and hi < math.inf:
-            xa, xb = 1.0 / hi, 1.0 / lo
-            m = math.ceil((xb - xa) / (xa * min(_SEGMENT_MAX, _SEGMENT * lo)))
-            if m == 1 and dof.size > 3:
-                q0, q1, q2 = special.stdtrit(np.array([hi, 2.0 / (xa + xb), lo]), p)
-                s = (1.0 / dof - (xa + xb) / 2.0) * (2.0 / (xb - xa))
-                # quadratic Lagrange interpolation on the nodes s = -1, 0, 1
-                return q1 + s * ((q2 - q0) / 2.0 + s * ((q2 - 2.0 * q1 + q0) / 2.0))
-            if 2 * m + 1 < dof.size:
-                nodes = xa + (xb - xa) * np.arange(2 * m + 1) / (2 * m)
-                q = special.stdtrit(1.0 / nodes, p)
-                u = (1.0 / dof - xa) / (xb - xa) * m
-                seg = np.minimum(u.astype(np.intp), m - 1)
-                s = 2.0 * (u - seg) - 1.0
-                q0, q1, q2 = q[2 * seg], q[2 * seg + 1], q[2 * seg + 2]
-                return q1 + s * (q2 - q0) / 2.0 + s * s * (q2 - 2.0 * q1 + q0) / 2.0
-        if lo > 0 and np.isfinite(hi):
-            return special.stdtrit(dof, p)
-    with np.errstate(invalid="ignore"):
-        qt = special.stdtrit(np.where(np.isfinite(dof) & (dof > 0), dof, 1.0), p)
-    return np.where(np.isinf(dof), special.ndtri(p), np.where(dof > 0, qt, np.nan))
-
-
-# relative width of an interpolation segment in 1/dof, per unit of the smallest dof, and
-# its cap (see _quantile)
-_SEGMENT = 1.2e-5
-_SEGMENT_MAX = 1e-2
 
 
 def _to_normal(r: float, dof: float) -> float:

@@ -170,32 +170,52 @@ def test_bad_arguments_raise_value_error_with_the_value():
         Posterior.from_state(state)
 
 
-def test_batch_quantile_interpolation_matches_scipy_stdtrit():
-    """The interpolated Student-t quantile of a batch equals scipy.special.stdtrit."""
+def test_quantile_matches_scipy_stdtrit():
+    """The interpolated Student-t quantile equals scipy.special.stdtrit (reference)."""
     from scipy import special
 
-    from recursive.posterior import _quantile
+    from recursive.quantile import t_quantile
 
     rng = np.random.default_rng(5)
     ps = (0.55, 0.975, 0.9995, 0.999995)
-    for base in (1.5, 2.0, 4.0, 37.0, 2e3, 1e6):  # one segment, or exact below dof 2
-        for spread in (1e-6, 1e-4):
+    for base in (1.5, 2.0, 4.0, 37.0, 2e3, 1e6):  # exact below dof 2, interpolated above
+        for spread in (1e-6, 1e-4, 1e-2):
             dof = base * (1 + spread * rng.random(100))
             for p in ps:
-                np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p),
+                np.testing.assert_allclose(t_quantile(dof, p), special.stdtrit(dof, p),
                                            rtol=5e-14)
-    for k in (1, 2, 3, 4, 5, 9):  # small batches: exact below four rows, interpolated above
+    for k in (1, 2, 3, 4, 5, 9):  # the few-row path and the array path
         dof = 25.0 * (1 + 1e-5 * rng.random(k))
-        np.testing.assert_allclose(_quantile(dof, 0.975), special.stdtrit(dof, 0.975),
+        np.testing.assert_allclose(t_quantile(dof, 0.975), special.stdtrit(dof, 0.975),
                                    rtol=5e-14)
-    for spread in (1e-3, 1e-2):  # wider batches: several interpolation segments
-        for base in (1.0, 2.0, 3.0, 40.0, 5e3):
-            dof = base * (1 + spread * rng.random(400))
-            for p in ps:
-                np.testing.assert_allclose(_quantile(dof, p), special.stdtrit(dof, p),
-                                           rtol=5e-14)
-    wide = np.linspace(2.0, 50.0, 40)  # too spread for interpolation: exact path
-    np.testing.assert_allclose(_quantile(wide, 0.975), special.stdtrit(wide, 0.975), rtol=1e-14)
+    for lo, hi in ((2.0, 3.0), (3.0, 900.0), (800.0, 1e4), (1e4, 1e12), (1e12, 1e300)):
+        dof = np.exp(rng.uniform(np.log(lo), np.log(hi), 3000))
+        for p in ps:
+            np.testing.assert_allclose(t_quantile(dof, p), special.stdtrit(dof, p),
+                                       rtol=5e-14)
+    odd = np.array([np.inf, 1.0, 0.5, 0.0, -1.0, np.nan])
+    want = [special.ndtri(0.975), special.stdtrit(1.0, 0.975), special.stdtrit(0.5, 0.975),
+            np.nan, np.nan, np.nan]
+    np.testing.assert_allclose(t_quantile(odd, 0.975), want, rtol=1e-15)
+
+
+def test_quantile_of_a_row_does_not_depend_on_its_batch():
+    """Every published interval must be a function of its own row: same bits alone or in
+    any batch (one grid cell or many, few rows or many)."""
+    from recursive.quantile import t_quantile
+
+    rng = np.random.default_rng(11)
+    for spread in (1e-7, 1e-3, 0.5, 50.0):
+        dof = 2.0 + 40.0 * (1 + spread * rng.random(300))
+        dof[::7] = np.inf
+        dof[::11] = 1.5
+        whole = t_quantile(dof, 0.975)
+        alone = np.array([t_quantile(dof[i:i + 1], 0.975)[0] for i in range(dof.size)])
+        assert whole.tobytes() == alone.tobytes()
+        for size in (2, 5, 64):
+            parts = np.concatenate([t_quantile(dof[i:i + size], 0.975)
+                                    for i in range(0, dof.size, size)])
+            assert parts.tobytes() == whole.tobytes()
 
 
 def test_recursive_imports_no_daemon_dependency():
