@@ -946,9 +946,9 @@ def test_blocks_of_one_wake_up_are_predicted_together_and_answered_one_by_one(ru
     for name, svc in (("one", one), ("together", together)):
         runner = svc.runners[MODEL]
 
-        def counted(*args, _predict=runner.predict, _name=name):
+        def counted(*args, _predict=runner.predict, _name=name, **kw):
             calls[_name] += 1
-            return _predict(*args)
+            return _predict(*args, **kw)
         runner.predict = counted
     for frames in feed:
         one.process([frames])

@@ -189,6 +189,58 @@ class Monitor:
             act["stale"] = (1, clock - last_lab_t, cfg.stale_after)
         return self._evaluate(clock)
 
+    def on_prediction_rows(self, ts, X: np.ndarray, std: np.ndarray, leverage: np.ndarray,
+                           last_lab_t: float | None) -> tuple[list | None, list]:
+        """:meth:`on_predictions` for each row in turn, as if each had come alone.
+
+        Single-sample messages get one detector step each, whatever wake-up they were taken
+        in, so the trust published with them is a function of the feed alone. Returns
+        ``(trust, marks)``: the trust state after each row (None when it is the same for all
+        rows, i.e. the current state) and ``[(row, events)]`` for rows after which events
+        were raised.
+
+        The common batch has nothing active in any row and no reason held; then a step changes
+        nothing but the latest statistics, and only the last row is stepped.
+        """
+        k = len(ts)
+        if k == 1 or not self._quiet_rows(ts, X, std, leverage, last_lab_t):
+            trust, marks = [], []
+            for i in range(k):
+                ev = self.on_predictions(ts[i], X[i:i + 1], std[i:i + 1], leverage[i:i + 1],
+                                         last_lab_t)
+                if ev:
+                    marks.append((i, ev))
+                trust.append(self.trust.state)
+            return trust, marks
+        ev = self.on_predictions(ts[-1], X[-1:], std[-1:], leverage[-1:], last_lab_t)
+        assert not ev  # _quiet_rows promised that nothing changes
+        return None, []
+
+    def _quiet_rows(self, ts, X, std, leverage, last_lab_t) -> bool:
+        """True if no row would make a reason active and none is active or held now."""
+        if self.lab_active or self.trust.level or self.trust.reasons:
+            return False
+        cfg = self.cfg
+        if not np.isfinite(std).all():
+            return False  # inf or nan rows: rare, take the exact path
+        if cfg.std_limit is not None and float(std.max()) > cfg.std_limit:
+            return False
+        if cfg.std_ratio > 0:
+            # a division by the same positive baseline is monotone: the largest std decides
+            base = self.std.baseline
+            if math.isfinite(base) and float(std.max()) / base > cfg.std_ratio:
+                return False
+        if cfg.leverage_limit > 0 and float(leverage.max()) > cfg.leverage_limit:
+            return False
+        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs) and \
+                float(self.region.distances(X).max()) > cfg.region_limit:
+            return False
+        if self.basis.rows_out_of_range(X):
+            return False
+        if last_lab_t is not None and ts[-1] - last_lab_t > cfg.stale_after:
+            return False
+        return True
+
     def _evaluate(self, clock: float) -> list[dict]:
         if self.clock is not None and clock < self.clock:
             clock = self.clock  # lab results carry older sample times; the clock never goes back

@@ -55,6 +55,10 @@ class PredBatch:
     hi: np.ndarray
     dof: np.ndarray
     status: list
+    # trust after each row (single samples stepped one by one), or None: ``runner.trust``
+    trust: list | None = None
+    # [(row, events)]: alert events to publish right after that row's prediction
+    marks: tuple | list = ()
 
 
 class ModelRunner:
@@ -172,11 +176,24 @@ class ModelRunner:
             return "stale"
         return "learning"
 
-    def predict(self, ts: list, rows, ids: list) -> PredBatch:
-        """Vectorized predictions for feature samples already buffered."""
+    def predict(self, ts: list, rows, ids: list, *, singles: bool = False) -> PredBatch:
+        """Vectorized predictions for feature samples already buffered.
+
+        ``singles``: the rows came as single-sample messages. Each then gets its own detector
+        step and trust, and its numbers must not depend on the other rows: where the
+        posterior cannot promise that for a batch (`Posterior.rowwise`), rows are predicted
+        one at a time.
+        """
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
-        return self._finish(ts, t, X, ids, self.post.predict(self.basis(X), t=t))
+        if singles and len(ts) > 1 and not self.post.rowwise:
+            parts = [self.post.predict(self.basis(X[i:i + 1]), t=t[i:i + 1])
+                     for i in range(len(ts))]
+            pred = Prediction(**{f: np.concatenate([getattr(p, f) for p in parts])
+                                 for f in _PREDICTION_FIELDS})
+        else:
+            pred = self.post.predict(self.basis(X), t=t)
+        return self._finish(ts, t, X, ids, pred, singles)
 
     def predict_blocks(self, blocks: list) -> Iterator[PredBatch]:
         """:meth:`predict` of several blocks ``(ts, X, ids)``, yielding one result per block.
@@ -203,8 +220,14 @@ class ModelRunner:
             yield self._finish(ts, t[sl], Xb, ids, part)
 
     def _finish(self, ts: list, t: np.ndarray, X: np.ndarray, ids: list,
-                pred: Prediction) -> PredBatch:
-        if self.monitor is not None:
+                pred: Prediction, singles: bool = False) -> PredBatch:
+        trust, marks = None, ()
+        if self.monitor is None:
+            pass
+        elif singles:
+            trust, marks = self.monitor.on_prediction_rows(ts, X, pred.std, pred.leverage,
+                                                           self.last_lab_t)
+        else:
             self.alerts += self.monitor.on_predictions(ts[-1], X, pred.std, pred.leverage,
                                                        self.last_lab_t)
         lo, hi = pred.interval(self.cfg.level)
@@ -220,7 +243,8 @@ class ModelRunner:
         self.n_predictions += len(ts)
         self.last_mean = float(pred.mean[-1])
         self.last_std = float(pred.std[-1])
-        return PredBatch(t, ids, pred.mean, pred.std, pred.var, lo, hi, pred.dof, status)
+        return PredBatch(t, ids, pred.mean, pred.std, pred.var, lo, hi, pred.dof, status,
+                         trust, marks)
 
     # ------------------------------------------------------------------ lab
     def match(self, t: float, ident) -> tuple[float, tuple]:

@@ -70,6 +70,24 @@ COMMANDS = ("ping", "status", "posterior", "detectors", "acknowledge", "freeze",
             "reset", "checkpoint", "reload")
 
 
+class _Pending:
+    """A model's feature samples of one wake-up, waiting to be predicted and answered.
+
+    ``ts``/``rows``/``ids`` are single samples (or the rows of a block holding lab values),
+    ``blocks`` whole feature blocks ``(t, X, ids, has_id, packed)``; ``block`` tells which
+    kind of message the buffered rows came in, so they are answered in kind.
+    """
+
+    __slots__ = ("ts", "rows", "ids", "blocks", "block")
+
+    def __init__(self, block: bool):
+        self.ts: list = []
+        self.rows: list = []
+        self.ids: list = []
+        self.blocks: list = []
+        self.block = block
+
+
 class RateLimitedLog:
     """Log a (model, reason) at most once per ``interval`` seconds, counting the rest."""
 
@@ -529,7 +547,7 @@ class Service:
         """
         max_bytes = self.config.daemon.max_message_bytes
         specs = {name: r.spec for name, r in self.runners.items()}
-        pending: dict[str, list] = {}
+        pending: dict[str, _Pending] = {}
         if batch:
             self._dirty = True  # the feature buffers changed: the next checkpoint is due
         for frames in batch:
@@ -557,10 +575,10 @@ class Service:
             runner.note_seq(msg.seq)
         seg = pending.get(msg.model)
         if seg is None:
-            seg = pending[msg.model] = [[], [], [], [], msg.block]
-        elif seg[4] != msg.block:
+            seg = pending[msg.model] = _Pending(msg.block)
+        elif seg.block != msg.block:
             self._flush(runner, seg)
-            seg[4] = msg.block
+            seg.block = msg.block
         if not msg.block and not msg.has_y:
             # the common message: one feature sample, buffered for a batched prediction
             self._buffer(runner, seg, msg.t[0], msg.x[0], msg.ids[0])
@@ -570,7 +588,7 @@ class Service:
             # the common block: features only, in order. Buffered with the model's other
             # such blocks of this wake-up, predicted with them in one call and answered one
             # message per block, as single samples are.
-            seg[3].append((msg.t, msg.x, msg.ids, msg.has_id, msg.packed))
+            seg.blocks.append((msg.t, msg.x, msg.ids, msg.has_id, msg.packed))
             return
         parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
@@ -587,7 +605,7 @@ class Service:
                 self._publish(runner, ts, ids, _concat([p[2] for p in parts]), True,
                               any(i is not None for i in ids), msg.packed)
 
-    def _buffer(self, runner: ModelRunner, seg: list, t: float, row, ident) -> bool:
+    def _buffer(self, runner: ModelRunner, seg: _Pending, t: float, row, ident) -> bool:
         """Buffer one feature sample for the next batched prediction; False if rejected."""
         try:
             runner.add_features(t, row, ident)
@@ -595,35 +613,36 @@ class Service:
             runner.rejected[exc.reason] += 1
             self._rlog.warn(runner.name, exc.reason, exc.detail)
             return False
-        seg[0].append(t)
-        seg[1].append(row)
-        seg[2].append(ident)
+        seg.ts.append(t)
+        seg.rows.append(row)
+        seg.ids.append(ident)
         return True
 
-    def _flush_blocks(self, runner: ModelRunner, seg: list) -> None:
+    def _flush_blocks(self, runner: ModelRunner, seg: _Pending) -> None:
         """Predict the buffered feature blocks of a model (together where that changes no
         bit of the result: `ModelRunner.predict_blocks`); answer each block."""
-        blocks, seg[3] = seg[3], []
+        blocks, seg.blocks = seg.blocks, []
         # each result is published before the next is asked for (see predict_blocks)
         batches = runner.predict_blocks([(ts, X, ids) for ts, X, ids, _h, _p in blocks])
         for (ts, _X, ids, has_id, packed), batch in zip(blocks, batches, strict=True):
             self._publish(runner, ts, ids, batch, True, has_id, packed)
 
-    def _flush(self, runner: ModelRunner, seg: list, parts: list | None = None) -> None:
+    def _flush(self, runner: ModelRunner, seg: _Pending, parts: list | None = None) -> None:
         # buffered blocks first: everything published or learned after a flush must come
         # after the predictions of what was buffered before it
-        if seg[3]:
+        if seg.blocks:
             self._flush_blocks(runner, seg)
-        ts, rows, ids = seg[0], seg[1], seg[2]
+        ts, rows, ids = seg.ts, seg.rows, seg.ids
         if not ts:
             return
-        batch = runner.predict(ts, rows, ids)
+        singles = parts is None and not seg.block
+        batch = runner.predict(ts, rows, ids, singles=singles)
         if parts is not None:
             # a block predicted in pieces around its lab values still gets one message
             parts.append((ts, ids, batch))
         else:
-            self._publish(runner, ts, ids, batch, seg[4], any(i is not None for i in ids))
-        seg[0], seg[1], seg[2] = [], [], []
+            self._publish(runner, ts, ids, batch, seg.block, any(i is not None for i in ids))
+        seg.ts, seg.rows, seg.ids = [], [], []
 
     def _publish(self, runner: ModelRunner, ts: list, ids: list, batch, block: bool,
                  has_id: bool, packed: bool = False) -> None:
@@ -655,13 +674,20 @@ class Service:
             status = batch.status
             emit = self._emitter()
             packb = wire.packb
+            trusts = batch.trust
+            marks = dict(batch.marks)
             for i, t in enumerate(ts):
                 body = {"t": t, "mean": mean[i], "std": std[i], "var": var[i], "lo": lo[i],
                         "hi": hi[i], "level": level, "dof": dof[i], "status": status[i],
-                        "trust": trust}
+                        "trust": trust if trusts is None else trusts[i]}
                 if has_id and ids[i] is not None:
                     body["id"] = ids[i]
                 emit(topic, packb(body))
+                if marks and i in marks:
+                    # each sample's alerts right after its own prediction, as if it had
+                    # come alone
+                    runner.alerts += marks[i]
+                    self._alerts(runner)
         if runner.alerts:
             self._alerts(runner)
 
