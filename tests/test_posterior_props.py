@@ -3,16 +3,19 @@ argument checking and the import boundary."""
 
 from __future__ import annotations
 
+import ast
 import json
 import math
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+import recursive
 from recursive import Exponential, Gate, OutOfOrderError, Posterior, RandomWalk, Stabilized
 
 POLICIES = [None, Stabilized(25.0), Exponential(40.0), RandomWalk(1e-3, noise_half_life=60.0)]
@@ -219,9 +222,35 @@ def test_quantile_of_a_row_does_not_depend_on_its_batch():
 
 
 def test_recursive_imports_no_daemon_dependency():
-    code = ("import sys, recursive, recursive.basis, recursive.forgetting, recursive.detect\n"
+    # every module of the package, so that a new file is covered without editing this test
+    code = ("import importlib, pkgutil, sys, recursive\n"
+            "names = [m.name for m in pkgutil.walk_packages(recursive.__path__, 'recursive.')]\n"
+            "for name in names:\n"
+            "    importlib.import_module(name)\n"
+            "assert 'recursive.detect.trust' in names, names\n"
             "bad = {'zmq', 'msgpack', 'prometheus_client', 'daemon'} & set(sys.modules)\n"
             "print(sorted(bad))\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True).stdout
     assert out.strip() == "[]"
+
+
+def test_recursive_sources_import_only_numpy_scipy_and_stdlib():
+    root = Path(recursive.__file__).parent
+    files = sorted(root.rglob("*.py"))
+    assert root / "detect" / "trust.py" in files
+    allowed = set(sys.stdlib_module_names) | {"numpy", "scipy", "recursive", "__future__"}
+    found = {}
+    for path in files:
+        for node in ast.walk(ast.parse(path.read_text(), str(path))):
+            if isinstance(node, ast.Import):
+                tops = [a.name.split(".")[0] for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.level == 0:
+                tops = [node.module.split(".")[0]]
+            else:
+                continue
+            for top in tops:
+                found.setdefault(top, set()).add(path.relative_to(root).as_posix())
+    assert {"numpy", "scipy"} <= set(found)
+    outside = {top: sorted(where) for top, where in found.items() if top not in allowed}
+    assert outside == {}
