@@ -1,93 +1,4 @@
-"""Durable state folder: a write-ahead log (WAL) of records plus periodic checkpoints.
-
-No service logic lives here: records and checkpoint bodies are dicts of plain data handed in by
-the caller and handed back, unchanged, by :meth:`StateDir.recover`. Encoding goes through
-:mod:`daemon.runtime.wire` (``wire.pack`` / ``wire.unpack``). Not thread-safe: one loop owns a
-:class:`StateDir`.
-
-Folder layout
--------------
-::
-
-    LOCK                             flock()ed by the owning process, which writes its pid there
-    wal-<first seq>.log              WAL segments (sequence numbers written with 16 digits)
-    checkpoint-<seq>.ckpt            checkpoints: the newest and the previous one
-    checkpoint-<seq>.ckpt.tmp        a checkpoint being written; removed by the next recovery
-    <file>.corrupt-<n>               a file found corrupt and moved aside
-    wal-<seq>.log.corrupt-<n>.accepted   a moved-aside segment whose loss was accepted
-    wal-<seq>.log.dropped-<n>        a readable segment after a corrupt one, dropped with it
-
-The folder is created with mode 0700 and every file with mode 0600. A folder that group or
-others may write to is refused; one they may read is accepted with a note.
-
-Formats (all integers little-endian u32)
-----------------------------------------
-Record: ``[length][crc32 of payload][payload]`` with
-``payload = wire.pack({"seq": n, **record})``; ``"seq"`` is therefore the first key of the
-payload map, a property the reader uses to find record starts after damage.
-
-Checkpoint file: ``b"PSDCKPT1" [length][crc32 of payload][payload]`` with
-``payload = wire.pack({"seq": n, "body": body})`` and nothing after it. The magic carries the
-format version.
-
-Sequence numbers start at 1 and are contiguous. A checkpoint with sequence number ``n``
-covers records ``1..n`` (``n`` is the last record appended before it; 0 when there was none).
-
-Durability
-----------
-``fsync="always"``: :meth:`StateDir.append` returns only after the record is fsynced.
-``fsync="group"``: records are written to the file at once (a crash of the process loses
-nothing) but fsynced by :meth:`StateDir.maybe_sync`, at most once per ``group_ms``; after a power
-loss up to ``group_ms`` worth of records may be missing. A segment is fsynced before the next one
-is created, the folder is fsynced after a file is created or renamed, and a checkpoint is made
-durable by writing a temporary file, fsyncing it, renaming it over its final name and fsyncing
-the folder. Any failed write or fsync raises :class:`DurabilityError` and the
-:class:`StateDir` refuses every later write: after a failed fsync the state of the page cache is
-unknown, so retrying and carrying on could silently lose records.
-
-Torn tail versus corruption
----------------------------
-A record is bad when its header is incomplete, its length is zero or too large, its payload is
-incomplete, its CRC does not match, its payload does not decode to a map with an integer
-``"seq"``, or its ``"seq"`` is not the next one. When a bad record is found the reader looks for
-any later good record in the same segment (a position whose header, CRC and payload are valid
-and whose ``"seq"`` is not below the expected one). None found, in the last segment: a torn
-tail, as left by a crash in the middle of a write; it is reported and the file is truncated to
-the end of the last good record. Otherwise (good records after it, or any bad record in a
-segment that is not the last, or a sequence number missing between segments) the segment is
-corrupt. With ``fsync="group"`` a power loss can in rare cases leave damage before records that
-did reach the disk; that too reads as corruption.
-
-Recovery policies
------------------
-``"refuse"``: a corrupt segment is moved aside (``.corrupt-<n>``) and :class:`CorruptionError`
-is raised. As long as such a moved-aside segment is there, every later recovery with
-``"refuse"`` raises again, so that a restart cannot silently run on without those records.
-
-``"checkpoint"``: the corrupt segment is moved aside with the ``.accepted`` suffix, the
-segments after it are moved aside as ``.dropped-<n>``, and the records from that segment onwards
-are dropped: recovery continues from the checkpoint and the intact segments before the corrupt
-one. Earlier moved-aside segments still waiting for a decision are accepted as well.
-:attr:`Recovery.dropped_after_seq` and the notes say what happened. The records of the corrupt
-segment that precede the damage are dropped too: the segment has been moved aside, so keeping
-them would leave a hole in the WAL for the next recovery. The caller should write a checkpoint
-soon after such a recovery.
-
-Checkpoints: the newest one that reads back intact is used. A corrupt one is moved aside and
-the previous one is used instead (:attr:`Recovery.fallback_checkpoint`); one that cannot be read
-at all (an ``OSError``) is left in place and skipped.
-
-Retention rule
---------------
-After a new checkpoint is durable, every checkpoint file other than it and the previous one is
-deleted. A WAL segment is deleted only when all its records are covered by the *previous*
-checkpoint, the one recovery falls back to if the newest cannot be read: segment ``i`` is
-deleted when a later segment exists and starts at or before ``previous_seq + 1``. With a single
-checkpoint (no previous one) no segment is deleted. The last segment is never deleted. Deleting
-is tidying only: a file that survives a crash or fails to unlink is removed at a later
-checkpoint and is harmless meanwhile. A checkpoint written with no record appended since the
-newest one replaces that file (same name); the previous one stays the fallback.
-"""
+"""The locked state folder: WAL appends, group commit, checkpoints, retention and recovery."""
 
 from __future__ import annotations
 
@@ -95,279 +6,35 @@ import errno
 import fcntl
 import math
 import os
-import re
 import stat
-import struct
 import time
-import zlib
 from dataclasses import dataclass
 
-from daemon.runtime import wire
+from daemon.runtime.store.errors import CorruptionError, DurabilityError, LockedError, StoreError
+from daemon.runtime.store.fs import OsFs
+from daemon.runtime.store.layout import (
+    _ASIDE_RE,
+    _CKPT_RE,
+    _SEG_RE,
+    _TMP_RE,
+    LOCK_NAME,
+    _ckpt_name,
+    _is_pending,
+    _numbered,
+    _seg_name,
+)
+from daemon.runtime.store.records import (
+    decode_checkpoint,
+    encode_checkpoint,
+    encode_record,
+    scan_segment,
+)
 
-__all__ = [
-    "CHECKPOINT_MAGIC",
-    "MAX_RECORD_BYTES",
-    "POLICIES",
-    "CorruptionError",
-    "DurabilityError",
-    "LockedError",
-    "OsFs",
-    "Recovery",
-    "SegmentScan",
-    "StateDir",
-    "StoreError",
-    "decode_checkpoint",
-    "encode_checkpoint",
-    "encode_record",
-    "inspect",
-    "scan_segment",
-]
-
-CHECKPOINT_MAGIC = b"PSDCKPT1"
-MAX_RECORD_BYTES = 64 * 1024 * 1024
 DEFAULT_SEGMENT_BYTES = 16 * 1024 * 1024
 POLICIES = ("refuse", "checkpoint")
 FSYNC_MODES = ("group", "always")
 
-_HEADER = struct.Struct("<II")
-_SEQ_KEY = b"\xa3seq"  # msgpack fixstr "seq", the first key of every record payload
-# map header bytes that may precede it: fixmap (1 byte), map16 (3 bytes), map32 (5 bytes)
-_MAP_HEADERS = ((1, range(0x80, 0x90)), (3, (0xDE,)), (5, (0xDF,)))
 
-_SEG_RE = re.compile(r"wal-(\d{16})\.log")
-_CKPT_RE = re.compile(r"checkpoint-(\d{16})\.ckpt")
-_TMP_RE = re.compile(r"checkpoint-(\d{16})\.ckpt\.tmp")
-_ASIDE_RE = re.compile(r"(?P<base>.+)\.(?P<kind>corrupt|dropped)-(?P<n>\d+)(?P<acc>\.accepted)?")
-LOCK_NAME = "LOCK"
-
-
-# ------------------------------------------------------------------ errors
-class StoreError(Exception):
-    """Something is wrong with the state folder."""
-
-
-class LockedError(StoreError):
-    """Another open file description holds the folder's lock."""
-
-    def __init__(self, path: str, holder_pid: int | None):
-        who = f"process {holder_pid}" if holder_pid is not None else "another process (pid unknown)"
-        super().__init__(f"state folder {path} is locked by {who}")
-        self.path = path
-        self.holder_pid = holder_pid
-
-
-class CorruptionError(StoreError):
-    """A bad record with good ones after it (or missing records) in a WAL segment."""
-
-    def __init__(self, message: str, segment: str, offset: int | None,
-                 moved_to: str | None = None):
-        super().__init__(message)
-        self.segment = segment
-        self.offset = offset
-        self.moved_to = moved_to
-
-
-class DurabilityError(StoreError):
-    """A write or fsync failed; the caller must stop (the folder refuses further writes)."""
-
-
-# ------------------------------------------------------------------ file system hook
-class OsFs:
-    """The file system calls that change the folder; tests pass a subclass that fails on cue."""
-
-    def open(self, path: str, flags: int, mode: int = 0o600) -> int:
-        return os.open(path, flags, mode)
-
-    def write(self, fd: int, data) -> int:
-        return os.write(fd, data)
-
-    def fsync(self, fd: int) -> None:
-        os.fsync(fd)
-
-    def close(self, fd: int) -> None:
-        os.close(fd)
-
-    def truncate(self, fd: int, length: int) -> None:
-        os.ftruncate(fd, length)
-
-    def rename(self, src: str, dst: str) -> None:
-        os.rename(src, dst)
-
-    def unlink(self, path: str) -> None:
-        os.unlink(path)
-
-    def mkdir(self, path: str, mode: int) -> None:
-        os.mkdir(path, mode)
-
-
-# ------------------------------------------------------------------ formats
-def _pack(obj, what: str) -> bytes:
-    try:
-        return wire.pack(obj)
-    except (TypeError, ValueError, OverflowError) as exc:
-        raise ValueError(f"{what} is not plain data: {exc}") from None
-
-
-def encode_record(seq: int, record: dict) -> bytes:
-    """The bytes of one framed WAL record."""
-    if not isinstance(record, dict):
-        raise ValueError(f"a record must be a dict, got {type(record).__name__}")
-    if "seq" in record:
-        raise ValueError(f"a record may not carry its own 'seq' (got {record['seq']!r:.60})")
-    payload = _pack({"seq": seq, **record}, "record")
-    if len(payload) > MAX_RECORD_BYTES:
-        raise ValueError(f"record of {len(payload)} bytes is over the {MAX_RECORD_BYTES} limit")
-    return _HEADER.pack(len(payload), zlib.crc32(payload)) + payload
-
-
-def encode_checkpoint(seq: int, body: dict) -> bytes:
-    """The bytes of one checkpoint file."""
-    if not isinstance(body, dict):
-        raise ValueError(f"a checkpoint body must be a dict, got {type(body).__name__}")
-    payload = _pack({"seq": seq, "body": body}, "checkpoint body")
-    if len(payload) > 0xFFFFFFFF:
-        raise ValueError(f"checkpoint of {len(payload)} bytes does not fit a u32 length")
-    return CHECKPOINT_MAGIC + _HEADER.pack(len(payload), zlib.crc32(payload)) + payload
-
-
-def decode_checkpoint(data: bytes) -> tuple[int, dict]:
-    """``(seq, body)`` of a checkpoint file's bytes; raises :class:`StoreError` if damaged."""
-    data = bytes(data)
-    head = len(CHECKPOINT_MAGIC) + _HEADER.size
-    if len(data) < head:
-        raise StoreError(f"checkpoint too short: {len(data)} bytes")
-    if data[:len(CHECKPOINT_MAGIC)] != CHECKPOINT_MAGIC:
-        raise StoreError(f"checkpoint magic is {data[:8]!r}, expected {CHECKPOINT_MAGIC!r}")
-    length, crc = _HEADER.unpack_from(data, len(CHECKPOINT_MAGIC))
-    if len(data) != head + length:
-        raise StoreError(f"checkpoint is {len(data)} bytes, its header says {head + length}")
-    payload = data[head:]
-    if zlib.crc32(payload) != crc:
-        raise StoreError("checkpoint CRC mismatch")
-    try:
-        obj = wire.unpack(payload, max(length, 1))
-    except wire.WireError as exc:
-        raise StoreError(f"checkpoint payload does not decode: {exc}") from None
-    if not isinstance(obj, dict) or set(obj) != {"seq", "body"}:
-        raise StoreError("checkpoint payload is not a map of 'seq' and 'body'")
-    seq, body = obj["seq"], obj["body"]
-    if type(seq) is not int or seq < 0:
-        raise StoreError(f"checkpoint seq must be a non-negative integer, got {seq!r:.60}")
-    if not isinstance(body, dict):
-        raise StoreError(f"checkpoint body must be a map, got {type(body).__name__}")
-    return seq, body
-
-
-@dataclass(frozen=True)
-class SegmentScan:
-    """What :func:`scan_segment` found in one segment's bytes.
-
-    ``status`` is ``"ok"`` (every byte belongs to a good record), ``"torn"`` (a bad record with
-    no good one after it) or ``"corrupt"`` (a bad record followed by a good one, or a good
-    record with the wrong sequence number). ``good_bytes`` is the end of the last good record
-    before the damage.
-    """
-
-    records: list
-    good_bytes: int
-    size: int
-    status: str
-    bad_offset: int | None
-    reason: str | None
-
-
-def _parse_at(data: bytes, pos: int):
-    """``(record, end)`` of the record at ``pos``, or ``(None, reason)``."""
-    n = len(data)
-    if n - pos < _HEADER.size:
-        return None, "incomplete record header"
-    length, crc = _HEADER.unpack_from(data, pos)
-    if length == 0 or length > MAX_RECORD_BYTES:
-        return None, f"implausible record length {length}"
-    end = pos + _HEADER.size + length
-    if end > n:
-        return None, f"incomplete payload ({n - pos - _HEADER.size} of {length} bytes)"
-    payload = data[pos + _HEADER.size:end]
-    if zlib.crc32(payload) != crc:
-        return None, "CRC mismatch"
-    try:
-        obj = wire.unpack(payload, length)
-    except wire.WireError as exc:
-        return None, f"payload does not decode ({exc})"
-    if not isinstance(obj, dict) or type(obj.get("seq")) is not int:
-        return None, "payload is not a map with an integer 'seq'"
-    return obj, end
-
-
-def _good_record_after(data: bytes, start: int, min_seq: int) -> int | None:
-    """Offset of the first good record at or after ``start`` with ``seq >= min_seq``."""
-    # Candidates are found by the "seq" key every payload starts with, so the cost stays near
-    # a byte search instead of one CRC per offset.
-    q = data.find(_SEQ_KEY, start)
-    while q != -1:
-        for head_len, first_bytes in _MAP_HEADERS:
-            p = q - head_len - _HEADER.size
-            if p >= start and data[q - head_len] in first_bytes:
-                rec, _ = _parse_at(data, p)
-                if rec is not None and rec["seq"] >= min_seq:
-                    return p
-        q = data.find(_SEQ_KEY, q + 1)
-    return None
-
-
-def scan_segment(data: bytes, first_seq: int) -> SegmentScan:
-    """Read the records of one segment whose first record should carry ``first_seq``.
-
-    Never raises on any input; damage is described by the returned :class:`SegmentScan`.
-    """
-    data = bytes(data)
-    n = len(data)
-    pos, expected, records = 0, first_seq, []
-    while pos < n:
-        rec, end = _parse_at(data, pos)
-        if rec is None:
-            reason = end
-            break
-        if rec["seq"] != expected:
-            # a well-formed record out of sequence is never a torn write
-            return SegmentScan(records, pos, n, "corrupt", pos,
-                               f"record has seq {rec['seq']}, expected {expected}")
-        records.append(rec)
-        pos = end
-        expected += 1
-    else:
-        return SegmentScan(records, pos, n, "ok", None, None)
-    later = _good_record_after(data, pos + 1, expected)
-    if later is not None:
-        return SegmentScan(records, pos, n, "corrupt", pos,
-                           f"{reason}; a good record follows at byte {later}")
-    return SegmentScan(records, pos, n, "torn", pos, reason)
-
-
-# ------------------------------------------------------------------ names
-def _seg_name(first_seq: int) -> str:
-    return f"wal-{first_seq:016d}.log"
-
-
-def _ckpt_name(seq: int) -> str:
-    return f"checkpoint-{seq:016d}.ckpt"
-
-
-def _numbered(names, pattern: re.Pattern) -> list[int]:
-    out = []
-    for name in names:
-        m = pattern.fullmatch(name)
-        if m:
-            out.append(int(m.group(1)))
-    return sorted(out)
-
-
-def _is_pending(name: str) -> bool:
-    m = _ASIDE_RE.fullmatch(name)
-    return bool(m and m["kind"] == "corrupt" and not m["acc"] and _SEG_RE.fullmatch(m["base"]))
-
-
-# ------------------------------------------------------------------ recovery result
 @dataclass(frozen=True)
 class Recovery:
     """What :meth:`StateDir.recover` found.
@@ -389,7 +56,6 @@ class Recovery:
     dropped_after_seq: int | None = None
 
 
-# ------------------------------------------------------------------ the folder
 class StateDir:
     """A locked state folder: WAL appends, checkpoints and recovery.
 
@@ -583,7 +249,8 @@ class StateDir:
     def recover(self, policy: str = "refuse") -> Recovery:
         """Load the newest valid checkpoint and the WAL records after it.
 
-        See the module docstring for the torn-tail, corruption and fallback rules.
+        See the :mod:`daemon.runtime.store` docstring for the torn-tail, corruption and fallback
+        rules.
         """
         self._require_open()
         if policy not in POLICIES:
@@ -929,123 +596,3 @@ def _read_pid(fd: int) -> int | None:
     except OSError:
         return None
     return int(text) if text.isdigit() else None
-
-
-# ------------------------------------------------------------------ inspection
-def _flock_holder(lock_path: str) -> tuple[bool | None, int | None]:
-    """Whether a flock is held on ``lock_path`` and by which pid, from ``/proc/locks``.
-
-    Read-only: taking the lock to test it would make a daemon starting at that moment fail.
-    ``(None, None)`` where ``/proc/locks`` is not available.
-    """
-    try:
-        st = os.stat(lock_path)
-    except OSError:
-        return False, None
-    try:
-        with open("/proc/locks") as f:
-            lines = f.read().splitlines()
-    except OSError:
-        return None, None
-    want = (os.major(st.st_dev), os.minor(st.st_dev), st.st_ino)
-    for line in lines:
-        parts = line.split()
-        if "->" in parts or len(parts) < 6 or parts[1] != "FLOCK":
-            continue  # waiters are listed with "->"; only granted flocks count
-        dev = parts[5].split(":")
-        try:
-            key = (int(dev[0], 16), int(dev[1], 16), int(dev[2]))
-            pid = int(parts[4])
-        except (IndexError, ValueError):
-            continue
-        if key == want:
-            return True, pid
-    return False, None
-
-
-def inspect(path) -> dict:
-    """Describe a state folder without changing anything (no lock taken).
-
-    Returns plain data: ``exists``, ``mode``, ``lock`` (``held``, ``pid``, ``pid_in_file``),
-    ``checkpoints`` (``file``, ``seq``, ``bytes``, ``valid``, ``error``), ``segments``
-    (``file``, ``first_seq``, ``last_seq``, ``records``, ``bytes``, ``good_bytes``, ``status``,
-    ``bad_offset``, ``reason``), ``moved_aside`` (``file``, ``bytes``, ``pending``),
-    ``temporary`` and ``other`` file names, and ``newest_valid_checkpoint``.
-    """
-    path = os.path.abspath(os.fspath(path))
-    out: dict = {"path": path, "exists": False, "mode": None, "lock": None, "checkpoints": [],
-                 "segments": [], "moved_aside": [], "temporary": [], "other": [],
-                 "newest_valid_checkpoint": None}
-    try:
-        st = os.stat(path)
-    except FileNotFoundError:
-        return out
-    if not stat.S_ISDIR(st.st_mode):
-        raise ValueError(f"{path} is not a directory")
-    out["exists"] = True
-    out["mode"] = f"{stat.S_IMODE(st.st_mode):04o}"
-    names = sorted(os.listdir(path))
-    lock_path = os.path.join(path, LOCK_NAME)
-    if LOCK_NAME in names:
-        held, pid = _flock_holder(lock_path)
-        try:
-            with open(lock_path, "rb") as f:
-                text = f.read(64).decode("ascii", "replace").strip()
-        except OSError:
-            text = ""
-        out["lock"] = {"held": held, "pid": pid,
-                       "pid_in_file": int(text) if text.isdigit() else None}
-
-    def size(name: str) -> int:
-        try:
-            return os.stat(os.path.join(path, name)).st_size
-        except OSError:
-            return -1
-
-    for seq in _numbered(names, _CKPT_RE):
-        name = _ckpt_name(seq)
-        entry = {"file": name, "seq": seq, "bytes": size(name), "valid": False, "error": None}
-        try:
-            with open(os.path.join(path, name), "rb") as f:
-                cseq, _ = decode_checkpoint(f.read())
-            if cseq != seq:
-                raise StoreError(f"holds seq {cseq} but its name says {seq}")
-            entry["valid"] = True
-            out["newest_valid_checkpoint"] = seq
-        except (OSError, StoreError) as exc:
-            entry["error"] = str(exc)
-        out["checkpoints"].append(entry)
-    segs = _numbered(names, _SEG_RE)
-    for i, first in enumerate(segs):
-        name = _seg_name(first)
-        try:
-            with open(os.path.join(path, name), "rb") as f:
-                scan = scan_segment(f.read(), first)
-        except OSError as exc:
-            out["segments"].append({"file": name, "first_seq": first, "last_seq": None,
-                                    "records": None, "bytes": size(name), "good_bytes": None,
-                                    "status": "unreadable", "bad_offset": None,
-                                    "reason": str(exc)})
-            continue
-        status = scan.status
-        if status == "torn" and i < len(segs) - 1:
-            status = "corrupt"  # only the last segment can have been cut by a crash
-        n = len(scan.records)
-        out["segments"].append({"file": name, "first_seq": first,
-                                "last_seq": first + n - 1 if n else None, "records": n,
-                                "bytes": scan.size, "good_bytes": scan.good_bytes,
-                                "status": status, "bad_offset": scan.bad_offset,
-                                "reason": scan.reason})
-    known = {LOCK_NAME} | {_ckpt_name(s) for s in _numbered(names, _CKPT_RE)} \
-        | {_seg_name(s) for s in segs}
-    for name in names:
-        if name in known:
-            continue
-        if _TMP_RE.fullmatch(name):
-            out["temporary"].append(name)
-        elif _ASIDE_RE.fullmatch(name):
-            out["moved_aside"].append({"file": name, "bytes": size(name),
-                                       "pending": _is_pending(name)})
-        else:
-            out["other"].append(name)
-    return out

@@ -1,0 +1,153 @@
+"""Text about a configuration: :func:`describe` for one file, :func:`settings_markdown` for
+the settings reference (``docs/settings.md``)."""
+
+from __future__ import annotations
+
+import math
+
+from daemon.config.durations import format_duration
+from daemon.config.model import Config, ModelConfig
+from daemon.config.settings import _BY_SECTION, RULES, SECTIONS
+from daemon.endpoints import is_loopback
+
+
+def _num(v: float) -> str:
+    return f"{v:g}"
+
+
+def _bind(endpoint: str) -> str:
+    return endpoint if is_loopback(endpoint) else f"{endpoint}  (reachable from other hosts)"
+
+
+def describe(config: Config) -> str:
+    """Human-readable summary: the daemon endpoints, then each model and its terms."""
+    d = config.daemon
+    lines = [f"configuration: {config.source}", "", "daemon:"]
+    for ep in d.feeds:
+        lines.append(f"  feed (SUB connects)    {ep}")
+    lines.append(f"  publish (PUB binds)    {_bind(d.publish)}")
+    lines.append(f"  control (REP binds)    {_bind(d.control)}")
+    if d.metrics:
+        note = "" if is_loopback(f"tcp://{d.metrics}") else "  (reachable from other hosts)"
+        lines.append(f"  metrics (HTTP)         http://{d.metrics}/metrics{note}")
+    else:
+        lines.append("  metrics (HTTP)         disabled")
+    lines.append(f"  state_dir              {d.state_dir}")
+    lines.append(f"  log                    {d.log_level}, {d.log_format}")
+    lines.append(f"  batch_limit            {d.batch_limit} messages, {d.batch_bytes} bytes per "
+                 f"wake-up")
+    lines.append(f"  max_message_bytes      {d.max_message_bytes}")
+    lines.append(f"  hwm                    {d.hwm}" + (" (no limit)" if d.hwm == 0 else ""))
+    lines.append(f"  reconnect              {format_duration(d.reconnect_ivl)} .. "
+                 f"{format_duration(d.reconnect_ivl_max)}")
+    lines.append(f"  checkpoint every       {format_duration(d.checkpoint_every)}")
+    sync = "every record" if d.fsync == "always" else \
+        f"grouped, at most {format_duration(d.group_commit)} apart"
+    lines.append(f"  fsync                  {sync}")
+    lines.append(f"  on corruption          {d.on_corruption}")
+    lines.append("")
+    n = len(config.models)
+    lines.append(f"{n} model{'s' if n != 1 else ''}" + (":" if n else ""))
+    for m in config.models:
+        lines.extend(_describe_model(m))
+    return "\n".join(lines)
+
+
+def _describe_model(m: ModelConfig) -> list[str]:
+    basis = m.build_basis()
+    lines = ["", f"model {m.name}  (fingerprint {m.fingerprint()})", "  inputs:"]
+    width = max(len(i.tag) for i in m.inputs)
+    for i in m.inputs:
+        lines.append(f"    {i.tag:<{width}}  range {_num(i.lo)} .. {_num(i.hi)}"
+                     f"  dead time {format_duration(i.dead_time)}")
+    if m.basis_kind == "identity":
+        lines.append(f"  basis: identity (raw engineering units), {basis.n_features} terms:")
+    else:
+        lines.append(f"  basis: polynomial, {m.family}, degree {m.degree}, "
+                     f"{'with' if m.interactions else 'without'} interactions, inputs scaled "
+                     f"to [-1, 1], {basis.n_features} terms:")
+    mean = m.prior_mean if m.prior_mean is not None else (0.0,) * basis.n_features
+    width = max(len(t) for t in basis.names)
+    alphas = basis.alpha_vector(m.alpha)
+    for j, term in enumerate(basis.names):
+        prior = "flat prior" if alphas[j] == 0 else \
+            f"prior mean {_num(mean[j])}, prior sd {_num(1.0 / math.sqrt(alphas[j]))}"
+        lines.append(f"    {j:>3}  {term:<{width}}  {prior}")
+    lines.append(f"  prior: alpha {_num(m.alpha)} (flat on the constant term)"
+                 + ("" if m.prior_mean is not None else ", mean zero"))
+    if m.noise_std is not None:
+        lines.append(f"  noise: known, std {_num(m.noise_std)} (Gaussian predictions)")
+    else:
+        lines.append(f"  noise: learned, guess {_num(m.noise_guess)} worth "
+                     f"{_num(m.noise_strength)} lab results (Student-t predictions)")
+    if m.forgetting == "none":
+        lines.append("  forgetting: none")
+    elif m.forgetting == "random_walk":
+        noise = "noise estimate kept" if m.half_life is None else \
+            f"noise half-life {format_duration(m.half_life)}"
+        lines.append(f"  forgetting: random walk, q {_num(m.q)} per second, {noise}")
+    else:
+        lines.append(f"  forgetting: {m.forgetting}, half-life {format_duration(m.half_life)}")
+    if m.gate is None:
+        lines.append("  gate: off")
+    else:
+        rel = "never opens" if m.gate_release == 0 else \
+            f"opens after {m.gate_release} same-sign rejections"
+        lines.append(f"  gate: |z| > {_num(m.gate)} rejected, {rel}")
+    lines.append(f"  interval level: {_num(m.level)}")
+    lines.append(f"  lab matching: tolerance {format_duration(m.tolerance)}, keep "
+                 f"{format_duration(m.keep)} or {m.keep_count} rows, stale after "
+                 f"{format_duration(m.stale_after)}")
+    return lines
+
+
+_INTRO = """\
+# Settings
+
+<!-- Generated by daemon.config.settings_markdown(); edit the table in daemon/config.py and
+regenerate, do not edit by hand. -->
+
+posteriord reads one TOML file (`posteriord run --config FILE`; `posteriord check-config
+FILE` checks it and prints what it understood). `daemon/config/demo.toml` is a complete example.
+
+* Durations are a number of seconds or a string of `<number><unit>` parts, largest unit
+  first, each unit once: `"250ms"`, `"90s"`, `"5m"`, `"36h"`, `"1.5d"`, `"2w"`, `"1h30m"`.
+* Unknown keys are errors (with a suggestion when a known key is close), and so are keys that
+  would have no effect given the other settings.
+* Errors name the file, the model (`model[0]` is the first `[[model]]` table) and the key,
+  and say what was expected and what was found.
+* Settings marked *learning* enter the model's fingerprint: when a reload changes one of
+  them, that model starts again from its prior; other changes keep what it has learned.
+"""
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|").replace("\n", " ")
+
+
+def settings_markdown() -> str:
+    """The documentation of every setting (the text of ``docs/settings.md``)."""
+    out = [_INTRO]
+    for sec in SECTIONS:
+        rows = _BY_SECTION[sec.name]
+        title = f"`{sec.noun}`" if sec.noun.startswith("[") else f"`{sec.name}`"
+        out.append(f"## {title}\n")
+        out.append(sec.help + "\n")
+        if not rows:
+            continue
+        model = sec.name.startswith("model")
+        head = "| key | type | default | meaning |" + (" learning |" if model else "")
+        rule = "|---|---|---|---|" + ("---|" if model else "")
+        out.append(head)
+        out.append(rule)
+        for r in rows:
+            line = (f"| `{r.key}` | {_cell(r.type_doc())} | {_cell(r.default_text())} | "
+                    f"{_cell(r.help)} |")
+            if model:
+                line += " yes |" if r.learning else " no |"
+            out.append(line)
+        out.append("")
+    out.append("## Rules between settings\n")
+    out.extend(f"* {rule}" for rule in RULES)
+    out.append("")
+    return "\n".join(out)
