@@ -112,6 +112,7 @@ DAEMON_DEFAULTS = {
     "checkpoint_every": 300.0,
     "fsync": "group",
     "group_commit": 0.05,
+    "future_tolerance": 3600.0,
     "on_corruption": "refuse",
     "shard": "",
     "curve_secret_key": "",

@@ -839,19 +839,25 @@ def test_freeze_resume_reset(start_service, run):
     assert post["mean"] == [None] * len(fresh.basis.names)  # nan (not identified) -> nil
     assert post["noise_var"] == fresh.post.noise_var and post["dof"] == fresh.post.dof
     assert h.ctl("status")["models"][MODEL]["status"] == "unidentified"
-    # the buffered features are kept: later results are matched and learned from the prior
-    t_next = extra_t[-1] + 600.0
-    h.feed.send(MODEL, {"t": t_next, "x": x_at[-1]})
-    want = [fresh.predict(t_next, x_at[-1])]
-    want_fits = []
+    # the feature buffer and the feed clock go too: results for samples drawn before the
+    # reset have nothing to match (counted), and a sample older than the last one before the
+    # reset is accepted again (a publisher's wrong clock no longer blocks the model)
+    before = h.ctl("status")["models"][MODEL]
     for _, t, y, _ in held[2:]:
         h.feed.send(MODEL, {"t": t, "y": y})
-        want_fits.append(fresh.learn(t, x_at[t_all.index(t)], y))
+    t_back = extra_t[-1] - 3600.0
+    h.feed.send(MODEL, {"t": t_back, "x": x_at[-1]})
+    h.feed.send(MODEL, {"t": t_back, "y": 150.0})
+    want = [fresh.predict(t_back, x_at[-1])]
+    want_fits = [fresh.learn(t_back, x_at[-1], 150.0)]
     preds, fits = split(h.barrier())
     assert preds[0]["status"] == "unidentified" and math.isnan(preds[0]["mean"])
     assert_preds(preds, want)
     assert_fits(fits, want_fits)
-    assert h.posterior()["updates"] == fresh.post.n_updates == len(held) - 2
+    after = h.ctl("status")["models"][MODEL]
+    assert after["rejected"].get("lab_unmatched", 0) - before["rejected"].get(
+        "lab_unmatched", 0) == len(held) - 2
+    assert h.posterior()["updates"] == fresh.post.n_updates == 1
 
 
 def test_status_field(start_service, run):

@@ -18,6 +18,7 @@ from daemon.config.kinds import _write_number
 from daemon.config.model import Config, DaemonConfig, InputConfig, ModelConfig
 from daemon.config.settings import _BY_SECTION, _SECTION, SECTIONS, SETTINGS, _children
 from daemon.endpoints import is_loopback
+from recursive.basis import MAX_TERMS
 
 
 @dataclass(frozen=True)
@@ -207,8 +208,15 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
         raise ctx.error("alerts.head_start", f"a number in [0, cusum_h = {values['cusum_h']:g})",
                         _show(_given(raw, "head_start")))
     model = ModelConfig(**values)
+    names = model.build_basis().names
+    if len(names) > MAX_TERMS:
+        shape = (f"{len(model.inputs)} inputs at degree {model.degree}"
+                 + (" with interactions" if model.interactions else ""))
+        raise ctx.error("basis.degree", f"a basis of at most {MAX_TERMS} terms",
+                        f"{len(names)} terms ({shape})",
+                        "lower the degree, set interactions = false, or split the inputs "
+                        "over several models")
     if model.prior_mean is not None:
-        names = model.build_basis().names
         if len(model.prior_mean) != len(names):
             raise ctx.error("prior.mean",
                             f"an array of {len(names)} numbers, one per basis term "

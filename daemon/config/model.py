@@ -40,6 +40,7 @@ class DaemonConfig:
     checkpoint_every: float = _default("daemon", "checkpoint_every")
     fsync: str = _default("daemon", "fsync")
     group_commit: float = _default("daemon", "group_commit")
+    future_tolerance: float = _default("daemon", "future_tolerance")
     on_corruption: str = _default("daemon", "on_corruption")
     shard: str = _default("daemon", "shard")
     curve_secret_key: str = _default("daemon", "curve_secret_key")

@@ -190,6 +190,13 @@ SETTINGS: tuple[Setting, ...] = (
             GE1),
     Setting("daemon", "max_message_bytes", "max_message_bytes", INTEGER, _MIB,
             "Largest accepted message; longer ones are dropped.", GE1),
+    Setting("daemon", "future_tolerance", "future_tolerance", DURATION, 3600.0,
+            "How far ahead of this host's clock a sample or lab time may be. A later time "
+            "cannot be right (samples do not come from the future; replays of history are "
+            "in the past) and is rejected as `bad_time`, with a hint when it looks like "
+            "milliseconds, microseconds or nanoseconds; otherwise one such time would make "
+            "every later sample of its model `out_of_order`. Only admission looks at the "
+            "clock, never learning. 0 turns the check off.", GE0),
     Setting("daemon", "reconnect_ivl", "reconnect_ivl", DURATION, 0.1,
             "First wait before reconnecting a lost feed.", GT0),
     Setting("daemon", "reconnect_ivl_max", "reconnect_ivl_max", DURATION, 10.0,

@@ -30,6 +30,8 @@ STATUSES = ("unidentified", "learning", "frozen", "stale")
 CONTROLS = ("freeze", "resume", "reset", "acknowledge")
 # Schema of ModelRunner.to_state(): one model's whole run-time state, as plain data.
 RUNNER_SCHEMA = "posteriord.runner/1"
+# publishers (src values) whose sequence numbers a model follows
+_MAX_SOURCES = 64
 _COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_lost")
 
 
@@ -72,17 +74,15 @@ class ModelRunner:
         self.tags = tuple(i.tag for i in cfg.inputs)
         self.index = {tag: i for i, tag in enumerate(self.tags)}
         self.spec = (self.tags, self.index)
-        dead = [float(i.dead_time) for i in cfg.inputs]
-        history = max(cfg.keep, max(dead) + cfg.tolerance)
-        self.aligner = Aligner(self.tags, dead, history, tolerance_s=cfg.tolerance,
-                               max_rows=cfg.keep_count)
+        self.aligner = self._new_aligner()
         self.ids: OrderedDict = OrderedDict()
         self.monitor = Monitor(cfg, self.basis) if cfg.alerts else None
         # alert events waiting to be published by the service
         self.alerts: list[dict] = []
         self.frozen = False
         self.last_x_t: float | None = None
-        self.last_seq: int | None = None
+        # last sequence number per publisher (``src``; None for messages that name none)
+        self.last_seq: dict = {}
         # snapshot for the metrics collector and the status command
         self.last_std = math.nan
         self.last_mean = math.nan
@@ -101,14 +101,29 @@ class ModelRunner:
         self.n_lost = 0
         self.rejected: Counter = Counter()
 
+    def _new_aligner(self) -> Aligner:
+        cfg = self.cfg
+        dead = [float(i.dead_time) for i in cfg.inputs]
+        history = max(cfg.keep, max(dead) + cfg.tolerance)
+        return Aligner(self.tags, dead, history, tolerance_s=cfg.tolerance,
+                       max_rows=cfg.keep_count)
+
     # ------------------------------------------------------------------ config
     def reconfigure(self, cfg) -> None:
         """Apply a reloaded config whose learning settings are unchanged."""
         self.cfg = cfg
 
     def reset(self) -> None:
-        """Back to the configured prior; buffered features are kept, detectors cleared."""
+        """Back to the configured prior, detectors cleared, feature buffer and feed clock too.
+
+        The feed clock (the newest sample time) goes with the buffer, so a model whose
+        publisher once sent wrong times accepts correct ones again; lab results drawn before
+        the reset find no features to match and are rejected (``lab_unmatched``).
+        """
         self.post.reset()
+        self.aligner = self._new_aligner()
+        self.ids.clear()
+        self.last_x_t = None
         self.last_lab_t = None
         self.last_offered_t = None
         self.last_fit = None
@@ -120,14 +135,21 @@ class ModelRunner:
         return None if self.monitor is None else self.monitor.state
 
     # ------------------------------------------------------------------ feed
-    def note_seq(self, seq: int | None) -> None:
-        """Count gaps in a publisher's sequence numbers (PUB/SUB drops silently)."""
+    def note_seq(self, seq: int | None, src: str | None = None) -> None:
+        """Count gaps in a publisher's sequence numbers on this model's topic.
+
+        PUB/SUB drops silently when a queue is full. ``seq`` numbers one publisher's
+        messages on one topic; ``src`` tells publishers of the same topic apart.
+        """
         if seq is None:
             return
-        if self.last_seq is not None and seq > self.last_seq + 1:
+        last = self.last_seq.get(src)
+        if last is not None and seq > last + 1:
             self.n_gaps += 1
-            self.n_lost += seq - self.last_seq - 1
-        self.last_seq = seq
+            self.n_lost += seq - last - 1
+        if len(self.last_seq) >= _MAX_SOURCES and src not in self.last_seq:
+            self.last_seq.pop(next(iter(self.last_seq)))  # bounded: the first seen goes
+        self.last_seq[src] = seq
 
     def add_features(self, t: float, row: list, ident) -> None:
         """Buffer one feature sample; raises :class:`Rejected` when out of order."""
@@ -408,7 +430,8 @@ class ModelRunner:
             "ids": [[k, float(t)] for k, t in self.ids.items()],
             "frozen": self.frozen,
             "last_x_t": self.last_x_t,
-            "last_seq": self.last_seq,
+            "last_seq": self.last_seq.get(None),
+            "last_seqs": [[k, v] for k, v in self.last_seq.items() if k is not None],
             "last_lab_t": self.last_lab_t,
             "last_offered_t": self.last_offered_t,
             "last_fit": self.last_fit,
@@ -446,7 +469,9 @@ class ModelRunner:
             r.ids = OrderedDict((k, float(t)) for k, t in state["ids"])
             r.frozen = bool(state["frozen"])
             r.last_x_t = state["last_x_t"]
-            r.last_seq = state["last_seq"]
+            r.last_seq = {} if state["last_seq"] is None else {None: int(state["last_seq"])}
+            for k, v in state.get("last_seqs", ()):
+                r.last_seq[str(k)] = int(v)
             r.last_lab_t = state["last_lab_t"]
             r.last_offered_t = state["last_offered_t"]
             r.last_fit = state["last_fit"]

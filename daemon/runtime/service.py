@@ -115,7 +115,7 @@ class Service:
 
     def __init__(self, config, *, registry: CollectorRegistry | None = None,
                  context: zmq.Context | None = None, config_path: str | None = None,
-                 fs=None):
+                 fs=None, wall_clock=time.time):
         self.shard = config.daemon.shard_spec()
         # with a shard, this daemon is only ever given its share of the configured models
         config = type(config)(daemon=config.daemon, models=select(config.models, self.shard),
@@ -152,6 +152,10 @@ class Service:
         self.checkpoint_seq: int | None = None
         self._dirty = False
         self._last_checkpoint = time.monotonic()
+        # admission only: a time beyond this clock plus daemon.future_tolerance is refused;
+        # None (the backtest) admits any time, so a replay depends on the file alone
+        self._wall_clock = wall_clock
+        self._internal_logged: set = set()
 
     # ------------------------------------------------------------------ hooks for later layers
     def extra_metrics(self):
@@ -548,16 +552,25 @@ class Service:
         max_bytes = self.config.daemon.max_message_bytes
         specs = {name: r.spec for name, r in self.runners.items()}
         pending: dict[str, _Pending] = {}
-        if batch:
-            self._dirty = True  # the feature buffers changed: the next checkpoint is due
+        if not batch:
+            return
+        self._dirty = True  # the feature buffers changed: the next checkpoint is due
+        tol = self.config.daemon.future_tolerance
+        latest = (self._wall_clock() + tol) if self._wall_clock is not None and tol > 0 \
+            else math.inf
         for frames in batch:
             try:
                 msg = wire.decode_feed(frames, specs, max_bytes)
+                if msg.t[-1] > latest or (msg.block and max(msg.t) > latest):
+                    raise wire.WireError("bad_time", _future_detail(msg.t, latest - tol),
+                                         msg.seq)
             except wire.WireError as exc:
                 name = _topic(frames)
                 if name in self.runners:
                     self.received[name] += 1
                     self.runners[name].rejected[exc.reason] += 1
+                    # a rejected message still arrived: its seq is no gap in the stream
+                    self.runners[name].note_seq(exc.seq, exc.src)
                 else:
                     self.received[""] += 1
                     self.rejected_unknown[exc.reason] += 1
@@ -565,14 +578,44 @@ class Service:
                 self._rlog.warn(name, exc.reason, exc.detail)
                 continue
             self.received[msg.model] += 1
-            self._feed(msg, pending)
+            try:
+                self._feed(msg, pending)
+            except DurabilityError:
+                raise
+            except Exception as exc:  # noqa: BLE001 - one message must never stop the loop
+                self._internal_error(msg.model, exc)
+                pending.pop(msg.model, None)
         for name, seg in pending.items():
-            self._flush(self.runners[name], seg)
+            try:
+                self._flush(self.runners[name], seg)
+            except DurabilityError:
+                raise
+            except Exception as exc:  # noqa: BLE001
+                self._internal_error(name, exc)
+
+    def _internal_error(self, name: str, exc: BaseException) -> None:
+        """Count and log an unexpected error while handling a model's message; carry on.
+
+        The first of each kind per model is logged with its traceback, later ones through
+        the rate-limited log. Learned state is safe: every change of it is logged to the
+        write-ahead log only after it is complete, and a restart replays only what was.
+        """
+        runner = self.runners.get(name)
+        if runner is not None:
+            runner.rejected["internal_error"] += 1
+        key = (name, type(exc).__name__)
+        if key not in self._internal_logged:
+            self._internal_logged.add(key)
+            log.error("internal error handling a message of %s (counted as internal_error; "
+                      "the daemon carries on)", name, exc_info=exc)
+        else:
+            self._rlog.warn(name, "internal_error", f"{type(exc).__name__}: "
+                                                    f"{str(exc)[:200]}")
 
     def _feed(self, msg: wire.Feed, pending: dict) -> None:
         runner = self.runners[msg.model]
         if msg.seq is not None:
-            runner.note_seq(msg.seq)
+            runner.note_seq(msg.seq, msg.src)
         seg = pending.get(msg.model)
         if seg is None:
             seg = pending[msg.model] = _Pending(msg.block)
@@ -749,6 +792,12 @@ class Service:
                 reply = self.command(wire.decode_control(frames[0], 65536))
             except wire.WireError as exc:
                 reply = {"ok": False, "error": str(exc)}
+            except DurabilityError:
+                raise
+            except Exception as exc:  # noqa: BLE001 - a request must never stop the loop
+                log.error("internal error handling a control request", exc_info=exc)
+                reply = {"ok": False, "error": f"internal error: {type(exc).__name__}: "
+                                               f"{str(exc)[:200]} (logged by the daemon)"}
             self.rep.send(wire.packb(_plain(reply)))
 
     def command(self, msg: dict) -> dict:
@@ -770,13 +819,14 @@ class Service:
             log.info("control: checkpoint %d written", seq)
             return {"ok": True, "seq": seq}
         if cmd not in COMMANDS:
-            return {"ok": False, "error": f"unknown command {cmd!r}; expected one of "
+            return {"ok": False, "error": f"unknown command {wire.show(cmd)}; expected one of "
                                           f"{', '.join(COMMANDS)}"}
         name = msg.get("model")
         runner = self.runners.get(name) if isinstance(name, str) else None
         if runner is None:
             return {"ok": False, "error": f"{cmd} needs \"model\": one of "
-                                          f"{', '.join(sorted(self.runners))}; got {name!r}"}
+                                          f"{', '.join(sorted(self.runners))}; "
+                                          f"got {wire.show(name)}"}
         if cmd == "posterior":
             return {"ok": True, "model": name, **runner.posterior()}
         if cmd in ("detectors", "acknowledge"):
@@ -830,7 +880,13 @@ class Service:
         new = type(new)(daemon=new.daemon, models=select(new.models, self.shard),
                         source=new.source)
         old = self.runners
-        kept = self.adopt(new.models)
+        try:
+            kept = self.adopt(new.models)
+        except (ValueError, ArithmeticError, MemoryError) as exc:
+            # adopt builds every runner before it changes anything: the running models stay
+            self.reloads["error"] += 1
+            log.error("reload failed, keeping the current config: %s", exc)
+            return False, f"{type(exc).__name__}: {exc}"
         runners = self.runners
         if self.store is not None:
             self.store.sync()
@@ -933,6 +989,19 @@ def _concat(batches: list[PredBatch]) -> PredBatch:
               for f in ("t", "mean", "std", "var", "lo", "hi", "dof")}
     return PredBatch(ids=[i for b in batches for i in b.ids],
                      status=[s for b in batches for s in b.status], **arrays)
+
+
+def _future_detail(ts, now: float) -> str:
+    """Why a time is refused as in the future, with a hint at a wrong unit."""
+    t = max(ts)
+    ahead = t - now
+    for unit, factor in (("milliseconds", 1e3), ("microseconds", 1e6),
+                         ("nanoseconds", 1e9)):
+        if abs(t / factor - now) < 366 * 86400:
+            return (f"t={t!r} is {ahead:.3g} s ahead of this host's clock; it looks like "
+                    f"epoch {unit} (t / {factor:g} is within a year of now): send seconds")
+    return (f"t={t!r} is {ahead:.3g} s ahead of this host's clock (more than "
+            "daemon.future_tolerance); check the publisher's clock and time unit")
 
 
 def _topic(frames) -> str:

@@ -33,19 +33,76 @@ REASONS = (
     "lab_out_of_order",  # lab result drawn before the last learned one
     "frozen",          # learning is frozen for this model
     "gated",           # robust gate rejected the lab result as an outlier
+    "too_deep",        # containers nested deeper than any field of the protocol needs
+    "internal_error",  # handling the message raised an unexpected error (logged, traceback)
 )
 
 MAX_ID_LEN = 128
+MAX_SRC_LEN = 64
 MAX_BLOCK = 65536
+# No field of the protocol nests deeper than a block's x (map -> rows -> values); a little
+# slack for a mistaken but harmless client.
+MAX_DEPTH = 8
 
 
 class WireError(ValueError):
     """A message that cannot be used; ``reason`` is one of :data:`REASONS`."""
 
-    def __init__(self, reason: str, detail: str):
+    def __init__(self, reason: str, detail: str, seq: int | None = None):
         super().__init__(f"{reason}: {detail}")
         self.reason = reason
         self.detail = detail
+        # the message's sequence number when it could be read: a rejected message still
+        # arrived, so it is not counted as lost by the bus
+        self.seq = seq
+        self.src: str | None = None
+
+
+def show(v, limit: int = 60) -> str:
+    """A short, bounded description of a value from the wire, safe for any input.
+
+    Never formats a container's contents (a value nested a thousand levels deep would make
+    ``repr`` recurse until it fails): containers are described by type and size.
+    """
+    if v is None or isinstance(v, bool | float):
+        return repr(v)
+    if isinstance(v, int):
+        text = repr(v) if -10**30 < v < 10**30 else f"an integer of {len(str(v))} digits"
+        return text
+    if isinstance(v, str | bytes):
+        text = repr(v[:limit])
+        return text + (f"... ({len(v)} long)" if len(v) > limit else "")
+    if isinstance(v, list | tuple):
+        return f"a list of {len(v)} items"
+    if isinstance(v, dict):
+        return f"a map of {len(v)} keys"
+    return f"a {type(v).__name__}"
+
+
+_SCALARS = frozenset({float, int, str, bool, bytes, type(None)})
+
+
+def check_depth(v, limit: int = MAX_DEPTH) -> None:
+    """Raise :class:`WireError` ``too_deep`` if containers in ``v`` nest deeper than ``limit``.
+
+    Iterative, so it cannot itself overflow the stack.
+    """
+    stack = [(v, 1)]
+    pop, push = stack.pop, stack.append
+    while stack:
+        o, d = pop()
+        if type(o) is dict:
+            vals = o.values()
+        elif type(o) is list:
+            vals = o
+        else:
+            continue
+        if d > limit:
+            raise WireError("too_deep", f"containers nested more than {limit} levels deep")
+        if _SCALARS.issuperset(map(type, vals)):
+            continue
+        for e in vals:
+            push((e, d + 1))
 
 
 def _refuse_ext(code, data):
@@ -106,6 +163,7 @@ class Feed(NamedTuple):
     has_id: bool = True
     increasing: bool = True
     packed: bool = False
+    src: str | None = None
 
 
 def _num(v) -> float | None:
@@ -118,7 +176,7 @@ def _num(v) -> float | None:
 def _time(v) -> float:
     f = _num(v)
     if f is None:
-        raise WireError("bad_time", f"t must be a finite number, got {v!r:.60}")
+        raise WireError("bad_time", f"t must be a finite number, got {show(v)}")
     return f
 
 
@@ -132,7 +190,7 @@ def _id(v):
     if isinstance(v, str) and 0 < len(v) <= MAX_ID_LEN:
         return v
     raise WireError("bad_id", f"id must be an int or a string of at most {MAX_ID_LEN} "
-                              f"characters, got {v!r:.60}")
+                              f"characters, got {show(v)}")
 
 
 _FLOATS = {float}
@@ -158,7 +216,7 @@ def _row(v, tags: tuple[str, ...], index: dict[str, int]) -> list[float]:
         for k, e in v.items():
             i = index.get(k)
             if i is None:
-                raise WireError("bad_x", f"unknown tag {k!r:.60}")
+                raise WireError("bad_x", f"unknown tag {show(k)}")
             f = _num(e)
             if f is None:
                 raise WireError("bad_x", f"x value for {k} is not a finite number")
@@ -173,7 +231,7 @@ def _row(v, tags: tuple[str, ...], index: dict[str, int]) -> list[float]:
 def _y(v) -> float:
     f = _num(v)
     if f is None:
-        raise WireError("bad_y", f"y must be a finite number, got {v!r:.60}")
+        raise WireError("bad_y", f"y must be a finite number, got {show(v)}")
     return f
 
 
@@ -197,7 +255,7 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
         raise WireError("unknown_model", "topic is not UTF-8") from None
     spec = models.get(name)
     if spec is None:
-        raise WireError("unknown_model", f"no model named {name!r:.80}")
+        raise WireError("unknown_model", f"no model named {show(name, 80)}")
     msg = unpack(bytes(frames[1]), max_bytes)
     if not isinstance(msg, dict):
         raise WireError("not_a_map", f"payload is a {type(msg).__name__}, expected a map")
@@ -205,16 +263,29 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
     seq = msg.get("seq")
     if seq is not None and (isinstance(seq, bool) or not isinstance(seq, int)):
         raise WireError("bad_id", "seq must be an integer")
+    src = msg.get("src")
+    if src is not None and not (isinstance(src, str) and 0 < len(src) <= MAX_SRC_LEN):
+        raise WireError("bad_id", f"src must be a string of 1 to {MAX_SRC_LEN} characters, "
+                                  f"got {show(src)}", seq)
+    try:
+        return _decode_body(name, msg, tags, index, seq, src)
+    except WireError as exc:
+        exc.seq, exc.src = seq, src
+        raise
+
+
+def _decode_body(name, msg, tags, index, seq, src) -> Feed:
     t = msg.get("t")
     if isinstance(t, list | bytes):
-        return _decode_block(name, msg, t, tags, index, seq)
+        return _decode_block(name, msg, t, tags, index, seq, src)
     x = msg.get("x")
     y = msg.get("y")
     ident = msg.get("id")
     if y is None and ident is None and type(t) is float and t - t == 0.0 and x is not None:
         # the common message: a finite float time and a feature row
         return Feed(name, [t], [_row(x, tags, index)], [None], [None], seq, False,
-                    has_y=False, has_id=False)
+                    has_y=False, has_id=False, src=src)
+    check_depth(msg)
     ident = _id(ident)
     if x is None and y is None:
         raise WireError("bad_x", "message has neither x nor y")
@@ -227,7 +298,7 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
     row = None if x is None else _row(x, tags, index)
     yy = None if y is None else _y(y)
     return Feed(name, [tt], [row], [yy], [ident], seq, False, has_y=yy is not None,
-                has_id=ident is not None)
+                has_id=ident is not None, src=src)
 
 
 def _float_array(v) -> np.ndarray | None:
@@ -280,11 +351,12 @@ def _block_times(t) -> tuple[list, np.ndarray]:
     tarr = _float_array(t)
     if tarr is not None and tarr.shape == (k,) and np.isfinite(tarr).all():
         return tarr.tolist(), tarr
+    check_depth(t)
     ts = [_time(v) for v in t]
     return ts, np.array(ts)
 
 
-def _decode_block(name, msg, t, tags, index, seq) -> Feed:
+def _decode_block(name, msg, t, tags, index, seq, src) -> Feed:
     ts, tarr = _block_times(t)
     k = len(ts)
     x = msg.get("x")
@@ -316,7 +388,7 @@ def _decode_block(name, msg, t, tags, index, seq) -> Feed:
     idl = [None] * k if ids is None else [_id(v) for v in ids]
     increasing = k == 1 or bool(np.all(tarr[1:] > tarr[:-1]))
     return Feed(name, ts, rows, ys, idl, seq, True, has_y=y is not None,
-                has_id=ids is not None, increasing=increasing, packed=packed)
+                has_id=ids is not None, increasing=increasing, packed=packed, src=src)
 
 
 def _packed_rows(x: bytes, k: int, tags) -> np.ndarray:
@@ -348,6 +420,7 @@ def _block_rows(x: list, k: int, tags, index):
     if arr is not None and arr.shape == (k, n) and np.isfinite(arr).all():
         return arr
     # ragged, dict rows, non-numbers or non-finite values: find and name the culprit
+    check_depth(x)
     rows = [_row(r, tags, index) for r in x]
     return np.array(rows, dtype=float)
 
@@ -357,4 +430,5 @@ def decode_control(payload: bytes, max_bytes: int) -> dict:
     msg = unpack(payload, max_bytes)
     if not isinstance(msg, dict) or not isinstance(msg.get("cmd"), str):
         raise WireError("not_a_map", 'a command is a map with a string "cmd"')
+    check_depth(msg)
     return msg

@@ -458,7 +458,7 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
     from daemon.runtime.service import Service
 
     config = Config(daemon=DaemonConfig(), models=(model, companion), source="<backtest>")
-    svc = Service(config)
+    svc = Service(config, wall_clock=None)
     recorder = _Recorder()
     svc.pub = recorder
     steps: dict[str, list] = {model.name: [], companion.name: []}
