@@ -86,6 +86,17 @@ def exported(tmp_path_factory) -> dict[str, dict[str, set]]:
 
 
 @pytest.fixture(scope="module")
+def fresh() -> list[tuple[str, dict]]:
+    """(sample name, labels) of every sample of a Service that has seen nothing yet."""
+    models = [c301_model(), c301_model(name="quiet", alerts={"enabled": False})]
+    svc = Service(loads(toml_config({"metrics": ""}, models), "<test>"),
+                  registry=CollectorRegistry())
+    return [(s.name, s.labels)
+            for family in text_string_to_metric_families(generate_latest(svc.registry).decode())
+            for s in family.samples]
+
+
+@pytest.fixture(scope="module")
 def rules() -> list[dict]:
     doc = yaml.safe_load(RULES.read_text())
     assert set(doc) == {"groups"}
@@ -217,6 +228,40 @@ def test_every_trust_reason_has_a_rule(rules):
                 assert op in ("=", "=~")
                 covered |= set(value.split("|"))
     assert covered == set(REASONS)
+
+
+def test_counters_in_rate_and_increase_exist_at_zero_before_their_first_event(rules, fresh):
+    """increase() and rate() need two samples of a series: a counter series that appears
+    with its first event would let that event pass unseen (the first failed reload would
+    not fire PosteriordConfigReloadFailed). Every series a rule takes the rate or increase
+    of must be exported, at zero, before anything happened."""
+    checked = 0
+    for r in rules:
+        for name, body in re.findall(r"\b(?:rate|increase)\(\s*([A-Za-z_:][A-Za-z0-9_:]*)"
+                                     r"\s*(\{[^}]*\})?\s*\[", r["expr"]):
+            want = [(label, op, value) for _n, label, op, value in matchers(name + body)]
+
+            def match(labels, want=want):
+                for label, op, value in want:
+                    got = labels.get(label, "")
+                    ok = {"=": got == value, "!=": got != value,
+                          "=~": re.fullmatch(value, got) is not None,
+                          "!~": re.fullmatch(value, got) is None}[op]
+                    if not ok:
+                        return False
+                return True
+
+            series = [labels for n, labels in fresh if n == name and match(labels)]
+            assert series, f"{r['alert']}: no {name}{body} series before the first event"
+            checked += 1
+    assert checked >= 5
+
+
+def test_no_exported_label_is_empty(exported):
+    """Prometheus stores a label with an empty value as no label at all."""
+    for name, labels in exported.items():
+        for label, values in labels.items():
+            assert "" not in values, f"{name}{{{label}=\"\"}}"
 
 
 # ---------------------------------------------------------------------------------- promtool

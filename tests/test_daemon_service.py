@@ -600,15 +600,25 @@ BAD_INPUT = {
 }
 
 
+UNKNOWN = "posteriord_unknown_topic_messages_total"
+
+
 def _rejections(m: dict) -> dict:
-    return {labels: v for (name, labels), v in m.items() if name == "posteriord_rejected_total"}
+    """Rejections per (model, reason); model "" for messages that name no model."""
+    out = {labels: v for (name, labels), v in m.items() if name == "posteriord_rejected_total"}
+    out.update({labels | {("model", "")}: v for (name, labels), v in m.items()
+                if name == UNKNOWN})
+    return out
 
 
 def _received(m: dict) -> dict:
-    """Messages received per model label, the probe's left out (the barrier uses it)."""
-    return {labels: v for (name, labels), v in m.items()
-            if name == "posteriord_messages_received_total"
-            and labels != frozenset({("model", PROBE)})}
+    """Messages received per model label, the probe's left out (the barrier uses it);
+    model "" for messages that name no model."""
+    out = {labels: v for (name, labels), v in m.items()
+           if name == "posteriord_messages_received_total"
+           and labels != frozenset({("model", PROBE)})}
+    out[frozenset({("model", "")})] = sum(v for (name, _l), v in m.items() if name == UNKNOWN)
+    return out
 
 
 @pytest.mark.parametrize("case", list(BAD_INPUT))

@@ -37,13 +37,12 @@ from contextlib import contextmanager
 import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry, start_http_server
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
-from zmq.utils.monitor import recv_monitor_message
 
 from daemon.config import ModelConfig
 from daemon.exitcodes import EXIT_DURABILITY, EXIT_OK
 from daemon.runtime import wire
-from daemon.runtime.metrics import PREFIX, ServiceCollector
+from daemon.runtime.feed import Feed, FeedStats
+from daemon.runtime.metrics import ServiceCollector
 from daemon.runtime.runner import ModelRunner, PredBatch, Rejected
 from daemon.runtime.security import (
     DOMAIN_CONTROL,
@@ -124,8 +123,9 @@ class Service:
         self.config_path = config_path
         self.runners: dict[str, ModelRunner] = {m.name: ModelRunner(m) for m in config.models}
         self.security: Security | None = None
-        self._feed_monitor = None
-        self.feed_disconnects: Counter = Counter()
+        self._feed_link: Feed | None = None
+        self._feed_monitor = None  # what the loop polls for the feed watcher's requests
+        self.feed_stats = FeedStats(config.daemon.feeds)
         self.received: Counter = Counter()
         self.rejected_unknown: Counter = Counter()
         self.reloads: Counter = Counter()
@@ -159,27 +159,9 @@ class Service:
 
     # ------------------------------------------------------------------ hooks for later layers
     def extra_metrics(self):
-        drops = CounterMetricFamily(f"{PREFIX}_feed_disconnects", "Feed connections dropped "
-                                    "(and reconnected), per feed endpoint.",
-                                    labels=["endpoint"])
-        for ep in self.config.daemon.feeds:
-            drops.add_metric([ep], self.feed_disconnects.get(ep, 0))
-        yield drops
-        if self.store is None:
-            return
-        records = CounterMetricFamily(f"{PREFIX}_wal_records", "Write-ahead log records "
-                                      "appended by this process.")
-        records.add_metric([], self.wal_records)
-        ckpts = CounterMetricFamily(f"{PREFIX}_checkpoints", "Checkpoints written by this "
-                                    "process.")
-        ckpts.add_metric([], self.checkpoints)
-        replayed = GaugeMetricFamily(f"{PREFIX}_wal_replayed_records", "Write-ahead log "
-                                     "records replayed at start-up.")
-        replayed.add_metric([], self.replayed)
-        pending = GaugeMetricFamily(f"{PREFIX}_wal_pending_records", "Records written but "
-                                    "not fsynced yet.")
-        pending.add_metric([], self.store.pending)
-        yield from (records, ckpts, replayed, pending)
+        """Metric families of later layers (the service's own are in
+        :data:`daemon.runtime.metrics.METRICS`)."""
+        yield from ()
 
     # ------------------------------------------------------------------ durable state
     def open_state(self) -> None:
@@ -395,22 +377,11 @@ class Service:
         # the authenticator must run before a CURVE server socket binds
         self.security = Security(ctx, keys)
         self.security.start()
-        self.sub = ctx.socket(zmq.SUB)
-        self.sub.setsockopt(zmq.LINGER, 0)
-        self.sub.setsockopt(zmq.RCVHWM, d.hwm)
-        # ZMQ_MAXMSGSIZE bounds the memory one message can take. libzmq drops a connection
-        # that exceeds it and does not reconnect by itself, so a monitor socket watches for
-        # disconnections and the loop reconnects that feed (counted and logged). The margin
-        # lets a message a little over the limit reach the decoder and be counted too_large.
-        self.sub.setsockopt(zmq.MAXMSGSIZE, 2 * d.max_message_bytes + 4096)
-        self._feed_monitor = self.sub.get_monitor_socket(zmq.EVENT_DISCONNECTED)
-        self.sub.setsockopt(zmq.RECONNECT_IVL, max(1, int(d.reconnect_ivl * 1000)))
-        self.sub.setsockopt(zmq.RECONNECT_IVL_MAX, max(1, int(d.reconnect_ivl_max * 1000)))
-        for name in self.runners:
-            self.sub.setsockopt(zmq.SUBSCRIBE, name.encode())
-        self.security.client(self.sub)
-        for ep in d.feeds:
-            self.sub.connect(ep)
+        # the feed SUB with its reconnection policy and monitor thread (daemon.runtime.feed)
+        self._feed_link = Feed(ctx, d, self.runners, self.security, self.feed_stats, log)
+        self.sub = self._feed_link.sock
+        self._feed_monitor = self._feed_link.wakeup
+        self._feed_link.start()
         self.pub = ctx.socket(zmq.PUB)
         self.pub.setsockopt(zmq.LINGER, PUB_LINGER_MS)
         self.pub.setsockopt(zmq.SNDHWM, d.hwm)
@@ -504,22 +475,8 @@ class Service:
             self.reload()
 
     def _feed_dropped(self) -> None:
-        """Reconnect a feed whose connection libzmq dropped (e.g. an oversize message)."""
-        while True:
-            try:
-                event = recv_monitor_message(self._feed_monitor, zmq.NOBLOCK)
-            except zmq.Again:
-                return
-            ep = event["endpoint"].decode("utf-8", "replace")
-            feeds = self.config.daemon.feeds
-            targets = [ep] if ep in feeds else list(feeds)
-            self.feed_disconnects[ep] += 1
-            log.warning("feed %s disconnected (a message over ZMQ_MAXMSGSIZE, or the "
-                        "publisher went away); reconnecting %s", ep, ", ".join(targets))
-            for target in targets:
-                with contextlib.suppress(zmq.ZMQError):  # not connected any more
-                    self.sub.disconnect(target)
-                self.sub.connect(target)
+        """Reconnect feeds as the feed watcher asks (see :mod:`daemon.runtime.feed`)."""
+        self._feed_link.act()
 
     def drain(self) -> int:
         """Take queued feed messages without blocking, process, publish.
@@ -905,11 +862,8 @@ class Service:
     def close(self) -> None:
         """Close everything in the documented order (idempotent)."""
         if self.sub is not None:
-            if self._feed_monitor is not None:
-                self.sub.disable_monitor()
-                self._feed_monitor.close(linger=0)
-                self._feed_monitor = None
-            self.sub.close(linger=0)
+            self._feed_link.close()
+            self._feed_link = self._feed_monitor = None
             self.closed_order.append("feed")
             self.sub = None
         if self.rep is not None:
