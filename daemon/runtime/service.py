@@ -444,7 +444,7 @@ class Service:
         try:
             while not self._stop:
                 socks = dict(self.poller.poll(self._poll_ms()))
-                if self._wake_r in socks:
+                if self._wake_r.fileno() in socks:  # the poller reports plain sockets by fd
                     # empty the wake-up pipe; the events themselves are in the queue
                     with contextlib.suppress(BlockingIOError):
                         while self._wake_r.recv(4096):
