@@ -26,7 +26,7 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "stabilized_rows", "update"]
+           "stabilized_rows", "term_drift", "update"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
 MAX_N = 256
@@ -292,6 +292,106 @@ def random_walk(R, z, c, /) -> None:
         sign = -1.0 if X[i, i] < 0.0 else 1.0
         Rv[i, i:] = sign * X[i, i:]
         zv[i] = sign * zn[i]
+
+
+def _rotate_rows(R, z, a: int, b: int, c: float, s: float, j0: int) -> None:
+    """Apply the rotation ``[c s; -s c]`` to rows ``a, b`` of ``[R | z]`` from column ``j0``."""
+    t = R[a, j0:].copy()
+    R[a, j0:] = c * t + s * R[b, j0:]
+    R[b, j0:] = c * R[b, j0:] - s * t
+    za, zb = float(z[a]), float(z[b])
+    z[a] = c * za + s * zb
+    z[b] = c * zb - s * za
+
+
+def _drift_one(R, z, h, j: int, c: float) -> None:
+    """Information form of ``V <- V + c e_j e_j^T`` (see :func:`term_drift`)."""
+    # 1: rotate column j of R into row 0, from the bottom; rows 0..j become upper
+    # Hessenberg, with the entry (i, i - 1) kept in h[i] (never below R's diagonal)
+    for i in range(j, 0, -1):
+        x, y = float(R[i - 1, j]), float(R[i, j])
+        if y == 0.0:
+            continue
+        r = math.hypot(x, y)
+        cs, sn = x / r, y / r
+        d = float(R[i - 1, i - 1])
+        h[i] = -sn * d
+        R[i - 1, i - 1] = cs * d
+        _rotate_rows(R, z, i - 1, i, cs, sn, i)
+        R[i - 1, j] = r
+        R[i, j] = 0.0
+    # 2: the whole column is now R[0, j] e_0, so the increment acts on row 0 alone
+    if R[0, j] != 0.0:
+        f = 1.0 / math.hypot(1.0, math.sqrt(c) * float(R[0, j]))
+        R[0, :] *= f
+        z[0] *= f
+    # 3: back to upper triangular, from the top
+    for i in range(1, j + 1):
+        x, y = float(R[i - 1, i - 1]), float(h[i])
+        if y == 0.0:
+            continue
+        r = math.hypot(x, y)
+        cs, sn = x / r, y / r
+        R[i - 1, i - 1] = r
+        h[i] = 0.0
+        _rotate_rows(R, z, i - 1, i, cs, sn, i)
+    for i in range(j + 1):
+        if R[i, i] < 0.0:
+            R[i, i:] = -R[i, i:]
+            z[i] = -z[i]
+
+
+def term_drift(R, z, q, s, /) -> None:
+    """Square-root information time update for weights with independent random walks.
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular factor; overwritten.
+    z : float64 buffer, shape (n,)
+        Information vector; overwritten.
+    q : float64 buffer, shape (n,)
+        Non-negative finite rates, one per weight (0: that weight does not move).
+    s : float
+        Non-negative finite factor: weight ``j`` gets the variance ``c_j = s * q_j``.
+
+    Notes
+    -----
+    The covariance becomes ``V + C``, ``C = diag(c)``; in information form
+    ``Lambda' = Lambda (I + C Lambda)^{-1}`` and ``eta' = (I + C Lambda)^{-1} eta``, so
+    the mean is unchanged and a singular ``R`` is fine. Since ``C`` is a sum of the
+    rank-one terms ``c_j e_j e_j^T`` and increments of ``V`` add up, the update is done one
+    weight with ``c_j > 0`` at a time, each exactly:
+
+    ``Lambda' = R^T (I + a a^T)^{-1} R`` with ``a = sqrt(c_j) R e_j``, which lives in rows
+    ``0..j``. Rotations ``H`` of the rows ``(i-1, i)``, ``i = j..1``, turn ``a`` into
+    ``|a| e_0``; then ``(I + a a^T)^{-1} = H^T diag(1 / (1 + |a|^2), 1, ...) H``, so row 0
+    of ``H R`` is scaled by ``1 / hypot(1, |a|)``, and rotations of the same row pairs from
+    the top make the upper Hessenberg ``H R`` triangular again. That costs about
+    ``12 j n`` flops for weight ``j``; for ``j = 0`` (a constant first in the basis) it is
+    a scaling of row 0. Rows with a negative diagonal are negated at the end.
+
+    A ``c_j`` that overflows to infinity is taken as its limit: everything known about
+    weight ``j`` is forgotten (row 0 of ``H R`` becomes zero).
+    """
+    sv = _real(s, "s")
+    if not (sv >= 0.0 and math.isfinite(sv)):
+        raise ValueError(f"s must be non-negative and finite, got {s!r}")
+    zv = _array(z, "z", 1, None, True)
+    n = zv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, True)
+    qv = _array(q, "q", 1, n, False)
+    _check_disjoint({"z": zv, "R": Rv}, {"q": qv})
+    for j in range(n):
+        qj = float(qv[j])
+        if not (qj >= 0.0 and math.isfinite(qj)):
+            raise ValueError(f"q must be non-negative and finite, got q[{j}] = {qj!r}")
+    h = np.zeros(n)
+    for j in range(n):
+        c = sv * float(qv[j])
+        if c != 0.0:
+            _drift_one(Rv, zv, h, j, c)
 
 
 def stabilized_rows(out, M, kappa, c0, dc, P, dt, half_life, /) -> None:

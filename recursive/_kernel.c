@@ -489,6 +489,72 @@ random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
     return 0;
 }
 
+/*
+ * SRIF time update for independent random walks of the weights, covariance increment
+ * diag(c) with c_j = s q_j (recursive/_givens.py term_drift is the reference).
+ *
+ * Lambda' = Lambda (I + C Lambda)^{-1}; since diag(c) is a sum of the rank-one terms
+ * c_j e_j e_j^T and covariance increments add, each weight with c_j > 0 is done in turn:
+ * Lambda' = R^T (I + a a^T)^{-1} R with a = sqrt(c_j) R e_j, which lives in rows 0..j.
+ * Rotations of the row pairs (i-1, i), i = j..1, turn column j into R[0, j] e_0 and leave
+ * rows 0..j upper Hessenberg (the entries (i, i-1) are kept in h, so nothing below R's
+ * diagonal is written); row 0 is scaled by 1 / hypot(1, sqrt(c_j) R[0, j]); rotations of
+ * the same pairs from the top make it triangular again.  About 12 j n flops for weight j:
+ * a constant first in the basis costs one row scaling.  A c_j that overflows is taken as
+ * its limit (row 0 becomes zero: everything known about w_j is forgotten).
+ */
+static void
+drift_one(double *R, double *z, double *h, Py_ssize_t n, Py_ssize_t j, double c)
+{
+    for (Py_ssize_t i = j; i > 0; i--) {
+        double *Ru = R + (i - 1) * n, *Rl = R + i * n;
+        double x = Ru[j], y = Rl[j];
+        if (y == 0.0) {
+            continue;
+        }
+        double r = norm2(x, y), cs = x / r, sn = y / r;
+        double d = Ru[i - 1];
+        h[i] = -sn * d;
+        Ru[i - 1] = cs * d;
+        rotate_pair(Ru, Rl, cs, sn, i, n);
+        double t = z[i - 1];
+        z[i - 1] = cs * t + sn * z[i];
+        z[i] = cs * z[i] - sn * t;
+        Ru[j] = r;
+        Rl[j] = 0.0;
+    }
+    if (R[j] != 0.0) {
+        double f = 1.0 / hypot(1.0, sqrt(c) * R[j]);
+        for (Py_ssize_t k = 0; k < n; k++) {
+            R[k] *= f;
+        }
+        z[0] *= f;
+    }
+    for (Py_ssize_t i = 1; i <= j; i++) {
+        double *Ru = R + (i - 1) * n, *Rl = R + i * n;
+        double x = Ru[i - 1], y = h[i];
+        if (y == 0.0) {
+            continue;
+        }
+        double r = norm2(x, y), cs = x / r, sn = y / r;
+        Ru[i - 1] = r;
+        h[i] = 0.0;
+        rotate_pair(Ru, Rl, cs, sn, i, n);
+        double t = z[i - 1];
+        z[i - 1] = cs * t + sn * z[i];
+        z[i] = cs * z[i] - sn * t;
+    }
+    for (Py_ssize_t i = 0; i <= j; i++) {
+        double *Ri = R + i * n;
+        if (Ri[i] < 0.0) {
+            for (Py_ssize_t k = i; k < n; k++) {
+                Ri[k] = -Ri[k];
+            }
+            z[i] = -z[i];
+        }
+    }
+}
+
 /* ------------------------------------------------------------------ module functions */
 
 PyDoc_STRVAR(update_doc,
@@ -610,6 +676,59 @@ kernel_random_walk(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     if (rc < 0) {
         return NULL;
     }
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(term_drift_doc,
+"term_drift($module, R, z, q, s, /)\n--\n\n"
+"Square-root information time update for weights w_j <- w_j + noise_j, independent,\n"
+"var(noise_j) = s * q_j.\n\n"
+"In place: R^T R becomes Lambda (I + C Lambda)^{-1}, C = diag(s q), and the mean R^{-1} z\n"
+"is unchanged. Works for a singular R. q (n entries) and s must be non-negative and\n"
+"finite; a product s * q_j that overflows forgets everything known about w_j.");
+
+static PyObject *
+kernel_term_drift(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"z", "R", "q"};
+    Buffers b = {.count = 0};
+    double s, *R, *z, *q;
+    if (check_nargs("term_drift", nargs, 4) < 0 || get_double(args[3], "s", &s) < 0) {
+        return NULL;
+    }
+    if (!(s >= 0.0 && s <= DBL_MAX)) {
+        PyErr_Format(PyExc_ValueError, "s must be non-negative and finite, got %R", args[3]);
+        return NULL;
+    }
+    if ((z = get_array(&b, args[1], "z", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (R = get_array(&b, args[0], "R", 2, n, 1)) == NULL ||
+        (q = get_array(&b, args[2], "q", 1, n, 0)) == NULL || check_disjoint(&b, names, 2) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    for (Py_ssize_t j = 0; j < n; j++) {
+        if (!(q[j] >= 0.0 && q[j] <= DBL_MAX)) {
+            PyObject *v = PyFloat_FromDouble(q[j]);
+            if (v != NULL) {
+                PyErr_Format(PyExc_ValueError, "q must be non-negative and finite, got q[%zd] = %R",
+                             j, v);
+                Py_DECREF(v);
+            }
+            release_all(&b);
+            return NULL;
+        }
+    }
+    double h[MAX_N];
+    for (Py_ssize_t j = 0; j < n; j++) {
+        double c = s * q[j];
+        if (c != 0.0) {
+            drift_one(R, z, h, n, j, c);
+        }
+    }
+    release_all(&b);
     Py_RETURN_NONE;
 }
 
@@ -829,6 +948,8 @@ static PyMethodDef kernel_methods[] = {
      stabilize_doc},
     {"random_walk", (PyCFunction)(void (*)(void))kernel_random_walk, METH_FASTCALL,
      random_walk_doc},
+    {"term_drift", (PyCFunction)(void (*)(void))kernel_term_drift, METH_FASTCALL,
+     term_drift_doc},
     {"predict", (PyCFunction)(void (*)(void))kernel_predict, METH_FASTCALL, predict_doc},
     {"solve_upper", (PyCFunction)(void (*)(void))kernel_solve_upper, METH_FASTCALL,
      solve_upper_doc},
