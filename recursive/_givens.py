@@ -294,48 +294,31 @@ def random_walk(R, z, c, /) -> None:
         zv[i] = sign * zn[i]
 
 
-def _rotate_rows(R, z, a: int, b: int, c: float, s: float, j0: int) -> None:
-    """Apply the rotation ``[c s; -s c]`` to rows ``a, b`` of ``[R | z]`` from column ``j0``."""
-    t = R[a, j0:].copy()
-    R[a, j0:] = c * t + s * R[b, j0:]
-    R[b, j0:] = c * R[b, j0:] - s * t
-    za, zb = float(z[a]), float(z[b])
-    z[a] = c * za + s * zb
-    z[b] = c * zb - s * za
-
-
-def _drift_one(R, z, h, j: int, c: float) -> None:
+def _drift_one(R, z, s_row, j: int, c: float) -> None:
     """Information form of ``V <- V + c e_j e_j^T`` (see :func:`term_drift`)."""
-    # 1: rotate column j of R into row 0, from the bottom; rows 0..j become upper
-    # Hessenberg, with the entry (i, i - 1) kept in h[i] (never below R's diagonal)
-    for i in range(j, 0, -1):
-        x, y = float(R[i - 1, j]), float(R[i, j])
-        if y == 0.0:
-            continue
-        r = math.hypot(x, y)
-        cs, sn = x / r, y / r
-        d = float(R[i - 1, i - 1])
-        h[i] = -sn * d
-        R[i - 1, i - 1] = cs * d
-        _rotate_rows(R, z, i - 1, i, cs, sn, i)
-        R[i - 1, j] = r
-        R[i, j] = 0.0
-    # 2: the whole column is now R[0, j] e_0, so the increment acts on row 0 alone
-    if R[0, j] != 0.0:
-        f = 1.0 / math.hypot(1.0, math.sqrt(c) * float(R[0, j]))
-        R[0, :] *= f
-        z[0] *= f
-    # 3: back to upper triangular, from the top
-    for i in range(1, j + 1):
-        x, y = float(R[i - 1, i - 1]), float(h[i])
-        if y == 0.0:
-            continue
-        r = math.hypot(x, y)
-        cs, sn = x / r, y / r
-        R[i - 1, i - 1] = r
-        h[i] = 0.0
-        _rotate_rows(R, z, i - 1, i, cs, sn, i)
-    for i in range(j + 1):
+    col = np.flatnonzero(R[:j + 1, j])
+    if col.size == 0:
+        return  # nothing is known about w_j: nothing to forget
+    p = int(col[-1])
+    # E_i = 1 + c sum_{k >= i} R_kj^2, or that over c when c > 1 (so that c = inf works)
+    rho, e = (c, 1.0) if c <= 1.0 else (1.0, 1.0 / c)
+    s_row[:] = 0.0
+    s_z = 0.0
+    for i in range(p, -1, -1):
+        rij = float(R[i, j])
+        if rij == 0.0:
+            continue  # f = 1, g = 0: the row is unchanged
+        e_new = e + rho * rij * rij
+        y = R[i, i:] - rij * s_row[i:]
+        yz = float(z[i]) - rij * s_z
+        f = math.sqrt(e / e_new)
+        g = rho * rij / e_new
+        s_row[i:] += g * y
+        s_z += g * yz
+        R[i, i:] = f * y
+        z[i] = f * yz
+        e = e_new
+    for i in range(p + 1):
         if R[i, i] < 0.0:
             R[i, i:] = -R[i, i:]
             z[i] = -z[i]
@@ -359,20 +342,32 @@ def term_drift(R, z, q, s, /) -> None:
     -----
     The covariance becomes ``V + C``, ``C = diag(c)``; in information form
     ``Lambda' = Lambda (I + C Lambda)^{-1}`` and ``eta' = (I + C Lambda)^{-1} eta``, so
-    the mean is unchanged and a singular ``R`` is fine. Since ``C`` is a sum of the
-    rank-one terms ``c_j e_j e_j^T`` and increments of ``V`` add up, the update is done one
-    weight with ``c_j > 0`` at a time, each exactly:
+    the mean is unchanged and a singular ``R`` is fine. ``C`` is a sum of the rank-one
+    terms ``c_j e_j e_j^T``, and increments of ``V`` add up, so the weights with
+    ``c_j > 0`` are done one at a time, each exactly.
 
-    ``Lambda' = R^T (I + a a^T)^{-1} R`` with ``a = sqrt(c_j) R e_j``, which lives in rows
-    ``0..j``. Rotations ``H`` of the rows ``(i-1, i)``, ``i = j..1``, turn ``a`` into
-    ``|a| e_0``; then ``(I + a a^T)^{-1} = H^T diag(1 / (1 + |a|^2), 1, ...) H``, so row 0
-    of ``H R`` is scaled by ``1 / hypot(1, |a|)``, and rotations of the same row pairs from
-    the top make the upper Hessenberg ``H R`` triangular again. That costs about
-    ``12 j n`` flops for weight ``j``; for ``j = 0`` (a constant first in the basis) it is
-    a scaling of row 0. Rows with a negative diagonal are negated at the end.
+    For one weight, ``Lambda' = R^T (I + a a^T)^{-1} R`` with ``a = sqrt(c) r``,
+    ``r = R e_j`` (zero below row ``j``). As in :func:`random_walk`, ``R' = U^{-T} R`` with
+    ``U`` lower triangular, ``U^T U = I + a a^T``; here ``U`` is known in closed form
+    (the Cholesky factor of an identity plus a rank-one term, in reverse order): with
+    ``T_i = 1 + c sum_{k >= i} r_k^2``,
+    ``U_ii = sqrt(T_i / T_{i+1})`` and ``U_ki = c r_k r_i / sqrt(T_i T_{i+1})`` for
+    ``k < i``. The back substitution ``U^T R' = R`` then needs one running row
+    ``S = sum_{k > i} c r_k R'_k / sqrt(T_k T_{k+1})``: from the last row with
+    ``r_i != 0`` up,
 
-    A ``c_j`` that overflows to infinity is taken as its limit: everything known about
-    weight ``j`` is forgotten (row 0 of ``H R`` becomes zero).
+    .. math::
+
+        Y_i = R_i - r_i S, \\quad R'_i = \\sqrt{T_{i+1} / T_i}\\, Y_i, \\quad
+        S \\leftarrow S + (c\\, r_i / T_i)\\, Y_i ,
+
+    and likewise for ``z``: about ``4 j n`` flops, a scaling of row 0 for ``j = 0`` (a
+    constant first in the basis). ``U^{-T}`` is upper triangular with a positive
+    diagonal, so zero rows of ``R`` stay zero, ``R'_ii`` has the sign of ``R_ii`` (rows
+    with a negative one are negated at the end) and rows with ``r_i = 0`` are unchanged.
+    For ``c > 1`` the ``T_i`` are divided by ``c``, which changes neither ratio and lets
+    a ``c`` that overflowed to infinity give its limit: everything known about ``w_j`` is
+    forgotten (row ``p``, the last with ``r_p != 0``, becomes zero).
     """
     sv = _real(s, "s")
     if not (sv >= 0.0 and math.isfinite(sv)):
@@ -387,11 +382,11 @@ def term_drift(R, z, q, s, /) -> None:
         qj = float(qv[j])
         if not (qj >= 0.0 and math.isfinite(qj)):
             raise ValueError(f"q must be non-negative and finite, got q[{j}] = {qj!r}")
-    h = np.zeros(n)
+    s_row = np.zeros(n)
     for j in range(n):
         c = sv * float(qv[j])
         if c != 0.0:
-            _drift_one(Rv, zv, h, j, c)
+            _drift_one(Rv, zv, s_row, j, c)
 
 
 def stabilized_rows(out, M, kappa, c0, dc, P, dt, half_life, /) -> None:

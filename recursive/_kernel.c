@@ -493,58 +493,53 @@ random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
  * SRIF time update for independent random walks of the weights, covariance increment
  * diag(c) with c_j = s q_j (recursive/_givens.py term_drift is the reference).
  *
- * Lambda' = Lambda (I + C Lambda)^{-1}; since diag(c) is a sum of the rank-one terms
- * c_j e_j e_j^T and covariance increments add, each weight with c_j > 0 is done in turn:
- * Lambda' = R^T (I + a a^T)^{-1} R with a = sqrt(c_j) R e_j, which lives in rows 0..j.
- * Rotations of the row pairs (i-1, i), i = j..1, turn column j into R[0, j] e_0 and leave
- * rows 0..j upper Hessenberg (the entries (i, i-1) are kept in h, so nothing below R's
- * diagonal is written); row 0 is scaled by 1 / hypot(1, sqrt(c_j) R[0, j]); rotations of
- * the same pairs from the top make it triangular again.  About 12 j n flops for weight j:
- * a constant first in the basis costs one row scaling.  A c_j that overflows is taken as
- * its limit (row 0 becomes zero: everything known about w_j is forgotten).
+ * Lambda' = Lambda (I + C Lambda)^{-1}; diag(c) is a sum of the rank-one terms
+ * c_j e_j e_j^T and covariance increments add, so each weight with c_j > 0 is done in
+ * turn: Lambda' = R^T (I + a a^T)^{-1} R with a = sqrt(c) r, r = R e_j.  As in
+ * random_walk, R' = U^{-T} R with U^T U = I + a a^T, but U is known in closed form (the
+ * Cholesky factor of a rank-one change of I, in reverse order), so the back substitution
+ * needs one running row S: with E_i = 1 + c sum_{k >= i} r_k^2, from the last row with
+ * r_i != 0 up, Y = R_i - r_i S, R'_i = sqrt(E_{i+1} / E_i) Y, S += (c r_i / E_i) Y.
+ * About 4 j n flops for weight j (one row scaling for j = 0).  For c > 1 the E_i are
+ * divided by c (rho = 1, E starts at 1/c), which keeps the ratios and makes an overflowed
+ * c = inf the exact limit: everything known about w_j is forgotten.
  */
 static void
-drift_one(double *R, double *z, double *h, Py_ssize_t n, Py_ssize_t j, double c)
+drift_one(double *R, double *z, double *S, Py_ssize_t n, Py_ssize_t j, double c)
 {
-    for (Py_ssize_t i = j; i > 0; i--) {
-        double *Ru = R + (i - 1) * n, *Rl = R + i * n;
-        double x = Ru[j], y = Rl[j];
-        if (y == 0.0) {
-            continue;
-        }
-        double r = norm2(x, y), cs = x / r, sn = y / r;
-        double d = Ru[i - 1];
-        h[i] = -sn * d;
-        Ru[i - 1] = cs * d;
-        rotate_pair(Ru, Rl, cs, sn, i, n);
-        double t = z[i - 1];
-        z[i - 1] = cs * t + sn * z[i];
-        z[i] = cs * z[i] - sn * t;
-        Ru[j] = r;
-        Rl[j] = 0.0;
+    Py_ssize_t p = j;
+    while (p >= 0 && R[p * n + j] == 0.0) {
+        p--;
     }
-    if (R[j] != 0.0) {
-        double f = 1.0 / hypot(1.0, sqrt(c) * R[j]);
-        for (Py_ssize_t k = 0; k < n; k++) {
-            R[k] *= f;
-        }
-        z[0] *= f;
+    if (p < 0) {
+        return;  /* nothing is known about w_j */
     }
-    for (Py_ssize_t i = 1; i <= j; i++) {
-        double *Ru = R + (i - 1) * n, *Rl = R + i * n;
-        double x = Ru[i - 1], y = h[i];
-        if (y == 0.0) {
-            continue;
-        }
-        double r = norm2(x, y), cs = x / r, sn = y / r;
-        Ru[i - 1] = r;
-        h[i] = 0.0;
-        rotate_pair(Ru, Rl, cs, sn, i, n);
-        double t = z[i - 1];
-        z[i - 1] = cs * t + sn * z[i];
-        z[i] = cs * z[i] - sn * t;
+    double rho = c, e = 1.0;
+    if (c > 1.0) {
+        rho = 1.0;
+        e = 1.0 / c;
     }
-    for (Py_ssize_t i = 0; i <= j; i++) {
+    memset(S, 0, (size_t)n * sizeof(double));
+    double sz = 0.0;
+    for (Py_ssize_t i = p; i >= 0; i--) {
+        double *Ri = R + i * n;
+        double r = Ri[j];
+        if (r == 0.0) {
+            continue;  /* the row is unchanged */
+        }
+        double e_new = e + rho * r * r;
+        double f = sqrt(e / e_new), g = rho * r / e_new;
+        for (Py_ssize_t k = i; k < n; k++) {
+            double y = Ri[k] - r * S[k];
+            S[k] += g * y;
+            Ri[k] = f * y;
+        }
+        double yz = z[i] - r * sz;
+        sz += g * yz;
+        z[i] = f * yz;
+        e = e_new;
+    }
+    for (Py_ssize_t i = 0; i <= p; i++) {
         double *Ri = R + i * n;
         if (Ri[i] < 0.0) {
             for (Py_ssize_t k = i; k < n; k++) {
@@ -721,11 +716,11 @@ kernel_term_drift(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
             return NULL;
         }
     }
-    double h[MAX_N];
+    double S[MAX_N];
     for (Py_ssize_t j = 0; j < n; j++) {
         double c = s * q[j];
         if (c != 0.0) {
-            drift_one(R, z, h, n, j, c);
+            drift_one(R, z, S, n, j, c);
         }
     }
     release_all(&b);

@@ -139,43 +139,6 @@ def lapack_random_walk(r, z, c) -> None:
     z[...] = x[:, n]
 
 
-def lapack_term_drift(r, z, q, s) -> None:
-    """Time update for independent random walks ``diag(s q)`` (see ``_givens.term_drift``).
-
-    With ``A`` the columns ``j`` of ``R`` with ``c_j = s q_j > 0``, each times
-    ``sqrt(c_j)``, ``Lambda' = R^T (I + A A^T)^{-1} R``. ``A`` lives in the first ``m``
-    rows (``m - 1`` the last drifting weight), so only they change: ``U`` (lower
-    triangular, ``U^T U = I_m + A A^T``) from a QR factorization of ``[I_m; A^T]`` with its
-    columns reversed, then ``R'[:m] = U^{-T} R[:m]``. A ``c_j`` that overflows is left to
-    the reference, which takes its limit.
-    """
-    c = s * np.asarray(q, dtype=float)
-    if not np.isfinite(c).all():
-        _givens.term_drift(r, z, q, s)
-        return
-    idx = np.flatnonzero(c)
-    if idx.size == 0:
-        return
-    n = r.shape[0]
-    m = int(idx[-1]) + 1
-    ru = np.triu(r[:m])
-    a = np.empty((m + idx.size, m), order="F")
-    a[:m] = np.eye(m)
-    a[m:] = np.sqrt(c[idx])[:, None] * ru[:, idx].T
-    u = qr_r(a[:, ::-1].copy(order="F"))[::-1, ::-1]
-    u *= np.where(np.diagonal(u) < 0.0, -1.0, 1.0)[:, None]
-    rhs = np.empty((m, n + 1), order="F")
-    rhs[:, :n] = ru
-    rhs[:, n] = z[:m]
-    x, info = _dtrtrs(u, rhs, lower=1, trans=1)
-    if info != 0:  # pragma: no cover - U has a diagonal >= 1
-        raise np.linalg.LinAlgError(f"singular factor in term_drift (info={info})")
-    x = _positive_rows(x)
-    upper = np.triu(np.ones((m, n), bool))
-    r[:m] = np.where(upper, x[:, :n], r[:m])
-    z[:m] = x[:, n]
-
-
 def lapack_predict(r, z, phi) -> tuple[float, float]:
     """``(phi^T m, phi^T V phi)`` for one regressor; nan if ``r`` has a zero diagonal entry."""
     if r.shape[0] == 0:
@@ -200,7 +163,7 @@ if _kernel is not None:
     update = _kernel.update
     stabilize = _kernel.stabilize
     random_walk = _kernel.random_walk
-    term_drift = getattr(_kernel, "term_drift", None) or lapack_term_drift
+    term_drift = getattr(_kernel, "term_drift", None) or _givens.term_drift
     predict = _kernel.predict
     stabilized_rows = _kernel.stabilized_rows
 else:
@@ -208,7 +171,8 @@ else:
     update = lapack_update
     stabilize = lapack_stabilize
     random_walk = lapack_random_walk
-    term_drift = lapack_term_drift
+    # numpy already, and O(j n) per drifting weight: the reference serves as the fallback
+    term_drift = _givens.term_drift
     predict = lapack_predict
     # vectorized numpy already: the reference serves as the fallback
     stabilized_rows = _givens.stabilized_rows
