@@ -341,7 +341,7 @@ def term_drift(R, z, q, s, /) -> None:
     Notes
     -----
     The covariance becomes ``V + C``, ``C = diag(c)``; in information form
-    ``Lambda' = Lambda (I + C Lambda)^{-1}`` and ``eta' = (I + C Lambda)^{-1} eta``, so
+    ``Lambda' = Lambda (I + C Lambda)^{-1}`` and ``eta' = (I + Lambda C)^{-1} eta``, so
     the mean is unchanged and a singular ``R`` is fine. ``C`` is a sum of the rank-one
     terms ``c_j e_j e_j^T``, and increments of ``V`` add up, so the weights with
     ``c_j > 0`` are done one at a time, each exactly.

@@ -331,13 +331,14 @@ class TermDrift(Forgetting):
     fixed in absolute units whatever ``sigma`` would not. Choose ``q`` at ``sigma0``.
 
     *Square-root information form.* ``Lambda' = Lambda (I + C Lambda)^{-1}`` and
-    ``eta' = (I + C Lambda)^{-1} eta`` (the mean is unchanged). Only the ``k`` weights with
-    ``q_j > 0`` matter: ``C`` is a sum of ``k`` rank-one terms, and each is applied exactly
-    by Givens rotations of the rows ``0..j`` of ``[R | z]`` and the scaling of one row
-    (``recursive._givens.term_drift``), about ``12 j n`` flops for weight ``j``: a single
-    row scaling for a constant first in the basis. No inverse of ``R`` is formed, so the
-    update works before the weights are identified (a flat prior on the constant); a
-    weight nothing is known about stays so.
+    ``eta' = (I + Lambda C)^{-1} eta`` (the mean is unchanged). Only the ``k`` weights with
+    ``q_j > 0`` matter: ``C`` is a sum of ``k`` rank-one terms, and each is applied
+    exactly as ``R' = U^{-T} R``, ``U^T U = I + c_j R e_j e_j^T R^T``, with ``U`` in closed
+    form (``recursive._givens.term_drift``): about ``4 j n`` flops for weight ``j``, a
+    single row scaling for a constant first in the basis. No inverse of ``R`` is formed,
+    so the update works before the weights are identified (a flat prior on the
+    constant): zero rows and pivots of ``R`` stay where they are, and a weight nothing is
+    known about stays so.
 
     *Prediction after a gap.* ``phi^T V' phi = phi^T V phi + (dt / sigma_ref^2)
     sum_j q_j phi_j^2``, the mean unchanged. With ``half_life`` the first term is the
