@@ -5,7 +5,7 @@ square-root information form, with forgetting policies and a robust gate. Pure
 computation: imports only numpy and scipy; time is always passed in as an argument.
 """
 
-from recursive.forgetting import Exponential, Forgetting, RandomWalk, Stabilized
+from recursive.forgetting import Exponential, Forgetting, RandomWalk, Stabilized, TermDrift
 from recursive.posterior import Gate, OutOfOrderError, Posterior, Prediction, Step
 
 __all__ = [
@@ -18,4 +18,5 @@ __all__ = [
     "RandomWalk",
     "Stabilized",
     "Step",
+    "TermDrift",
 ]

@@ -26,7 +26,7 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "stabilized_rows", "update"]
+           "stabilized_rows", "term_drift", "update"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
 MAX_N = 256
@@ -292,6 +292,101 @@ def random_walk(R, z, c, /) -> None:
         sign = -1.0 if X[i, i] < 0.0 else 1.0
         Rv[i, i:] = sign * X[i, i:]
         zv[i] = sign * zn[i]
+
+
+def _drift_one(R, z, s_row, j: int, c: float) -> None:
+    """Information form of ``V <- V + c e_j e_j^T`` (see :func:`term_drift`)."""
+    col = np.flatnonzero(R[:j + 1, j])
+    if col.size == 0:
+        return  # nothing is known about w_j: nothing to forget
+    p = int(col[-1])
+    # E_i = 1 + c sum_{k >= i} R_kj^2, or that over c when c > 1 (so that c = inf works)
+    rho, e = (c, 1.0) if c <= 1.0 else (1.0, 1.0 / c)
+    s_row[:] = 0.0
+    s_z = 0.0
+    for i in range(p, -1, -1):
+        rij = float(R[i, j])
+        if rij == 0.0:
+            continue  # f = 1, g = 0: the row is unchanged
+        e_new = e + rho * rij * rij
+        y = R[i, i:] - rij * s_row[i:]
+        yz = float(z[i]) - rij * s_z
+        f = math.sqrt(e / e_new)
+        g = rho * rij / e_new
+        s_row[i:] += g * y
+        s_z += g * yz
+        R[i, i:] = f * y
+        z[i] = f * yz
+        e = e_new
+    for i in range(p + 1):
+        if R[i, i] < 0.0:
+            R[i, i:] = -R[i, i:]
+            z[i] = -z[i]
+
+
+def term_drift(R, z, q, s, /) -> None:
+    """Square-root information time update for weights with independent random walks.
+
+    Parameters
+    ----------
+    R : float64 buffer, shape (n, n)
+        Upper-triangular factor; overwritten.
+    z : float64 buffer, shape (n,)
+        Information vector; overwritten.
+    q : float64 buffer, shape (n,)
+        Non-negative finite rates, one per weight (0: that weight does not move).
+    s : float
+        Non-negative finite factor: weight ``j`` gets the variance ``c_j = s * q_j``.
+
+    Notes
+    -----
+    The covariance becomes ``V + C``, ``C = diag(c)``; in information form
+    ``Lambda' = Lambda (I + C Lambda)^{-1}`` and ``eta' = (I + Lambda C)^{-1} eta``, so
+    the mean is unchanged and a singular ``R`` is fine. ``C`` is a sum of the rank-one
+    terms ``c_j e_j e_j^T``, and increments of ``V`` add up, so the weights with
+    ``c_j > 0`` are done one at a time, each exactly.
+
+    For one weight, ``Lambda' = R^T (I + a a^T)^{-1} R`` with ``a = sqrt(c) r``,
+    ``r = R e_j`` (zero below row ``j``). As in :func:`random_walk`, ``R' = U^{-T} R`` with
+    ``U`` lower triangular, ``U^T U = I + a a^T``; here ``U`` is known in closed form
+    (the Cholesky factor of an identity plus a rank-one term, in reverse order): with
+    ``T_i = 1 + c sum_{k >= i} r_k^2``,
+    ``U_ii = sqrt(T_i / T_{i+1})`` and ``U_ki = c r_k r_i / sqrt(T_i T_{i+1})`` for
+    ``k < i``. The back substitution ``U^T R' = R`` then needs one running row
+    ``S = sum_{k > i} c r_k R'_k / sqrt(T_k T_{k+1})``: from the last row with
+    ``r_i != 0`` up,
+
+    .. math::
+
+        Y_i = R_i - r_i S, \\quad R'_i = \\sqrt{T_{i+1} / T_i}\\, Y_i, \\quad
+        S \\leftarrow S + (c\\, r_i / T_i)\\, Y_i ,
+
+    and likewise for ``z``: about ``4 j n`` flops, a scaling of row 0 for ``j = 0`` (a
+    constant first in the basis). ``U^{-T}`` is upper triangular with a positive
+    diagonal, so zero rows of ``R`` stay zero, ``R'_ii`` has the sign of ``R_ii`` (rows
+    with a negative one are negated at the end) and rows with ``r_i = 0`` are unchanged.
+    For ``c > 1`` the ``T_i`` are divided by ``c``, which changes neither ratio and lets
+    a ``c`` that overflowed to infinity give its limit: everything known about ``w_j`` is
+    forgotten (row ``p``, the last with ``r_p != 0``, becomes zero).
+    """
+    sv = _real(s, "s")
+    if not (sv >= 0.0 and math.isfinite(sv)):
+        raise ValueError(f"s must be non-negative and finite, got {s!r}")
+    zv = _array(z, "z", 1, None, True)
+    n = zv.shape[0]
+    _check_n(n)
+    Rv = _array(R, "R", 2, n, True)
+    qv = _array(q, "q", 1, n, False)
+    _check_disjoint({"z": zv, "R": Rv}, {"q": qv})
+    for j in range(n):
+        qj = float(qv[j])
+        if not (qj >= 0.0 and math.isfinite(qj)):
+            raise ValueError(f"q must be non-negative and finite, got q[{j}] = {qj!r}")
+    s_row = np.zeros(n)
+    for j in range(n):
+        c = sv * float(qv[j])
+        if c != 0.0:
+            _drift_one(Rv, zv, s_row, j, c)
 
 
 def stabilized_rows(out, M, kappa, c0, dc, P, dt, half_life, /) -> None:

@@ -163,6 +163,7 @@ if _kernel is not None:
     update = _kernel.update
     stabilize = _kernel.stabilize
     random_walk = _kernel.random_walk
+    term_drift = getattr(_kernel, "term_drift", None) or _givens.term_drift
     predict = _kernel.predict
     stabilized_rows = _kernel.stabilized_rows
 else:
@@ -170,6 +171,8 @@ else:
     update = lapack_update
     stabilize = lapack_stabilize
     random_walk = lapack_random_walk
+    # numpy already, and O(j n) per drifting weight: the reference serves as the fallback
+    term_drift = _givens.term_drift
     predict = lapack_predict
     # vectorized numpy already: the reference serves as the fallback
     stabilized_rows = _givens.stabilized_rows

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -98,6 +98,10 @@ class Forgetting(ABC):
     @abstractmethod
     def to_dict(self) -> dict:
         """Plain-data description, inverse of :func:`forgetting_from_dict`."""
+
+    def check_features(self, n: int) -> None:
+        """Raise ValueError if the policy cannot serve a posterior with ``n`` weights."""
+        return None  # the scalar policies serve any n
 
 
 @dataclass(frozen=True)
@@ -296,6 +300,138 @@ class RandomWalk(Forgetting):
         return {"kind": self.kind, "q": self.q, "noise_half_life": self.noise_half_life}
 
 
+@dataclass(frozen=True)
+class TermDrift(Forgetting):
+    """Per-term random walks: each weight drifts at its own rate (diagonal process noise).
+
+    Parameters
+    ----------
+    q : sequence of float, length n
+        Variance added to weight ``j`` per time unit (or per sample), in the weight's own
+        units squared; 0 for a weight that does not drift. Typically only the constant
+        term drifts (an offset: feed composition, analyzer zero, fouling).
+    half_life : float, optional
+        If given, the whole posterior is also flattened toward the prior with this
+        half-life, as :class:`Stabilized` does, before the drift is added; the noise
+        statistics ``nu`` and ``ss`` then follow :class:`Stabilized` too. Otherwise they are
+        kept (the noise level is assumed constant).
+
+    Notes
+    -----
+    *Model.* ``w(t + dt) = w(t) + v``, ``v ~ N(0, dt Q)``, ``Q = diag(q)``: a Kalman filter
+    with ``F = I``. The time update of the weight covariance is ``P <- P + dt Q``; in the
+    scaled units of the state (covariance over the reference noise variance
+    ``sigma_ref^2``) it is ``V <- V + C``, ``C = (dt / sigma_ref^2) Q``. With all ``q_j``
+    equal this is :class:`RandomWalk`; with all zero, no forgetting.
+
+    *Units with learned noise.* ``q`` is absolute at the noise prior guess, as in
+    :class:`RandomWalk`: ``sigma_ref = sigma0`` and, given ``sigma^2``, the process noise
+    is ``dt Q sigma^2 / sigma0^2``. Scaling with ``sigma^2`` keeps the update conjugate
+    (the Normal-inverse-gamma form is kept exactly, the weights stay Student-t); a drift
+    fixed in absolute units whatever ``sigma`` would not. Choose ``q`` at ``sigma0``.
+
+    *Square-root information form.* ``Lambda' = Lambda (I + C Lambda)^{-1}`` and
+    ``eta' = (I + Lambda C)^{-1} eta`` (the mean is unchanged). Only the ``k`` weights with
+    ``q_j > 0`` matter: ``C`` is a sum of ``k`` rank-one terms, and each is applied
+    exactly as ``R' = U^{-T} R``, ``U^T U = I + c_j R e_j e_j^T R^T``, with ``U`` in closed
+    form (``recursive._givens.term_drift``): about ``4 j n`` flops for weight ``j``, a
+    single row scaling for a constant first in the basis. No inverse of ``R`` is formed,
+    so the update works before the weights are identified (a flat prior on the
+    constant): zero rows and pivots of ``R`` stay where they are, and a weight nothing is
+    known about stays so.
+
+    *Prediction after a gap.* ``phi^T V' phi = phi^T V phi + (dt / sigma_ref^2)
+    sum_j q_j phi_j^2``, the mean unchanged. With ``half_life`` the first term is the
+    stabilized one (``delta = 2**(-dt/half_life)``):
+    ``phi^T (delta Lambda + (1 - delta) Lambda_0)^{-1} phi``, from the pencil of
+    :class:`Stabilized`, row by row.
+
+    *Why stabilize all terms.* A half-life on some weights only is not an operation on
+    the joint information (the weights are correlated through ``Lambda``); this policy
+    flattens all of them and lets the drifting ones move faster. The composite update
+    (flatten, then drift) is exact for one gap; two gaps ``dt1 + dt2`` differ slightly
+    from one, as for any mix of two forgetting mechanisms.
+
+    *Choosing q.* An offset that wanders by about ``s`` units in ``sqrt(T)`` (its change
+    over a time ``T`` has standard deviation ``s``) has ``q = s^2 / T``: ``s`` units per
+    square root of an hour is ``q = s^2 / 3600`` per second.
+    """
+
+    q: tuple
+    half_life: float | None = None
+    kind = "term_drift"
+    # only a gap so long that dt q_j overflows (or, with a half-life, delta underflows)
+    may_lose_rank = True
+    _rates: np.ndarray = field(init=False, repr=False, compare=False)
+    _terms: tuple = field(init=False, repr=False, compare=False)
+    _stab: Stabilized | None = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self):
+        raw = self.q
+        if isinstance(raw, str | bytes | dict) or np.ndim(raw) != 1:
+            raise ValueError(f"q must be a sequence of non-negative rates, one per term, "
+                             f"got {raw!r}")
+        vals = []
+        for j, v in enumerate(raw):
+            try:
+                if isinstance(v, bool | str | bytes):
+                    raise TypeError
+                x = float(v)
+            except (TypeError, ValueError):
+                raise ValueError(f"q[{j}] must be a non-negative finite number, "
+                                 f"got {v!r}") from None
+            if not (x >= 0.0 and math.isfinite(x)):
+                raise ValueError(f"q[{j}] must be a non-negative finite number, got {v!r}")
+            vals.append(x)
+        if not vals:
+            raise ValueError(f"q must have one rate per term, got {raw!r}")
+        object.__setattr__(self, "q", tuple(vals))
+        rates = np.array(vals)
+        rates.flags.writeable = False
+        object.__setattr__(self, "_rates", rates)
+        object.__setattr__(self, "_terms", tuple((j, x) for j, x in enumerate(vals) if x > 0))
+        stab = None
+        if self.half_life is not None:
+            stab = Stabilized(self.half_life)
+            object.__setattr__(self, "half_life", stab.half_life)
+        object.__setattr__(self, "_stab", stab)
+
+    @property
+    def needs_u(self) -> bool:
+        # with a half-life the leverage comes from the stabilized pencil, row by row
+        return self._stab is None
+
+    def check_features(self, n: int) -> None:
+        if len(self.q) != n:
+            raise ValueError(f"term_drift q must have one rate per term ({n}), got "
+                             f"{len(self.q)}: {list(self.q)!r}")
+
+    def forget(self, R, z, nu, ss, prior, dt):
+        if dt <= 0.0:
+            return nu, ss
+        if self._stab is not None:
+            nu, ss = self._stab.forget(R, z, nu, ss, prior, dt)
+        if self._terms:
+            _linalg.term_drift(R, z, self._rates, dt / prior.ref_var)
+        return nu, ss
+
+    def widen(self, R, z, nu, ss, prior, phit, u, mean, dt, cache):
+        if self._stab is None:
+            lev = np.einsum("ij,ij->j", u, u)
+        else:
+            mean, lev, nu, ss = self._stab.widen(R, z, nu, ss, prior, phit, None, None, dt,
+                                                 cache)
+        s = np.asarray(dt, dtype=float) / prior.ref_var
+        # elementwise per row (no reduction over the batch), so rowwise results hold
+        for j, qj in self._terms:
+            p = phit[j]
+            lev = lev + (s * qj) * (p * p)
+        return mean, lev, nu, ss
+
+    def to_dict(self):
+        return {"kind": self.kind, "q": list(self.q), "half_life": self.half_life}
+
+
 def forgetting_from_dict(d: dict | None) -> Forgetting | None:
     """Rebuild a policy from :meth:`Forgetting.to_dict` output (``None`` for no forgetting)."""
     if d is None:
@@ -309,5 +445,7 @@ def forgetting_from_dict(d: dict | None) -> Forgetting | None:
         return Stabilized(d["half_life"])
     if kind == "random_walk":
         return RandomWalk(d["q"], d.get("noise_half_life"))
-    raise ValueError(f"unknown forgetting kind {kind!r}; expected exponential, stabilized "
-                     "or random_walk")
+    if kind == "term_drift":
+        return TermDrift(d["q"], d.get("half_life"))
+    raise ValueError(f"unknown forgetting kind {kind!r}; expected exponential, stabilized, "
+                     "random_walk or term_drift")

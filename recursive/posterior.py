@@ -222,7 +222,7 @@ class Posterior:
         ``(sigma0, strength)``: prior guess of the noise standard deviation and its weight in
         pseudo-observations, used when the noise is learned. ``strength = 0`` is the
         improper prior ``p(sigma^2) ~ 1/sigma^2``.
-    forgetting : Exponential, Stabilized, RandomWalk or None
+    forgetting : Exponential, Stabilized, RandomWalk, TermDrift or None
         How old information is discounted; ``None`` keeps everything.
     gate : float or Gate, optional
         Robust gate on the standardized residual (a float is ``Gate(k)``).
@@ -302,8 +302,10 @@ class Posterior:
             nu0, ss0 = strength, strength * ref_var
         self._noise_prior = None if noise_std is not None else (sigma0, strength)
         if forgetting is not None and not isinstance(forgetting, Forgetting):
-            raise ValueError(f"forgetting must be Exponential, Stabilized, RandomWalk or None, "
-                             f"got {forgetting!r}")
+            raise ValueError(f"forgetting must be Exponential, Stabilized, RandomWalk, "
+                             f"TermDrift or None, got {forgetting!r}")
+        if forgetting is not None:
+            forgetting.check_features(n)
         self._forgetting = forgetting
         if gate is not None and not isinstance(gate, Gate):
             gate = Gate(gate)
@@ -478,8 +480,9 @@ class Posterior:
         """Whether a batch prediction with times is computed row by row.
 
         Then each row's numbers are the same, bit for bit, whatever other rows share its
-        batch (no matrix product whose rounding depends on the batch): the stabilized
-        policy with the C kernel. Callers may then merge batches freely.
+        batch (no matrix product whose rounding depends on the batch): the policies that
+        widen from the regressors alone (``needs_u`` false: stabilized, and term drift with
+        a half-life) with the C kernel. Callers may then merge batches freely.
         """
         return (self._forgetting is not None and not self._forgetting.needs_u
                 and _linalg.HAVE_KERNEL)

@@ -16,9 +16,26 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import recursive
-from recursive import Exponential, Gate, OutOfOrderError, Posterior, RandomWalk, Stabilized
+from recursive import (
+    Exponential,
+    Gate,
+    OutOfOrderError,
+    Posterior,
+    RandomWalk,
+    Stabilized,
+    TermDrift,
+)
 
-POLICIES = [None, Stabilized(25.0), Exponential(40.0), RandomWalk(1e-3, noise_half_life=60.0)]
+POLICIES = [None, Stabilized(25.0), Exponential(40.0), RandomWalk(1e-3, noise_half_life=60.0),
+            TermDrift([1e-3, 0.0, 2e-4, 0.0, 0.0, 5e-4]),
+            TermDrift([1e-3, 0.0, 0.0, 0.0, 0.0, 0.0], half_life=50.0)]
+
+
+def _fit(policy, n):
+    """The policy for n weights (per-term rates are given for up to 6)."""
+    if isinstance(policy, TermDrift):
+        return TermDrift(policy.q[:n], half_life=policy.half_life)
+    return policy
 
 
 def _data(seed, n, N):
@@ -48,7 +65,7 @@ def test_without_forgetting_order_does_not_matter(seed, n, learned):
 @given(seed=st.integers(0, 2**31), policy=st.sampled_from(POLICIES), n=st.integers(2, 6))
 def test_covariance_stays_symmetric_positive_definite(seed, policy, n):
     rng = np.random.default_rng(seed)
-    post = Posterior(n, alpha=1.0, noise_prior=(0.3, 2.0), forgetting=policy)
+    post = Posterior(n, alpha=1.0, noise_prior=(0.3, 2.0), forgetting=_fit(policy, n))
     t = 0.0
     # poorly excited, badly scaled regressors over a long run
     scales = 10.0 ** rng.uniform(-3, 3, size=n)
@@ -69,7 +86,7 @@ def test_state_round_trip_is_bit_exact(seed, policy, gate, learned, cut):
     X, y = _data(seed, 4, 40)
     y[7] += 50.0  # an outlier for the gate
     kw = {"noise_prior": (0.3, 1.0)} if learned else {"noise_std": 0.2}
-    ref = Posterior(4, alpha=[0.0, 1.0, 1.0, 2.0], forgetting=policy, gate=gate, **kw)
+    ref = Posterior(4, alpha=[0.0, 1.0, 1.0, 2.0], forgetting=_fit(policy, 4), gate=gate, **kw)
     for i in range(cut):
         ref.update(X[i], y[i], t=float(i))
     state = ref.to_state()

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
-from recursive import Exponential, Posterior, RandomWalk, Stabilized
+from recursive import Exponential, Posterior, RandomWalk, Stabilized, TermDrift
 from recursive.basis import Input, Polynomial
 
 DATA = pathlib.Path(__file__).parent / "data"
@@ -309,7 +309,9 @@ def test_windup_stabilized_bounded_exponential_grows():
 
 # --------------------------------------------------------------------------- widening
 @pytest.mark.parametrize("policy", [Stabilized(30.0), Exponential(30.0), RandomWalk(2e-3),
-                                    RandomWalk(2e-3, noise_half_life=50.0)])
+                                    RandomWalk(2e-3, noise_half_life=50.0),
+                                    TermDrift([2e-3, 0.0, 5e-4, 0.0]),
+                                    TermDrift([2e-3, 0.0, 0.0, 0.0], half_life=30.0)])
 @pytest.mark.parametrize("noise_std", [0.3, None])
 def test_predict_with_time_equals_forget_then_predict(policy, noise_std):
     """The vectorized widening agrees with the exact time update (forget, then predict)."""
@@ -327,7 +329,7 @@ def test_predict_with_time_equals_forget_then_predict(policy, noise_std):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         batch = post.predict(Xq, t=ts)
-    if policy.kind != "random_walk":
+    if getattr(policy, "half_life", None) is not None:
         assert not batch.identified[-1] and math.isnan(batch.mean[-1])
     for j, tj in enumerate(ts):
         one = post.predict(Xq[j], t=tj)
