@@ -23,22 +23,45 @@ with atheris.instrument_imports():
 SPECS = {"c301": (("TI-104", "FI-201"), {"TI-104": 0, "FI-201": 1})}
 
 
+_FIELDS = (b"t", b"x", b"y", b"id", b"seq", b"src", b"model")
+
+
+def _bomb(fdp) -> bytes:
+    """A map with one field whose value is nested ``depth`` arrays deep (msgpack fixarray
+    of one element, 0x91) around fuzzed bytes, or a long flat array: depth and size bombs."""
+    key = _FIELDS[fdp.ConsumeIntInRange(0, len(_FIELDS) - 1)]
+    head = b"\x82\xa3cmd\xa6status" if fdp.ConsumeBool() else b"\x81"
+    field = bytes([0xA0 | len(key)]) + key
+    if fdp.ConsumeBool():
+        value = b"\x91" * fdp.ConsumeIntInRange(0, 3000) + fdp.ConsumeBytes(16)
+    else:
+        n = fdp.ConsumeIntInRange(0, 70000)
+        value = b"\xdd" + n.to_bytes(4, "big") + b"\x01" * n
+    return head + field + value
+
+
 def fuzz_wire(data: bytes) -> None:
     fdp = atheris.FuzzedDataProvider(data)
-    frames = [b"c301", fdp.ConsumeBytes(fdp.ConsumeIntInRange(0, 4096))]
+    if fdp.ConsumeBool():
+        payload = _bomb(fdp)
+    else:
+        payload = fdp.ConsumeBytes(fdp.ConsumeIntInRange(0, 4096))
+    frames = [b"c301", payload]
     if fdp.ConsumeBool():
         frames.append(fdp.ConsumeBytes(8))
     try:
-        wire.decode_feed(frames, SPECS, 65536)
-    except wire.WireError:
-        pass
+        wire.decode_feed(frames, SPECS, 1 << 20)
+    except wire.WireError as exc:
+        assert len(str(exc)) < 400, "an error message must stay short"
 
 
 def fuzz_control(data: bytes) -> None:
+    fdp = atheris.FuzzedDataProvider(data)
+    payload = _bomb(fdp) if fdp.ConsumeBool() else fdp.ConsumeBytes(4096)
     try:
-        wire.decode_control(data, 65536)
-    except wire.WireError:
-        pass
+        wire.decode_control(payload, 1 << 20)
+    except wire.WireError as exc:
+        assert len(str(exc)) < 400, "an error message must stay short"
 
 
 def fuzz_config(data: bytes) -> None:
