@@ -173,7 +173,7 @@ def run():
 def read_wal(folder: Path) -> list[dict]:
     """Every record of the folder's WAL segments, parsed without daemon code.
 
-    Framing as documented in daemon/store.py: u32 little-endian length, u32 CRC-32 of the
+    Framing as documented in daemon/runtime/store/: u32 little-endian length, u32 CRC-32 of the
     payload (zlib.crc32), payload = a msgpack map whose first key is "seq".
     """
     out = []

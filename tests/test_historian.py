@@ -1,4 +1,4 @@
-"""Tests of historian CSV reading/writing and dead-time alignment (daemon/historian.py)."""
+"""Tests of historian CSV reading/writing and dead-time alignment (daemon/workbench/historian.py, daemon/runtime/alignment.py)."""
 
 import calendar
 import io

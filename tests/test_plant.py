@@ -1,4 +1,4 @@
-"""Tests of the simulator of the invented C-301 column (daemon/plant.py)."""
+"""Tests of the simulator of the invented C-301 column (daemon/workbench/plant.py)."""
 
 import json
 import re

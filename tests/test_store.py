@@ -1,4 +1,4 @@
-"""Tests of the state folder (daemon/store.py): WAL, checkpoints, recovery, locking, faults.
+"""Tests of the state folder (daemon/runtime/store/): WAL, checkpoints, recovery, locking, faults.
 
 References used: the CRC-32 (IEEE 802.3) check value from the CRC catalogue, Python's
 ``binascii.crc32`` and ``struct`` for an independent reading of the documented byte layouts,

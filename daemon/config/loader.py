@@ -281,6 +281,6 @@ def load(path: str | Path) -> Config:
 
 
 def demo_config() -> Config:
-    """The built-in demo configuration (the packaged ``daemon/demo.toml``)."""
+    """The built-in demo configuration (the packaged ``daemon/config/demo.toml``)."""
     text = resources.files("daemon.config").joinpath("demo.toml").read_text(encoding="utf-8")
     return loads(text, "<demo>")

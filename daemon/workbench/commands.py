@@ -255,7 +255,7 @@ def cmd_watch(args) -> int:
 
 # ---------------------------------------------------------------------------------- parsers
 def _csv_options(p) -> None:
-    p.add_argument("data", help="historian CSV export (see daemon/historian.py)")
+    p.add_argument("data", help="historian CSV export (see daemon/workbench/historian.py)")
     p.add_argument("--target", help="lab column (default AX-350 when present)")
     p.add_argument("--tz", help="IANA time zone of naive time stamps")
     p.add_argument("--time-format", default="auto",
