@@ -1,4 +1,4 @@
-"""Tests of historian CSV reading/writing and dead-time alignment (daemon/workbench/historian.py, daemon/runtime/alignment.py)."""
+"""Tests of historian CSV reading/writing and of dead-time alignment (runtime/alignment.py)."""
 
 import calendar
 import io

@@ -8,7 +8,6 @@ on an edge the rules forbid and on any circle.
 from __future__ import annotations
 
 import ast
-import sys
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -154,8 +153,6 @@ def test_the_checks_catch_what_they_should():
 def test_every_package_is_installed():
     """pyproject's package list names every folder with an __init__.py (a wheel would
     silently leave out a forgotten one)."""
-    if sys.version_info < (3, 11):
-        return
     import tomllib
 
     listed = set(tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]
