@@ -175,21 +175,11 @@ def test_two_shards_and_a_relay_publish_what_one_daemon_publishes(tmp_path):
                         out[key][(topic, body["t"])] = payload
         assert len(out["d"]) == expected
         assert out["j"].keys() == out["d"].keys()
-        # The learned state is identical (updates are one sample at a time), but a prediction
-        # is computed in batches whose size depends on what one wake-up drained, and BLAS may
-        # round a batch of 5 differently from a batch of 50: equal to ~1e-15, not bit for bit.
+        # Every published byte is a function of the feed alone, whatever one wake-up drained
+        # (single samples are predicted row by row, their quantiles from their own dof): the
+        # sharded daemons publish exactly what the single daemon does.
         for key, payload in out["d"].items():
-            a, b = msgpack.unpackb(payload), msgpack.unpackb(out["j"][key])
-            assert a.keys() == b.keys()
-            for field, value in a.items():
-                if isinstance(value, float):
-                    np.testing.assert_allclose(b[field], value, rtol=1e-12, atol=1e-12,
-                                               err_msg=f"{key} {field}")
-                else:
-                    assert b[field] == value, (key, field)
-            if key[0].startswith(b"fit/"):
-                # a fit carries the learned posterior's own numbers: bit for bit
-                assert out["j"][key] == payload
+            assert out["j"][key] == payload, key
     finally:
         for svc in services.values():
             svc.post_event("stop")

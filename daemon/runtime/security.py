@@ -94,8 +94,8 @@ def check_binds(endpoints: dict[str, str], keys: CurveKeys) -> None:
             raise SecurityError(
                 f"daemon.{what} = {ep!r} binds beyond this host without CURVE: anyone on the "
                 f"network could {'read the predictions' if what == 'publish' else 'send commands'}"
-                f". Bind to 127.0.0.1 or ipc://, or configure [daemon.curve] (server key, "
-                f"clients and admins folders; see `posteriord keys new`)")
+                f". Bind to 127.0.0.1 or ipc://, or set curve_secret_key, curve_clients and "
+                f"curve_admins in [daemon] (see `posteriord keys new`)")
 
 
 class Security:
