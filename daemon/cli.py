@@ -47,10 +47,25 @@ def _load(path):
         return None, str(exc)
 
 
+def _preflight(config) -> str | None:
+    """What ``run`` would refuse in the CURVE settings, checked before anything is locked."""
+    from daemon.runtime.security import SecurityError, preflight
+
+    try:
+        preflight(config.daemon)
+    except SecurityError as exc:
+        return str(exc)
+    return None
+
+
 def cmd_run(args) -> int:
     from daemon.runtime.service import Service
 
     config, error = _load(args.config)
+    if error:
+        print(f"posteriord: config error: {error}", file=sys.stderr)
+        return EXIT_CONFIG
+    error = _preflight(config)
     if error:
         print(f"posteriord: config error: {error}", file=sys.stderr)
         return EXIT_CONFIG
@@ -76,7 +91,14 @@ def cmd_check(args) -> int:
     if error:
         print(f"posteriord: config error: {error}", file=sys.stderr)
         return EXIT_CONFIG
+    error = _preflight(config)
+    if error:
+        print(f"posteriord: config error: {error}", file=sys.stderr)
+        return EXIT_CONFIG
     print(describe(config))
+    from daemon.runtime.security import preflight
+
+    print("\n".join(preflight(config.daemon)))
     return EXIT_OK
 
 

@@ -9,7 +9,9 @@ from __future__ import annotations
 
 import logging
 import math
+import os
 import select
+from pathlib import Path
 
 import msgpack
 import numpy as np
@@ -265,3 +267,48 @@ def test_the_wake_up_pipe_is_drained_after_an_event(start_service):
     wait_until(lambda: h.svc.reloads["unavailable"] == before + 1, what="the reload event")
     readable, _, _ = select.select([h.svc._wake_r], [], [], 0)
     assert readable == []
+
+
+# ------------------------------------------------------------------- CURVE at config time
+def _curve_config(tmp_path, **over) -> Path:
+    from daemon.runtime.security import new_keys
+
+    keys = tmp_path / "keys"
+    secret = str(keys / "daemon1.key_secret")
+    clients, admins = tmp_path / "clients", tmp_path / "admins"
+    if not keys.exists():
+        keys.mkdir()
+        new_keys(str(keys), "daemon1")
+        clients.mkdir()
+        admins.mkdir()
+        new_keys(str(clients), "board")
+    settings = {"publish": "tcp://127.0.0.1:15556", "control": "tcp://127.0.0.1:15557",
+                "metrics": "", "state_dir": str(tmp_path / "state"),
+                "curve_secret_key": secret, "curve_clients": str(clients),
+                "curve_admins": str(admins), **over}
+    path = tmp_path / "plant.toml"
+    path.write_text(toml_config(settings, [c301_model()]))
+    return path
+
+
+def test_check_config_prints_the_curve_settings(tmp_path, capsys):
+    from daemon.cli import main
+
+    assert main(["check-config", str(_curve_config(tmp_path))]) == 0
+    out = capsys.readouterr().out
+    assert "curve: on" in out and "(1 public key)" in out and "nobody is admitted" in out
+
+
+def test_check_config_and_run_refuse_unsafe_curve_settings_before_locking(tmp_path, capsys):
+    from daemon.cli import main
+
+    path = _curve_config(tmp_path)
+    os.chmod(tmp_path / "keys" / "daemon1.key_secret", 0o644)
+    assert main(["check-config", str(path)]) == 3
+    assert "readable by others" in capsys.readouterr().err
+    assert main(["run", "--config", str(path)]) == 3
+    assert not (tmp_path / "state").exists()  # refused before the state folder was touched
+    os.chmod(tmp_path / "keys" / "daemon1.key_secret", 0o600)
+    path = _curve_config(tmp_path, curve_clients=str(tmp_path / "missing"))
+    assert main(["check-config", str(path)]) == 3
+    assert "curve_clients" in capsys.readouterr().err

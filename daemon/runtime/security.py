@@ -149,3 +149,47 @@ class Security:
         if self.auth is not None:
             self.auth.stop()
             self.auth = None
+
+
+def preflight(d) -> list[str]:
+    """Check the CURVE settings of a :class:`daemon.config.DaemonConfig` before anything starts.
+
+    Raises :class:`SecurityError` for what ``run`` would refuse (a secret key others can read
+    or that is no secret key, a missing key folder, an unreadable feed server key, a bind
+    beyond this host without CURVE). Returns lines describing the settings, for
+    ``check-config``.
+    """
+    keys = CurveKeys.from_config(d)
+    check_binds({"publish": d.publish, "control": d.control}, keys)
+    if not keys.enabled:
+        if keys.feed_server:
+            raise SecurityError("daemon.curve_feed_server_key is set but curve_secret_key is "
+                                "not: the feed is a CURVE client only with a key pair of its "
+                                "own")
+        return ["curve: off (plain ZeroMQ; publish and control bind to this host only)"]
+    try:
+        public, _ = _load_secret(keys.server_secret)
+    except OSError as exc:
+        raise SecurityError(f"daemon.curve_secret_key: {keys.server_secret}: "
+                            f"{exc.strerror or exc}") from None
+    except ValueError as exc:  # zmq.auth's parser on a file that is no key file
+        raise SecurityError(f"daemon.curve_secret_key: {keys.server_secret}: not a key file "
+                            f"({exc})") from None
+    lines = [f"curve: on; server key {keys.server_secret} (public {public.decode()})"]
+    for what, folder in (("clients", keys.clients), ("admins", keys.admins)):
+        if folder is None or not os.path.isdir(folder):
+            raise SecurityError(f"daemon.curve_{what}: CURVE needs a folder of allowed {what}' "
+                                f"public keys; got {folder!r}")
+        n = len([f for f in os.listdir(folder) if f.endswith(".key")])
+        lines.append(f"  {what}: {folder} ({n} public key{'s' if n != 1 else ''}"
+                     f"{'; nobody is admitted' if n == 0 else ''})")
+    if keys.feed_server:
+        try:
+            _load_public(keys.feed_server)
+        except (OSError, ValueError) as exc:
+            raise SecurityError(f"daemon.curve_feed_server_key: {keys.feed_server}: {exc}") \
+                from None
+        lines.append(f"  feed: CURVE client of the publisher with key {keys.feed_server}")
+    else:
+        lines.append("  feed: plain (set curve_feed_server_key to make it a CURVE client too)")
+    return lines
