@@ -431,3 +431,53 @@ def test_replay_without_the_daemon_says_why(curve_daemon, keyring, tmp_path, cap
     assert main(argv) == EXIT_RUNTIME
     err = capsys.readouterr().err
     assert "no subscriber" in err and says in err, err
+
+
+def test_relay_command_with_curve_passes_messages_and_reports_a_refusal(curve_daemon, keyring,
+                                                                        tmp_path):
+    import os
+    import subprocess
+    import sys
+
+    from tests.conftest import blas_env, free_port
+
+    d = curve_daemon()
+    bind = f"tcp://127.0.0.1:{free_port()}"
+    env = blas_env()
+    env["PYTHONPATH"] = os.pathsep.join([os.getcwd(), env.get("PYTHONPATH", "")])
+    # the second upstream is the same daemon, given the wrong server key (one per --connect)
+    err_path = tmp_path / "relay.err"
+    with open(err_path, "w") as err:
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "daemon.cli", "relay", "--connect", d.pub_ep,
+             "--connect", d.pub_ep, "--bind", bind, "--curve-key", keyring["relay_secret"],
+             "--curve-server-key", keyring["server"], "--curve-server-key",
+             keyring["stranger"], "--curve-clients", keyring["relay_clients"]],
+            stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=err, env=env, text=True)
+    ctx = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.LINGER, 0)
+    try:
+        assert proc.stdout.readline().startswith("relay: ")
+        sub.curve_publickey, sub.curve_secretkey = zmq.auth.load_certificate(
+            keyring["dashboard_secret"])
+        sub.curve_serverkey, _ = zmq.auth.load_certificate(keyring["relay"])
+        sub.setsockopt(zmq.SUBSCRIBE, b"pred/m")
+        sub.connect(bind)
+        got, deadline = 0, time.monotonic() + TIMEOUT
+        while got < 3 and time.monotonic() < deadline:
+            d.tick()
+            if sub.poll(20):
+                assert sub.recv_multipart()[0] == b"pred/m"
+                got += 1
+        assert got == 3
+        wait_until(lambda: "dropped the CURVE handshake" in err_path.read_text(),
+                   what="the refusal on stderr")
+    finally:
+        sub.close()
+        ctx.term()
+        proc.terminate()
+        rc = proc.wait(TIMEOUT)
+        proc.stdout.close()
+    assert rc == 0
+    assert err_path.read_text().count("dropped the CURVE handshake") == 1  # said once

@@ -8,6 +8,12 @@ without CURVE, or with a key not listed, gets nothing: no predictions, no replie
 
 Keys are ZeroMQ certificate files as written by ``posteriord keys new NAME``: ``NAME.key``
 (public, to hand out) and ``NAME.key_secret`` (secret, mode 0600, never leaves the host).
+
+The project's clients (``ctl``, ``record``, ``watch``, the relay's upstream side) take
+``--curve-key NAME.key_secret`` and ``--curve-server-key SERVER.key`` (:func:`client_keys`);
+the tools that bind a socket of their own (replay's feed, the relay's dashboard side) are
+CURVE servers with :class:`CurveServer`. A refused client gets nothing from libzmq, so
+:class:`Handshake` reads the socket monitor's handshake events and says why.
 """
 
 from __future__ import annotations
