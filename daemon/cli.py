@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import logging
 import sys
@@ -116,12 +117,14 @@ def cmd_ctl(args) -> int:
     apply_client(sock, keys)
     hs = Handshake(sock, curve=keys is not None, admit="curve_admins")
     poller = zmq.Poller()
-    poller.register(sock, zmq.POLLIN)
+    # a REQ blocks in send while no connection has completed its handshake (a refused one
+    # never does): wait for POLLOUT under the same deadline as the reply
+    poller.register(sock, zmq.POLLOUT)
     poller.register(hs.monitor, zmq.POLLIN)
     reply = None
+    sent = False
     try:
         sock.connect(args.endpoint)
-        sock.send(request)
         deadline = time.monotonic() + args.timeout
         while reply is None:
             left = deadline - time.monotonic()
@@ -133,7 +136,12 @@ def cmd_ctl(args) -> int:
                 if failures:
                     print(f"posteriord ctl: {args.endpoint}: {failures[0][1]}", file=sys.stderr)
                     return EXIT_RUNTIME
-            if sock in ready:
+            if not sent and ready.get(sock, 0) & zmq.POLLOUT:
+                with contextlib.suppress(zmq.Again):
+                    sock.send(request, zmq.NOBLOCK)
+                    sent = True
+                    poller.modify(sock, zmq.POLLIN)
+            elif sent and ready.get(sock, 0) & zmq.POLLIN:
                 reply = wire.unpack(sock.recv(), 1 << 26)
         if reply is None:
             hs.read()
@@ -142,6 +150,8 @@ def cmd_ctl(args) -> int:
                        f"request over {CONTROL_MAX_BYTES} bytes)")
             elif not hs.connected:
                 why = "no connection (is a daemon listening there?)"
+            elif not sent:
+                why = "connected, but the request could not be sent"
             else:
                 why = "connected, but no reply"
             print(f"posteriord ctl: no reply from {args.endpoint} within {args.timeout} s: "

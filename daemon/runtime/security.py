@@ -309,8 +309,11 @@ class Handshake:
             return (f"{peer} speaks CURVE; give --curve-server-key (its public NAME.key) "
                     f"and --curve-key (this client's NAME.key_secret)")
         if event == zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL:
-            return (f"{peer} dropped the CURVE handshake (CURVE handshake failed): is "
-                    f"--curve-server-key {peer}'s public key?")
+            # the peer closed without a word: a wrong server key, or (when the peer's side
+            # of the mismatch wins the race) a peer without CURVE
+            return (f"{peer} dropped the CURVE handshake (CURVE handshake failed): either "
+                    f"--curve-server-key is not {peer}'s public key or {peer} does not speak "
+                    f"CURVE")
         if event == zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL:
             if mismatch:
                 return (f"{peer} does not speak CURVE (handshake failed: mechanism "
