@@ -3,14 +3,17 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import logging
 import sys
+import time
 
 from daemon.exitcodes import (
     EXIT_CONFIG,
     EXIT_OK,
     EXIT_RUNTIME,
+    EXIT_USAGE,
 )
 
 
@@ -102,31 +105,86 @@ def cmd_check(args) -> int:
     return EXIT_OK
 
 
+# the daemon's control socket sets ZMQ_MAXMSGSIZE to this: libzmq drops the connection of a
+# client whose request is bigger, before the daemon could answer it
+CONTROL_MAX_BYTES = 65536
+
+
 def cmd_ctl(args) -> int:
     import zmq
 
     from daemon.runtime import wire
+    from daemon.runtime.security import Handshake, SecurityError, apply_client, client_keys
 
     msg = {"cmd": args.command}
     if args.model:
         msg["model"] = args.model
+    request = wire.pack(msg)
+    if len(request) > CONTROL_MAX_BYTES:
+        print(f"posteriord ctl: the request is {len(request)} bytes packed; the daemon takes "
+              f"at most {CONTROL_MAX_BYTES} (it would drop the connection unanswered)",
+              file=sys.stderr)
+        return EXIT_USAGE
+    if not (args.timeout > 0):
+        print(f"posteriord ctl: --timeout must be > 0, got {args.timeout!r}", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        keys = client_keys(args.curve_key, args.curve_server_key)
+    except SecurityError as exc:
+        print(f"posteriord ctl: {exc}", file=sys.stderr)
+        return EXIT_USAGE
     ctx = zmq.Context()
     sock = ctx.socket(zmq.REQ)
     sock.setsockopt(zmq.LINGER, 0)
-    sock.setsockopt(zmq.RCVTIMEO, int(args.timeout * 1000))
+    apply_client(sock, keys)
+    hs = Handshake(sock, curve=keys is not None, admit="curve_admins")
+    poller = zmq.Poller()
+    # a REQ blocks in send while no connection has completed its handshake (a refused one
+    # never does): wait for POLLOUT under the same deadline as the reply
+    poller.register(sock, zmq.POLLOUT)
+    poller.register(hs.monitor, zmq.POLLIN)
+    reply = None
+    sent = False
     try:
         sock.connect(args.endpoint)
-        sock.send(wire.pack(msg))
-        reply = wire.unpack(sock.recv(), 1 << 26)
-    except zmq.Again:
-        print(f"posteriord: no reply from {args.endpoint} within {args.timeout} s",
-              file=sys.stderr)
-        return EXIT_RUNTIME
+        deadline = time.monotonic() + args.timeout
+        while reply is None:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                break
+            ready = dict(poller.poll(max(1, int(left * 1000))))
+            if hs.monitor in ready:
+                failures = hs.read()
+                if failures:
+                    print(f"posteriord ctl: {args.endpoint}: {failures[0][1]}", file=sys.stderr)
+                    return EXIT_RUNTIME
+            if not sent and ready.get(sock, 0) & zmq.POLLOUT:
+                with contextlib.suppress(zmq.Again):
+                    sock.send(request, zmq.NOBLOCK)
+                    sent = True
+                    poller.modify(sock, zmq.POLLIN)
+            elif sent and ready.get(sock, 0) & zmq.POLLIN:
+                reply = wire.unpack(sock.recv(), 1 << 26)
+        if reply is None:
+            hs.read()
+            if hs.dropped:
+                why = ("the daemon closed the connection without replying (it drops a "
+                       f"request over {CONTROL_MAX_BYTES} bytes)")
+            elif not hs.connected:
+                why = "no connection (is a daemon listening there?)"
+            elif not sent:
+                why = "connected, but the request could not be sent"
+            else:
+                why = "connected, but no reply"
+            print(f"posteriord ctl: no reply from {args.endpoint} within {args.timeout} s: "
+                  f"{why}", file=sys.stderr)
+            return EXIT_RUNTIME
     finally:
+        hs.close()
         sock.close()
         ctx.term()
     print(json.dumps(reply, indent=2, default=str))
-    return EXIT_OK if reply.get("ok") else EXIT_RUNTIME
+    return EXIT_OK if isinstance(reply, dict) and reply.get("ok") else EXIT_RUNTIME
 
 
 def cmd_keys_new(args) -> int:
@@ -138,11 +196,14 @@ def cmd_keys_new(args) -> int:
         print(f"posteriord: {exc}", file=sys.stderr)
         return EXIT_RUNTIME
     print(f"public key {public} (hand it out: clients/ or admins/ folders of the peers)")
-    print(f"secret key {secret} (mode 0600; keep it on this host)")
+    print(f"secret key {secret} (mode 0600; keep it on this host: a daemon's curve_secret_key, "
+          f"or the --curve-key of ctl, record, watch, replay or relay)")
     return EXIT_OK
 
 
 def main(argv=None) -> int:
+    from daemon.runtime.security import add_client_key_options
+
     p = argparse.ArgumentParser(prog="posteriord", description="Online Bayesian soft sensors.")
     sub = p.add_subparsers(dest="what", required=True)
     r = sub.add_parser("run", help="run the daemon (the built-in demo config without --config)")
@@ -152,12 +213,19 @@ def main(argv=None) -> int:
     c = sub.add_parser("check-config", help="validate a config and describe its models")
     c.add_argument("file", nargs="?", help="TOML config file (default: the built-in demo)")
     c.set_defaults(func=cmd_check)
-    k = sub.add_parser("ctl", help="send a control command to a running daemon")
+    k = sub.add_parser(
+        "ctl", help="send a control command to a running daemon",
+        description="Send one control command and print the reply. A request is at most "
+                    f"{CONTROL_MAX_BYTES} bytes packed (the daemon's limit; ctl refuses a "
+                    "bigger one before sending). Against a CURVE daemon give --curve-key and "
+                    "--curve-server-key; this client's public key must be in the daemon's "
+                    "curve_admins folder. A refused handshake is reported at once.")
     k.add_argument("command", help="ping, status, posterior, detectors, acknowledge, freeze, "
                                    "resume, reset, checkpoint, reload")
     k.add_argument("--model", help="model name, for the commands that take one")
     k.add_argument("--endpoint", default="tcp://127.0.0.1:5557", help="control endpoint")
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
+    add_client_key_options(k)
     k.set_defaults(func=cmd_ctl)
     # imported here: these modules import the service, which imports this module's exit codes
     from daemon.runtime.relay import add_relay_command

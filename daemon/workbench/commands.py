@@ -9,6 +9,14 @@ import signal
 import sys
 import threading
 
+from daemon.runtime.security import (
+    CurveServer,
+    HandshakeError,
+    SecurityError,
+    add_client_key_options,
+    client_keys,
+)
+
 # the exit codes of daemon.cli (documented in the README)
 EXIT_OK = 0
 EXIT_USAGE = 2
@@ -200,29 +208,50 @@ def cmd_replay(args) -> int:
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
     feed = args.feed or (config.daemon.feeds[0] if args.config else _FEED)
+    if args.curve_clients and not args.curve_key:
+        raise _Fail(EXIT_USAGE, "--curve-clients needs --curve-key (this replay's "
+                                "NAME.key_secret)")
     ctx = zmq.Context()
+    server = None
     try:
+        if args.curve_key:
+            if not args.curve_clients:
+                raise _Fail(EXIT_USAGE, "--curve-key needs --curve-clients: a folder holding "
+                                        "the public key of each daemon allowed to subscribe")
+            try:
+                server = CurveServer(ctx, args.curve_key, args.curve_clients)
+            except SecurityError as exc:
+                raise _Fail(EXIT_USAGE, str(exc)) from None
         try:
-            sock = live.open_feed(ctx, feed)
+            sock = live.open_feed(ctx, feed, curve=server)
         except zmq.ZMQError as exc:
             raise _Fail(EXIT_RUNTIME, f"cannot bind {feed}: {exc}") from None
+        hs = live.feed_handshake(sock, curve=server is not None)
         try:
             names = [m.name for m in models]
             if args.wait > 0:
                 print(f"replay: bound {feed}, waiting up to {args.wait:g} s for a subscriber "
                       f"of {', '.join(names)}", file=sys.stderr)
-                missing = live.wait_subscribed(sock, names, args.wait)
+                missing = live.wait_subscribed(sock, names, args.wait, handshake=hs)
+                hs.read()
                 if missing:
+                    why = "".join(f"; {text}" for text in
+                                  dict.fromkeys(text for _, text in hs.failures))
                     raise _Fail(EXIT_RUNTIME, f"no subscriber for {', '.join(sorted(missing))}"
-                                              f" on {feed} within {args.wait:g} s")
+                                              f" on {feed} within {args.wait:g} s{why}")
+            # nobody reads the monitor from here on: stop it before its queue fills
+            hs.close()
             pace = "as fast as possible" if args.speed is None else f"at {args.speed:g}x"
             print(f"replay: {len(messages)} messages from {history.t.size} rows and "
                   f"{history.lab_t.size} lab results, {pace}", file=sys.stderr)
             n = live.replay(sock, messages, speed=args.speed, progress=True)
             print(f"replay: sent {n} messages", file=sys.stderr)
         finally:
+            hs.close()
             sock.close(linger=5000)
     finally:
+        if server is not None:
+            server.stop()
         ctx.term()
     return EXIT_OK
 
@@ -232,10 +261,13 @@ def cmd_record(args) -> int:
 
     endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
                                  else _PUBLISH)
+    keys = _client_keys(args)
     stop = _stop_on_signals()
     try:
         n = live.record(endpoint, args.out, models=args.model or (), stop=stop,
-                        duration=args.duration, count=args.count)
+                        duration=args.duration, count=args.count, curve=keys)
+    except HandshakeError as exc:
+        raise _Fail(EXIT_RUNTIME, f"{exc}; nothing recorded from it") from None
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
     print(f"record: {n} messages appended to {args.out}", file=sys.stderr)
@@ -247,10 +279,21 @@ def cmd_watch(args) -> int:
 
     endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
                                  else _PUBLISH)
+    keys = _client_keys(args)
     stop = _stop_on_signals()
-    live.watch(endpoint, models=args.model or (), unit=args.unit, duration=args.duration,
-               count=args.count, refresh=args.refresh, stop=stop)
+    try:
+        live.watch(endpoint, models=args.model or (), unit=args.unit, duration=args.duration,
+                   count=args.count, refresh=args.refresh, stop=stop, curve=keys)
+    except HandshakeError as exc:
+        raise _Fail(EXIT_RUNTIME, str(exc)) from None
     return EXIT_OK
+
+
+def _client_keys(args):
+    try:
+        return client_keys(args.curve_key, args.curve_server_key)
+    except SecurityError as exc:
+        raise _Fail(EXIT_USAGE, str(exc)) from None
 
 
 # ---------------------------------------------------------------------------------- parsers
@@ -327,10 +370,22 @@ def add_work_commands(sub) -> None:
                    help="time from drawing a lab sample to its result (default 2h)")
     p.add_argument("--wait", type=float, default=10.0,
                    help="seconds to wait for the daemon to subscribe (0: do not wait)")
+    p.add_argument("--curve-key", metavar="PATH",
+                   help="make the feed a CURVE server with this key pair (a NAME.key_secret "
+                        "from `posteriord keys new`); the daemon's curve_feed_server_key is "
+                        "then its NAME.key, and the daemon needs curve_secret_key too")
+    p.add_argument("--curve-clients", metavar="DIR",
+                   help="with --curve-key: folder of the public keys (NAME.key) of the "
+                        "daemons allowed to subscribe, e.g. the daemon's own public key")
     p.set_defaults(func=_run(cmd_replay))
 
     c = sub.add_parser("record", help="append a daemon's pred/, fit/ and alert/ messages to a "
-                                      "file")
+                                      "file",
+                       description="Subscribe to a daemon and append what it publishes. "
+                                   "Against a CURVE daemon give --curve-key and "
+                                   "--curve-server-key (this client's public key must be in "
+                                   "its curve_clients folder); a refused handshake ends the "
+                                   "command with exit code 4 and the reason.")
     c.add_argument("out", help="record file (appended; created with a header line)")
     c.add_argument("--endpoint", help=f"daemon publish endpoint (default: the config's, or "
                                       f"{_PUBLISH})")
@@ -338,10 +393,16 @@ def add_work_commands(sub) -> None:
     c.add_argument("--model", action="append", help="only this model (repeatable)")
     c.add_argument("--duration", type=_duration, help="stop after this long")
     c.add_argument("--count", type=int, help="stop after this many messages")
+    add_client_key_options(c)
     c.set_defaults(func=_run(cmd_record))
 
     w = sub.add_parser("watch", help="live terminal view of a running daemon, one line per "
-                                     "model")
+                                     "model",
+                       description="A live view of a daemon's predictions. Against a CURVE "
+                                   "daemon give --curve-key and --curve-server-key (this "
+                                   "client's public key must be in its curve_clients folder); "
+                                   "a refused handshake ends it with exit code 4 and the "
+                                   "reason.")
     w.add_argument("--endpoint", help=f"daemon publish endpoint (default: the config's, or "
                                       f"{_PUBLISH})")
     w.add_argument("--config", help="TOML config to take the publish endpoint from")
@@ -350,4 +411,5 @@ def add_work_commands(sub) -> None:
     w.add_argument("--refresh", type=float, default=0.5, help="seconds between redraws")
     w.add_argument("--duration", type=_duration, help="stop after this long")
     w.add_argument("--count", type=int, help="stop after this many messages")
+    add_client_key_options(w)
     w.set_defaults(func=_run(cmd_watch))

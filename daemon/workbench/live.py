@@ -35,6 +35,7 @@ from datetime import UTC, datetime
 import zmq
 
 from daemon.runtime import wire
+from daemon.runtime.security import ClientKeys, CurveServer, Handshake, apply_client
 
 __all__ = [
     "FORMAT",
@@ -158,27 +159,52 @@ def read_record(path, *, raw: bool = False):
 
 
 # ---------------------------------------------------------------------------------- replay
-def open_feed(ctx: zmq.Context, endpoint: str) -> zmq.Socket:
-    """An XPUB bound at ``endpoint``, with no send limit (a replay must not drop)."""
+def open_feed(ctx: zmq.Context, endpoint: str, *,
+              curve: CurveServer | None = None) -> zmq.Socket:
+    """An XPUB bound at ``endpoint``, with no send limit (a replay must not drop).
+
+    With ``curve`` the XPUB is a CURVE server: the daemon connects as a CURVE client when
+    its config has ``curve_secret_key`` and ``curve_feed_server_key`` (this side's public
+    key), and its public key must be in the server's clients folder.
+    """
     sock = ctx.socket(zmq.XPUB)
     sock.setsockopt(zmq.SNDHWM, 0)
     sock.setsockopt(zmq.LINGER, 5000)
+    if curve is not None:
+        curve.apply(sock)
     sock.bind(endpoint)
     return sock
 
 
-def wait_subscribed(sock: zmq.Socket, topics, timeout: float) -> set:
+def feed_handshake(sock: zmq.Socket, *, curve: bool) -> Handshake:
+    """Watch who fails to connect to the replay's feed (for the "no subscriber" message)."""
+    return Handshake(sock, curve=curve, peer="a subscriber", server=True)
+
+
+def wait_subscribed(sock: zmq.Socket, topics, timeout: float, *,
+                    handshake: Handshake | None = None) -> set:
     """Wait until subscriptions covering every one of ``topics`` reached ``sock``.
 
     Returns the topics still missing (empty on success) when ``timeout`` seconds pass.
+    With ``handshake`` (from :func:`feed_handshake`) the failed handshakes of would-be
+    subscribers are collected meanwhile, in ``handshake.failures``.
     """
     missing = set(topics)
     subs: set[bytes] = set()
     deadline = time.monotonic() + timeout
+    poller = zmq.Poller()
+    poller.register(sock, zmq.POLLIN)
+    if handshake is not None:
+        poller.register(handshake.monitor, zmq.POLLIN)
     while missing:
         left = deadline - time.monotonic()
-        if left <= 0 or not sock.poll(max(1, int(left * 1000))):
+        if left <= 0:
             break
+        ready = dict(poller.poll(max(1, int(left * 1000))))
+        if handshake is not None and handshake.monitor in ready:
+            handshake.read()
+        if sock not in ready:
+            continue
         msg = sock.recv()
         if msg[:1] == b"\x01":
             subs.add(msg[1:])
@@ -231,29 +257,47 @@ def _bar(total: int):
 
 
 # ---------------------------------------------------------------------------------- record
-def _subscriber(ctx: zmq.Context, endpoint: str, topics, models) -> zmq.Socket:
+def _subscriber(ctx: zmq.Context, endpoint: str, topics, models,
+                curve: ClientKeys | None) -> tuple[zmq.Socket, Handshake]:
     sock = ctx.socket(zmq.SUB)
     sock.setsockopt(zmq.LINGER, 0)
     sock.setsockopt(zmq.RCVHWM, 0)
     prefixes = [p + m for p in topics for m in models] if models else list(topics)
     for p in prefixes:
         sock.setsockopt(zmq.SUBSCRIBE, p.encode())
+    apply_client(sock, curve)
+    # a refused client receives nothing; the monitor tells a refusal from a quiet daemon
+    hs = Handshake(sock, curve=curve is not None, admit="curve_clients")
     sock.connect(endpoint)
-    return sock
+    return sock, hs
+
+
+def _wait(sock: zmq.Socket, hs: Handshake, ms: int) -> bool:
+    """Wait up to ``ms`` for a message; raise HandshakeError if the daemon refuses us."""
+    poller = zmq.Poller()
+    poller.register(sock, zmq.POLLIN)
+    poller.register(hs.monitor, zmq.POLLIN)
+    ready = dict(poller.poll(ms))
+    if hs.monitor in ready:
+        hs.check()
+    return sock in ready
 
 
 def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Event | None = None,
            duration: float | None = None, count: int | None = None,
-           ctx: zmq.Context | None = None) -> int:
+           ctx: zmq.Context | None = None, curve: ClientKeys | None = None) -> int:
     """Subscribe to ``endpoint`` and append every message to the record file ``path``.
 
     Runs until ``stop`` is set, ``duration`` seconds have passed or ``count`` messages were
     written; returns the number written. ``models`` restricts the topics to those models.
     The file is flushed whenever the stream pauses and at least every quarter second.
+    ``curve`` makes the subscriber a CURVE client. Raises
+    :class:`~daemon.runtime.security.HandshakeError` when the daemon refuses the connection
+    (what was written until then stays in the file).
     """
     own = ctx is None
     ctx = ctx or zmq.Context()
-    sock = _subscriber(ctx, endpoint, topics, models)
+    sock, hs = _subscriber(ctx, endpoint, topics, models, curve)
     deadline = None if duration is None else time.monotonic() + duration
     n = 0
     try:
@@ -264,7 +308,7 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
                 if deadline is not None and now >= deadline:
                     break
                 wait = 100 if deadline is None else max(0, min(100, int((deadline - now) * 1e3)))
-                if not sock.poll(wait):
+                if not _wait(sock, hs, wait):
                     out.flush()
                     last_flush = time.monotonic()
                     continue
@@ -281,6 +325,7 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
                     out.flush()
                     last_flush = time.monotonic()
     finally:
+        hs.close()
         sock.close()
         if own:
             ctx.term()
@@ -483,17 +528,19 @@ class Screen:
 
 def watch(endpoint: str, *, models=(), unit: str = "", duration: float | None = None,
           count: int | None = None, refresh: float = 0.5, stop: threading.Event | None = None,
-          stream=None, color: bool | None = None, ctx: zmq.Context | None = None) -> dict:
+          stream=None, color: bool | None = None, ctx: zmq.Context | None = None,
+          curve: ClientKeys | None = None) -> dict:
     """Subscribe to a daemon's publisher and keep the view on the screen up to date.
 
     Stops when ``stop`` is set, after ``duration`` seconds or ``count`` messages; returns
-    the final state.
+    the final state. ``curve`` makes the subscriber a CURVE client; raises
+    :class:`~daemon.runtime.security.HandshakeError` when the daemon refuses it.
     """
     import shutil
 
     own = ctx is None
     ctx = ctx or zmq.Context()
-    sock = _subscriber(ctx, endpoint, TOPICS, models)
+    sock, hs = _subscriber(ctx, endpoint, TOPICS, models, curve)
     screen = Screen(stream)
     color = screen.tty if color is None else color
     state = watch_state(endpoint, unit)
@@ -509,7 +556,7 @@ def watch(endpoint: str, *, models=(), unit: str = "", duration: float | None = 
             now = time.monotonic()
             if deadline is not None and now >= deadline:
                 break
-            if sock.poll(100):
+            if _wait(sock, hs, 100):
                 while count is None or n < count:
                     try:
                         frames = sock.recv_multipart(zmq.NOBLOCK)
@@ -533,6 +580,7 @@ def watch(endpoint: str, *, models=(), unit: str = "", duration: float | None = 
         screen.show(render(state, width=width(), color=color))
         screen.final()
     finally:
+        hs.close()
         sock.close()
         if own:
             ctx.term()
