@@ -451,10 +451,16 @@ class Service:
                             continue
                 while self._events:
                     self._event(self._events.popleft())
-                if socks.get(self._feed_monitor):
-                    self._feed_dropped()
                 if socks.get(self.sub):
                     self.drain()
+                if socks.get(self._feed_monitor):
+                    # take what the feed queued before any of its connections is dropped and
+                    # made again: libzmq aborts (fq.cpp, "!_more") when a pipe goes away with
+                    # a message of it half-taken
+                    for _ in range(8):
+                        if self.drain() < self.config.daemon.batch_limit:
+                            break
+                    self._feed_dropped()
                 if socks.get(self.rep):
                     self._control()
                 self._housekeeping()
