@@ -61,6 +61,54 @@ def test_random_control_payloads_are_rejected_cleanly(payload):
         assert isinstance(msg, dict) and isinstance(msg["cmd"], str)
 
 
+def _nest(value, depth: int):
+    for _ in range(depth):
+        value = [value]
+    return value
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.sampled_from(["t", "x", "y", "id", "seq", "src", "pad"]), st.integers(0, 1500),
+       scalars, st.booleans())
+def test_depth_bombs_in_any_field_are_rejected_with_a_short_message(field, depth, leaf, block):
+    """A value nested up to 1500 levels deep (msgpack itself refuses more than 1024) in any
+    field, of a single message or of a block element: decoded or rejected, never a crash,
+    and the error message stays short (it once formatted the value recursively)."""
+    bomb = _nest(leaf, depth)
+    body = {"t": [1.0, 2.0], "x": [[1.0, 2.0], [3.0, 4.0]]} if block else {"t": 1.0}
+    if block and field in ("t", "x", "y", "id"):
+        body[field] = [body.get(field, [1.0, 1.0])[0], bomb]
+    else:
+        body[field] = bomb
+    try:
+        payload = msgpack.packb(body, use_bin_type=True)
+    except (ValueError, OverflowError):
+        return  # msgpack's packer refuses so deep a value itself
+    try:
+        wire.decode_feed([b"c301", payload], SPECS, 1 << 20)
+    except wire.WireError as exc:
+        assert exc.reason in wire.REASONS
+        assert len(str(exc)) < 300
+    try:
+        wire.decode_control(msgpack.packb({"cmd": "status", "model": bomb}), 1 << 20)
+    except wire.WireError as exc:
+        assert len(str(exc)) < 300
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.integers(0, 200_000), st.sampled_from(["t", "x", "y", "id", "pad"]))
+def test_size_bombs_are_refused_or_decoded_within_the_limit(n, field):
+    """A flat array of up to 200 000 elements in any field: over the message limit it is
+    refused as too_large before it is decoded; under it, decoded or rejected cleanly."""
+    payload = msgpack.packb({"t": 1.0, field: [1] * n})
+    try:
+        wire.decode_feed([b"c301", payload], SPECS, LIMIT)
+    except wire.WireError as exc:
+        assert exc.reason in wire.REASONS and len(str(exc)) < 300
+        if len(payload) > LIMIT:
+            assert exc.reason == "too_large"
+
+
 def test_hostile_length_claims_cost_no_memory():
     """msgpack headers that claim 4 G elements or bytes (msgpack spec: array32, map32, str32,
     bin32, ext32) are refused before anything of that size is allocated."""
