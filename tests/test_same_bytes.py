@@ -82,3 +82,21 @@ def test_burst_paced_and_random_wake_ups_publish_the_same_bytes(feed, policy):
     assert len(set(dofs)) > len(dofs) // 2
     assert published(burst) == want
     assert published(chunked) == want
+
+
+def test_rowwise_region_distances_do_not_depend_on_the_batch():
+    """The distance a single sample's step uses has the same bits alone, in pairs or in a
+    batch of 300, and equals InputRegion.distance (one solve per row) to rounding."""
+    from recursive.detect import InputRegion
+
+    rng = np.random.default_rng(0)
+    region = InputRegion(8, 100.0, 5.0)
+    for _ in range(50):
+        region.update(rng.normal(size=8))
+    X = rng.normal(size=(300, 8)) * 3
+    whole = region.distances(X, rowwise=True)
+    alone = np.concatenate([region.distances(X[i:i + 1], rowwise=True) for i in range(300)])
+    pairs = np.concatenate([region.distances(X[i:i + 2], rowwise=True)
+                            for i in range(0, 300, 2)])
+    assert whole.tobytes() == alone.tobytes() == pairs.tobytes()
+    np.testing.assert_allclose(whole, [region.distance(x) for x in X], rtol=1e-13)

@@ -152,11 +152,25 @@ class Monitor:
 
     def on_predictions(self, clock: float, X: np.ndarray, std: np.ndarray,
                        leverage: np.ndarray, last_lab_t: float | None) -> list[dict]:
-        """After a batch of predictions (rows ``X`` of raw inputs)."""
+        """After the predictions of one block message (rows ``X`` of raw inputs): one step.
+
+        The block is judged by its last std, its largest leverage and distance, and the
+        number of its rows out of range.
+        """
+        cfg = self.cfg
+        lev = float(leverage.max()) if len(leverage) else math.nan
+        dist = None
+        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+            dist = float(self.region.distances(X).max())
+        return self._pred_step(clock, float(std[-1]), lev, dist,
+                               self.basis.rows_out_of_range(X), last_lab_t)
+
+    def _pred_step(self, clock: float, s_last: float, lev: float, dist: float | None,
+                   outside: int, last_lab_t: float | None) -> list[dict]:
+        """One detector step on predictions: the reasons they make active, then trust."""
         cfg = self.cfg
         act = self.pred_active
         act.clear()
-        s_last = float(std[-1])
         if math.isfinite(s_last):
             b = self.std.step(s_last)
             self.last["std_ratio"] = b.ratio
@@ -172,16 +186,13 @@ class Monitor:
             if cfg.std_ratio > 0 and math.isfinite(self.std.baseline):
                 self.last["std_ratio"] = math.inf
                 act["uncertainty_ratio"] = (1, math.inf, cfg.std_ratio)
-        lev = float(leverage.max()) if len(leverage) else math.nan
         self.last["leverage"] = lev
         if cfg.leverage_limit > 0 and lev > cfg.leverage_limit:
             act["extrapolation"] = (1, lev, cfg.leverage_limit)
-        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
-            dist = float(self.region.distances(X).max())
+        if dist is not None:
             self.last["region"] = dist
             if dist > cfg.region_limit:
                 act["outside_region"] = (1, dist, cfg.region_limit)
-        outside = self.basis.rows_out_of_range(X)
         self.last["out_of_range"] = float(outside)
         if outside:
             act["out_of_range"] = (1, float(outside), 0.0)
@@ -191,51 +202,63 @@ class Monitor:
 
     def on_prediction_rows(self, ts, X: np.ndarray, std: np.ndarray, leverage: np.ndarray,
                            last_lab_t: float | None) -> tuple[list | None, list]:
-        """:meth:`on_predictions` for each row in turn, as if each had come alone.
+        """One step for each row in turn, as if each had come in a message of its own.
 
         Single-sample messages get one detector step each, whatever wake-up they were taken
-        in, so the trust published with them is a function of the feed alone. Returns
-        ``(trust, marks)``: the trust state after each row (None when it is the same for all
-        rows, i.e. the current state) and ``[(row, events)]`` for rows after which events
-        were raised.
+        in, so the trust published with them is a function of the feed alone: every value a
+        row's step uses is computed from that row only (elementwise, never a product over
+        the batch). Returns ``(trust, marks)``: the trust state after each row (None when it
+        is the same for all rows, i.e. the current state) and ``[(row, events)]`` for rows
+        after which events were raised.
 
-        The common batch has nothing active in any row and no reason held; then a step changes
-        nothing but the latest statistics, and only the last row is stepped.
+        The common batch has nothing active in any row and no reason held; then a step
+        changes nothing but the latest statistics, and only the last row is stepped.
         """
+        cfg = self.cfg
         k = len(ts)
-        if k == 1 or not self._quiet_rows(ts, X, std, leverage, last_lab_t):
-            trust, marks = [], []
-            for i in range(k):
-                ev = self.on_predictions(ts[i], X[i:i + 1], std[i:i + 1], leverage[i:i + 1],
-                                         last_lab_t)
-                if ev:
-                    marks.append((i, ev))
-                trust.append(self.trust.state)
-            return trust, marks
-        ev = self.on_predictions(ts[-1], X[-1:], std[-1:], leverage[-1:], last_lab_t)
-        assert not ev  # _quiet_rows promised that nothing changes
-        return None, []
+        dist = None
+        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+            dist = self.region.distances(X, rowwise=True)
+        outside = self.basis.out_of_range(X).any(axis=1)
+        if k > 1 and self._quiet_rows(ts, std, leverage, dist, outside, last_lab_t):
+            ev = self._pred_step(ts[-1], float(std[-1]), float(leverage[-1]),
+                                 None if dist is None else float(dist[-1]),
+                                 int(outside[-1]), last_lab_t)
+            assert not ev  # _quiet_rows promised that nothing changes
+            return None, []
+        std_l, lev_l = std.tolist(), leverage.tolist()
+        dist_l = None if dist is None else dist.tolist()
+        out_l = outside.tolist()
+        trust, marks = [], []
+        for i in range(k):
+            ev = self._pred_step(ts[i], std_l[i], lev_l[i],
+                                 None if dist_l is None else dist_l[i], int(out_l[i]),
+                                 last_lab_t)
+            if ev:
+                marks.append((i, ev))
+            trust.append(self.trust.state)
+        return trust, marks
 
-    def _quiet_rows(self, ts, X, std, leverage, last_lab_t) -> bool:
+    def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
         """True if no row would make a reason active and none is active or held now."""
         if self.lab_active or self.trust.level or self.trust.reasons:
             return False
         cfg = self.cfg
         if not np.isfinite(std).all():
-            return False  # inf or nan rows: rare, take the exact path
-        if cfg.std_limit is not None and float(std.max()) > cfg.std_limit:
+            return False  # inf or nan rows: rare, take the row-by-row path
+        top = float(std.max())
+        if cfg.std_limit is not None and top > cfg.std_limit:
             return False
         if cfg.std_ratio > 0:
             # a division by the same positive baseline is monotone: the largest std decides
             base = self.std.baseline
-            if math.isfinite(base) and float(std.max()) / base > cfg.std_ratio:
+            if math.isfinite(base) and top / base > cfg.std_ratio:
                 return False
         if cfg.leverage_limit > 0 and float(leverage.max()) > cfg.leverage_limit:
             return False
-        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs) and \
-                float(self.region.distances(X).max()) > cfg.region_limit:
+        if dist is not None and float(dist.max()) > cfg.region_limit:
             return False
-        if self.basis.rows_out_of_range(X):
+        if outside.any():
             return False
         if last_lab_t is not None and ts[-1] - last_lab_t > cfg.stale_after:
             return False

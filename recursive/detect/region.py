@@ -184,10 +184,13 @@ class InputRegion:
         y = scipy.linalg.solve_triangular(chol, d, lower=True, check_finite=False)
         return float(math.sqrt(float(y @ y)))
 
-    def distances(self, X: Any) -> np.ndarray:
+    def distances(self, X: Any, rowwise: bool = False) -> np.ndarray:
         """Mahalanobis distances of the rows of ``X`` (k, n_inputs) in one triangular solve.
 
         Same values as :meth:`distance` row by row (nan until ``n_inputs + 1`` updates).
+        With ``rowwise`` each distance is computed by elementwise operations only, so its
+        bits do not depend on the other rows of ``X`` (a matrix product may round a batch of
+        one row differently from a batch of many).
         """
         A = np.asarray(X, dtype=float)
         if A.ndim != 2 or A.shape[1] != self._n_inputs:
@@ -206,6 +209,31 @@ class InputRegion:
             if info != 0:  # pragma: no cover - the Cholesky factor has a positive diagonal
                 raise np.linalg.LinAlgError(f"singular region factor (info={info})")
             self._chol_inv = inv
+        if rowwise:
+            inv = self._chol_inv
+            n = self._n_inputs
+            if len(D) <= 2:
+                # plain floats for a row or two: the same operations in the same order as
+                # the array path below, hence the same bits, without its per-call overhead
+                rows = []
+                Ml = inv.tolist()
+                for d in D.tolist():
+                    acc = None
+                    for m in Ml:
+                        y = d[0] * m[0]
+                        for dj, mj in zip(d[1:], m[1:], strict=True):
+                            y = y + dj * mj
+                        acc = y * y if acc is None else acc + y * y
+                    rows.append(acc)
+                return np.sqrt(np.array(rows, dtype=float))
+            # Y[r, i] = sum_j inv[i, j] D[r, j], summed in the order j = 0, 1, ... for every row
+            Y = D[:, :1] * inv[:, 0]
+            for j in range(1, n):
+                Y = Y + D[:, j:j + 1] * inv[:, j]
+            acc = Y[:, 0] * Y[:, 0]
+            for i in range(1, n):
+                acc = acc + Y[:, i] * Y[:, i]
+            return np.sqrt(acc)
         Y = self._chol_inv @ D.T
         return np.sqrt(np.einsum("ij,ij->j", Y, Y))
 
