@@ -7,23 +7,32 @@ time, sent ``lab_delay`` after it was drawn), and every message goes through
 have left the daemon. The predictions written are therefore the daemon's, bit for bit:
 replaying the same messages into a running daemon gives the same bytes (tested).
 
-Beside the model as configured, two references are scored on the same lab results:
+Beside the model as configured, four references are scored on the same lab results:
 
-* the same model without forgetting (run through the same service, as a second model), and
+* the same model without forgetting (run through the same service, as a second model);
 * the static batch model: ridge regression with the same basis and prior, fitted once on the
-  lab results of a training period at the start of the file (``train``), then held fixed.
+  lab results of a training period at the start of the file (``train``), then held fixed;
+* the static model plus a lab bias update, as plants run it: an exponential filter of its lab
+  residual, ``b <- b + f (y - (static + b))``, with the factor ``f`` of `BIAS_GRID` that has
+  the least RMSE on the training period;
+* persistence: the last lab value known.
 
-Scores are one-step-ahead: each lab result is predicted before the model learns from it. They
-are computed on the lab results drawn after the training period, leaving out those the
-model's robust gate rejected (lab blunders, by the gate's judgement), so that all three models
-are scored on the same set.
+Scores are what the control room saw: each lab result drawn after the training period is
+scored against the prediction the model published for its own sample time, before its result
+or any later one was known; the bias update and persistence use only the results that had
+reached the feed by then (in the order they arrived). Results the recursive model's gate
+rejected are scored like any other, for every model, and also apart (``scores_gated``,
+``scores_ungated``); the references never learn from them, as a plant's validity check would
+not. The arrival-time score of the recursive models (each result predicted when it reached
+the model, the ``fit/`` message) is given beside, labelled, for comparison only.
 
 Predictions file (``write_predictions``): a CSV with comment lines starting with ``#``, the
 first of which is ``# posteriord predictions: {json}`` with the model name, interval level,
 target, unit and detector settings. Columns::
 
     time,t,mean,std,lo,hi,status,trust,lab,lab_mean,lab_std,lab_scale,lab_dof,residual,z,
-    learned,lab_seen,alert,noforget_mean,noforget_std,static_mean,static_std
+    learned,lab_seen,alert,noforget_mean,noforget_std,static_mean,static_std,dof,
+    bias_mean,bias_std,persist,persist_std
 
 One row per published prediction (``time`` ISO 8601 UTC, ``t`` epoch seconds); the lab columns
 are filled on the row of the time the sample was drawn (a row of its own when no prediction
@@ -32,6 +41,10 @@ freedom, the residual ``lab - lab_mean``, the standardized residual ``z``, and `
 (``ok``, ``gate_open``, ``gated``, ``not_identified``), ``lab_seen`` the feed time the result
 reached the model (the newest sample time then). ``alert`` lists the trust-state changes
 and actions published at that time (``caution:extrapolation+stale``, ``normal``, ``flatten``).
+``dof`` is the published prediction's degrees of freedom; ``bias_mean`` / ``bias_std`` and
+``persist`` / ``persist_std`` the bias-update and persistence references for the lab sample
+of that row (their std: the training RMSE). The lab columns ``lab_mean`` ... ``z`` are the
+arrival-time one-step prediction; the published one is the row's own ``mean``.
 Empty cells are missing values.
 """
 
@@ -931,7 +944,13 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
 # ---------------------------------------------------------------------------------- files
 COLUMNS = ("time", "t", "mean", "std", "lo", "hi", "status", "trust", "lab", "lab_mean",
            "lab_std", "lab_scale", "lab_dof", "residual", "z", "learned", "lab_seen", "alert",
-           "noforget_mean", "noforget_std", "static_mean", "static_std")
+           "noforget_mean", "noforget_std", "static_mean", "static_std", "dof", "bias_mean",
+           "bias_std", "persist", "persist_std")
+
+
+# reference columns read back into the fits (by the lab row)
+_REF_COLUMNS = ("noforget_mean", "static_mean", "bias_mean", "bias_std", "persist",
+                "persist_std")
 
 
 def _cell(v) -> str:
@@ -954,7 +973,7 @@ def _alert_text(e: dict) -> str:
 
 
 def write_predictions(path, res_or_track, *, static: dict | None = None,
-                      noforget: Track | None = None) -> int:
+                      noforget: Track | None = None, refs: dict | None = None) -> int:
     """Write the predictions file (module docstring); returns the number of data rows.
 
     Pass a `BacktestResult` (the static and no-forgetting columns are filled) or a `Track`.
@@ -963,6 +982,7 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
         track = res_or_track.track
         static = res_or_track.static_pred
         noforget = res_or_track.noforget
+        refs = res_or_track.ref_pred
     else:
         track = res_or_track
     rows: dict[float, dict] = {}
@@ -979,6 +999,8 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
         r = row(t)
         r.update(mean=track.mean[i], std=track.std[i], lo=track.lo[i], hi=track.hi[i],
                  status=track.status[i], trust=track.trust[i])
+        if track.dof is not None and track.dof.size == track.t.size:
+            r["dof"] = track.dof[i]
     for f in track.fits:
         r = row(f["t"])
         r.update(lab=f["y"], lab_mean=f.get("pred_mean"), lab_std=f.get("pred_std"),
@@ -1001,6 +1023,11 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
                              static["std"].tolist(), strict=True):
             if t in rows:
                 rows[t].update(static_mean=mu, static_std=sd)
+    if refs:
+        for i, t in enumerate(refs["t"].tolist()):
+            if t in rows:
+                rows[t].update({k: refs[k][i] for k in ("bias_mean", "bias_std", "persist",
+                                                        "persist_std")})
     order.sort()
     meta = {k: v for k, v in track.meta.items()}
     meta.setdefault("schema", SCHEMA)
@@ -1065,7 +1092,7 @@ def read_predictions(path) -> Track:
         i = col.get(name)
         return None if i is None or cells[i] == "" else cells[i]
 
-    pt, pm, ps, plo, phi_, pst, ptr = [], [], [], [], [], [], []
+    pt, pm, ps, plo, phi_, pst, ptr, pdof = [], [], [], [], [], [], [], []
     fits, alerts = [], []
     for cells in data:
         t = num(cells, "t")
@@ -1078,13 +1105,15 @@ def read_predictions(path) -> Track:
             phi_.append(num(cells, "hi"))
             pst.append(text(cells, "status"))
             ptr.append(text(cells, "trust"))
+            pdof.append(num(cells, "dof"))
         if text(cells, "lab") is not None:
             learned = text(cells, "learned")
             fits.append({"t": t, "y": num(cells, "lab"), "pred_mean": num(cells, "lab_mean"),
                          "pred_std": num(cells, "lab_std"), "scale": num(cells, "lab_scale"),
                          "dof": num(cells, "lab_dof"), "resid": num(cells, "residual"),
                          "z": num(cells, "z"), "reason": learned, "seen": num(cells, "lab_seen"),
-                         "accepted": learned in _LEARNED})
+                         "accepted": learned in _LEARNED,
+                         **{k: num(cells, k) for k in _REF_COLUMNS if k in col}})
         a = text(cells, "alert")
         if a:
             for part in a.split(";"):
@@ -1095,4 +1124,4 @@ def read_predictions(path) -> Track:
                 else:
                     alerts.append({"t": t, "kind": "action", "action": state})
     return Track(meta.get("model", ""), np.array(pt), np.array(pm), np.array(ps), np.array(plo),
-                 np.array(phi_), pst, ptr, fits, alerts, meta)
+                 np.array(phi_), pst, ptr, fits, alerts, meta, np.array(pdof, dtype=float))
