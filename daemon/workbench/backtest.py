@@ -41,10 +41,11 @@ freedom, the residual ``lab - lab_mean``, the standardized residual ``z``, and `
 (``ok``, ``gate_open``, ``gated``, ``not_identified``), ``lab_seen`` the feed time the result
 reached the model (the newest sample time then). ``alert`` lists the trust-state changes
 and actions published at that time (``caution:extrapolation+stale``, ``normal``, ``flatten``).
-``dof`` is the published prediction's degrees of freedom; ``bias_mean`` / ``bias_std`` and
-``persist`` / ``persist_std`` the bias-update and persistence references for the lab sample
-of that row (their std: the training RMSE). The lab columns ``lab_mean`` ... ``z`` are the
-arrival-time one-step prediction; the published one is the row's own ``mean``.
+``noforget_mean`` / ``noforget_std`` are what the model without forgetting published for that
+lab sample's time, ``dof`` the published prediction's degrees of freedom; ``bias_mean`` /
+``bias_std`` and ``persist`` / ``persist_std`` the bias-update and persistence references for
+the lab sample of that row (their std: the training RMSE). The lab columns ``lab_mean`` ...
+``z`` are the arrival-time one-step prediction; the published one is the row's own ``mean``.
 Empty cells are missing values.
 """
 
@@ -682,6 +683,7 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
     p_sd = _rms(lab_y - p_mean, train_mask)
     ref_pred = {"t": lab_t, "bias_mean": b_mean, "bias_std": np.full(lab_t.size, b_sd),
                 "persist": p_mean, "persist_std": np.full(lab_t.size, p_sd),
+                "noforget_mean": pub_nf["mean"], "noforget_std": pub_nf["std"],
                 "pub_t": pub["t"], "gated": gated, "factor": factor, "grid": grid}
 
     cand = {
@@ -764,7 +766,7 @@ def _published_at(track: Track, lab_t, row_pos: dict, tolerance: float) -> dict:
     and ``pos`` the feed position of the block that carried it (nan where none)."""
     lab_t = np.asarray(lab_t, dtype=float)
     m = lab_t.size
-    out = {k: np.full(m, np.nan) for k in ("t", "mean", "scale", "dof", "pos")}
+    out = {k: np.full(m, np.nan) for k in ("t", "mean", "std", "scale", "dof", "pos")}
     if track.t.size == 0:
         return out
     order = np.argsort(track.t, kind="stable")
@@ -781,6 +783,7 @@ def _published_at(track: Track, lab_t, row_pos: dict, tolerance: float) -> dict:
         scale = (track.hi[k] - track.lo[k]) / (2.0 * q)
     out["t"] = np.where(has, track.t[k], np.nan)
     out["mean"] = np.where(has, track.mean[k], np.nan)
+    out["std"] = np.where(has, track.std[k], np.nan)
     out["scale"] = np.where(has, scale, np.nan)
     out["dof"] = np.where(has, dof[k], np.nan)
     out["pos"] = np.array([row_pos.get(t, math.nan) if h else math.nan
@@ -1013,7 +1016,12 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
         r = row(float(t))
         text = _alert_text(e)
         r["alert"] = f"{r['alert']};{text}" if r.get("alert") else text
-    if noforget is not None:
+    if refs and "noforget_mean" in refs:
+        for i, t in enumerate(refs["t"].tolist()):
+            if t in rows:
+                rows[t].update(noforget_mean=refs["noforget_mean"][i],
+                               noforget_std=refs["noforget_std"][i])
+    elif noforget is not None:
         for f in noforget.fits:
             if f["t"] in rows:
                 rows[f["t"]].update(noforget_mean=f.get("pred_mean"),
