@@ -881,7 +881,10 @@ def _labels(res: BacktestResult) -> dict:
 
 def _g(x: float, width: int) -> str:
     # four significant digits tell 0.1211 from 0.1234, whatever the unit's scale
-    return f"{x:#{width}.4g}" if math.isfinite(x) else f"{'-':>{width}}"
+    if not math.isfinite(x):
+        return f"{'-':>{width}}"
+    text = f"{x:#.4g}"
+    return f"{text[:-1] if text.endswith('.') else text:>{width}}"
 
 
 def summary_text(res: BacktestResult, unit: str = "") -> str:
@@ -901,7 +904,7 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
         + (f"; {res.n_left_out} without a usable prediction left out" if res.n_left_out
            else ""),
         "",
-        f"  {'':<38}{'RMSE':>8}{'MAE':>8}{'cover':>8}{'log sc.':>8}{'CRPS':>8}"
+        f"  {'':<40}{'RMSE':>8}{'MAE':>8}{'cover':>8}{'log sc.':>8}{'CRPS':>8}"
         f"{'RMSE arr':>9}{'ungated':>9}",
     ]
     level = int(round(100 * m.level))
@@ -910,29 +913,30 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
         s = res.scores[key]
         arr = res.scores_arrival.get(key)
         ug = res.scores_ungated.get(key)
-        lines.append(f"  {names[key][:37]:<38}{_g(s.rmse, 8)}{_g(s.mae, 8)}"
+        lines.append(f"  {names[key][:39]:<40}{_g(s.rmse, 8)}{_g(s.mae, 8)}"
                      f"{_g(100 * s.coverage, 7)}%{_g(s.log_score, 8)}{_g(s.crps, 8)}"
                      f"{_g(arr.rmse, 9) if arr else ' ' * 9}"
                      f"{_g(ug.rmse, 9) if ug else ' ' * 9}")
     lines += [
-        f"  recursive RMSE / bias-update RMSE: {res.ratio:#.4g} (below 1: the recursive model "
-        f"wins),",
-        f"  {res.ratio_ungated:#.4g} on the results the gate accepted",
-        f"  bias update: b <- b + f (lab - (static + b)) on the results known at each sample "
-        f"time, f={res.bias_factor:g}",
-        f"  chosen on the training period from {BIAS_GRID[0]:g} .. {BIAS_GRID[-1]:g}",
+        f"  recursive RMSE / bias-update RMSE: {_g(res.ratio, 0)} (below 1: the recursive "
+        "model wins),",
+        f"  {_g(res.ratio_ungated, 0)} on the results the gate accepted; bias update: "
+        "b <- b + f (lab - (static + b))",
+        f"  on the results known at each sample time, f={res.bias_factor:g} chosen on the "
+        f"training period from {BIAS_GRID[0]:g} .. {BIAS_GRID[-1]:g}",
         f"  (RMSE, MAE, CRPS in{u or ' target units'}; cover: share inside the {level}% "
-        "interval, for the bias update and",
-        "  persistence a Gaussian with their training RMSE; log sc.: mean -ln p(lab); lower is "
-        "better except cover;",
-        "  RMSE arr: each result predicted when it reached the model, from every result known "
-        "then,",
-        "  which is not what the control room saw; ungated: RMSE without the results the gate "
+        "interval, for the bias update",
+        "  and persistence a Gaussian with their training RMSE; log sc.: mean -ln p(lab); "
+        "lower is better",
+        "  except cover; RMSE arr: each result predicted when it reached the model, from every "
+        "result known",
+        "  then, not what the control room saw; ungated: RMSE without the results the gate "
         "rejected)",
     ]
     if res.n_gated:
-        parts = ", ".join(f"{k} {_g(res.scores_gated[k].rmse, 0).strip()}" for k in REFERENCES)
-        lines.append(f"  the {res.n_gated} results the gate rejected, alone: RMSE {parts}")
+        parts = ", ".join(f"{k} {_g(res.scores_gated[k].rmse, 0)}" for k in REFERENCES)
+        lines.append(f"  RMSE over the {res.n_gated} results the gate rejected, alone:")
+        lines.append(f"    {parts}")
     lines.append("")
     n_alerts = sum(res.alerts.values())
     if n_alerts:
