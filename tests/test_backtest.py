@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import replace
 
 import msgpack
@@ -257,3 +258,194 @@ def test_backtest_command(tmp_path, capsys):
         EXIT_USAGE
     assert main(["backtest", str(path), "--lab-delay", "13h"]) == EXIT_USAGE
     assert "not shorter than the model's lab.keep" in capsys.readouterr().err
+
+
+# ---------------------------------------------------------------------------------- references
+def _bias_loop(y, base, s, a, f, use):
+    """Reference: the plant's bias filter run over time, the slow obvious way. For each
+    prediction time s[i], start from b = 0 and apply b <- b + f (y - (base + b)) for every
+    result that had arrived before s[i] (a[j] < s[i]), in arrival order."""
+    out = []
+    order = sorted(range(len(y)), key=lambda j: (a[j], j))
+    for i in range(len(y)):
+        b = 0.0
+        for j in order:
+            if a[j] < s[i] and use[j]:
+                b = b + f * (y[j] - (base[j] + b))
+        out.append(base[i] + b)
+    return np.array(out)
+
+
+def _persist_loop(y, s, a, use):
+    """Reference: the newest-drawn lab value among those arrived before each s[i]."""
+    out = []
+    for i in range(len(y)):
+        known = [j for j in range(len(y)) if a[j] < s[i] and use[j]]
+        out.append(y[max(known, key=lambda j: s[j])] if known else math.nan)
+    return np.array(out)
+
+
+def _known(s, a):
+    arrived = np.argsort(a, kind="stable")
+    n_known = np.searchsorted(np.sort(a), s, side="left")
+    return arrived, n_known
+
+
+def _late_case(seed=0, m=60):
+    rng = np.random.default_rng(seed)
+    s = np.cumsum(rng.uniform(1.0, 5.0, m))  # drawn times
+    a = s + rng.uniform(0.5, 14.0, m)  # arrivals, often after later results
+    base = rng.normal(100, 10, m)
+    y = base + np.cumsum(rng.normal(0, 2, m)) + rng.normal(0, 1, m)
+    use = rng.random(m) > 0.1
+    return y, base, s, a, use
+
+
+def test_bias_update_equals_the_filter_run_over_time():
+    y, base, s, a, use = _late_case()
+    assert np.any(np.diff(a) < 0)  # results really arrive out of drawn order
+    arrived, n_known = _known(s, a)
+    for f in (0.05, 0.3, 0.9):
+        got = backtest.bias_reference(y, base, arrived, n_known, f, use)
+        np.testing.assert_allclose(got, _bias_loop(y, base, s, a, f, use), rtol=1e-13)
+    got = backtest.persistence_reference(y, s, arrived, n_known, use)
+    np.testing.assert_array_equal(got, _persist_loop(y, s, a, use))
+    with pytest.raises(ValueError, match="factor=0"):
+        backtest.bias_reference(y, base, arrived, n_known, 0.0)
+    with pytest.raises(ValueError, match="n_known"):
+        backtest.bias_reference(y, base, arrived, n_known + 100, 0.5)
+
+
+def test_bias_factor_is_the_training_minimum_of_the_grid():
+    y, base, s, a, use = _late_case(seed=3, m=80)
+    arrived, n_known = _known(s, a)
+    train = (np.arange(y.size) < 50) & use
+    f, table = backtest.choose_bias_factor(y, base, arrived, n_known, train, use)
+    # brute force over the grid with the reference loop
+    rmse = {g: float(np.sqrt(np.mean((y - _bias_loop(y, base, s, a, g, use))[train] ** 2)))
+            for g in backtest.BIAS_GRID}
+    assert f == min(rmse, key=rmse.get)
+    assert backtest.BIAS_GRID[0] == 0.05 and backtest.BIAS_GRID[-1] == 0.9
+    for g in backtest.BIAS_GRID:
+        assert table[g] == pytest.approx(rmse[g], rel=1e-12)
+
+
+def _hand_model():
+    return loads(toml_config({}, [{"name": "m", "inputs": [{"tag": "a", "lo": 0, "hi": 1}],
+                                   "basis": {"kind": "identity"},
+                                   "noise": {"guess": 0.5, "strength": 2.0},
+                                   "forgetting": {"policy": "exponential",
+                                                  "half_life": "12h"},
+                                   "lab": {"keep": "12h", "tolerance": "2m"}}])).models[0]
+
+
+def _hand_history(days=3.0, blunder=None):
+    # one input, a target drifting by 1 unit a day, a lab result every 2 h
+    t = 1767571200.0 + 600.0 * np.arange(int(days * 144))
+    x = 0.5 + 0.4 * np.sin(np.arange(t.size) / 17.0)
+    truth = 3.0 + 2.0 * x + (t - t[0]) / 86400.0
+    lab = np.arange(5, t.size, 12)
+    rng = np.random.default_rng(1)
+    lab_y = truth[lab] + rng.normal(0, 0.2, lab.size)
+    if blunder is not None:
+        lab_y[blunder] *= 10.0
+    return backtest.History("hand", ("a",), "y", t, x[:, None], t[lab], lab_y)
+
+
+def test_headline_scores_the_prediction_published_at_each_sample_time():
+    # lab results arrive 5 h after drawn, after two later results were drawn: the published
+    # prediction for a sample cannot have seen them, the arrival-time one has
+    hist = _hand_history()
+    model = _hand_model()
+    res = backtest.backtest(hist, model, train=86400.0, lab_delay=5 * 3600.0, block=6)
+    published = {}
+    for topic, payload in res.frames:
+        if topic == b"pred/m":
+            body = msgpack.unpackb(payload, raw=False)
+            for i, t in enumerate(body["t"]):
+                published[t] = (body["mean"][i], body["std"][i], body["dof"][i])
+    after = hist.lab_t >= hist.t[0] + 86400.0
+    ys = hist.lab_y[after]
+    rows = [published[t] for t in hist.lab_t[after].tolist()]
+    mean = np.array([r[0] for r in rows])
+    assert res.n_scored == after.sum()
+    assert res.scores["model"].rmse == pytest.approx(np.sqrt(np.mean((ys - mean) ** 2)),
+                                                     rel=1e-12)
+    # reference: scipy.stats.t.logpdf with the scale from the published std and dof
+    dof = np.array([r[2] for r in rows])
+    scale = np.array([r[1] for r in rows]) * np.sqrt((dof - 2) / dof)
+    assert res.scores["model"].log_score == pytest.approx(
+        -np.mean(stats.t.logpdf(ys, dof, mean, scale)), rel=1e-9)
+    nf = {}
+    for topic, payload in res.frames:
+        if topic == b"pred/m.noforget":
+            body = msgpack.unpackb(payload, raw=False)
+            nf.update(zip(body["t"], body["mean"], strict=True))
+    np.testing.assert_array_equal(res.ref_pred["noforget_mean"][after],
+                                  [nf[t] for t in hist.lab_t[after].tolist()])
+    # the arrival-time figure is another one, and kinder: it knew more
+    assert res.scores_arrival["model"].rmse < res.scores["model"].rmse
+    # the references knew only what had arrived before each sample time
+    s = hist.lab_t
+    a = s + 5 * 3600.0
+    base = res.static_pred["mean"]
+    use = np.ones(s.size, dtype=bool)
+    ref = _bias_loop(hist.lab_y, base, s, a, res.bias_factor, use)
+    np.testing.assert_allclose(res.ref_pred["bias_mean"], ref, rtol=1e-12)
+    np.testing.assert_array_equal(res.ref_pred["persist"], _persist_loop(hist.lab_y, s, a, use))
+    # and the factor is the grid's training minimum (brute force with the reference loop)
+    train = ~after
+    rmse = {g: np.sqrt(np.mean((hist.lab_y - _bias_loop(hist.lab_y, base, s, a, g, use))[train]
+                               ** 2)) for g in backtest.BIAS_GRID}
+    assert res.bias_factor == min(rmse, key=rmse.get)
+    assert res.ratio == pytest.approx(res.scores["model"].rmse / res.scores["bias"].rmse)
+
+
+def test_results_the_gate_rejected_are_scored_for_every_model():
+    hist = _hand_history(blunder=[20])  # drawn on the second day, after training
+    res = backtest.backtest(hist, _hand_model(), train=86400.0, lab_delay=3600.0, block=6)
+    gated = [f["t"] for f in res.track.fits if f["reason"] == "gated"]
+    assert gated == [hist.lab_t[20]]
+    after = hist.lab_t >= hist.t[0] + 86400.0
+    assert res.n_scored == after.sum() and res.n_gated == 1
+    for key in backtest.REFERENCES:
+        assert res.scores[key].n == res.n_scored
+        assert res.scores_gated[key].n == 1
+        assert res.scores_ungated[key].n == res.n_scored - 1
+        # the blunder (ten times the value) dominates every model's error
+        assert res.scores[key].rmse > 2 * res.scores_ungated[key].rmse
+    # the references did not learn from it: persistence never repeats it
+    assert not np.any(res.ref_pred["persist"] == hist.lab_y[20])
+
+
+def test_summary_prints_the_ratio_and_four_significant_digits():
+    hist = _hand_history(blunder=[20])
+    res = backtest.backtest(hist, _hand_model(), train=86400.0, lab_delay=3600.0, block=6)
+    text = backtest.summary_text(res, "ppm")
+    assert f"recursive RMSE / bias-update RMSE: {res.ratio:#.4g}".rstrip(".") in text
+    assert "persistence (last known lab value)" in text and "lab bias update" in text
+    rows = {r["name"]: r for r in res.table()}
+    assert set(rows) == set(backtest.REFERENCES)
+    line = next(ln for ln in text.splitlines() if ln.strip().startswith("recursive, exp"))
+    for key in ("rmse", "mae", "crps"):
+        assert f"{rows['model'][key]:#.4g}".rstrip(".") in line
+    # every figure of the table has at least 4 significant digits
+    table = [ln for ln in text.split("RMSE arr")[1].split("recursive RMSE /")[0].splitlines()[1:]
+             if ln.strip()]
+    assert len(table) == 5
+    figures = " ".join(ln[42:] for ln in table)  # past the names (a name holds f=0.75)
+    assert len(figures.split()) >= 5 * 5
+    for num in re.findall(r"(?<![\w.])\d+\.\d*", figures):
+        digits = num.replace(".", "").lstrip("0")
+        assert len(digits) >= 4, num
+    assert "RMSE over the 1 results the gate rejected" in text
+
+
+def test_backtest_scenario_on_the_real_drift_preset():
+    res = backtest.backtest_scenario(plant.Scenario.real_drift(days=8.0, seed=2),
+                                     _demo_model(), train=3 * 86400.0)
+    assert res.train_end == res.history.t[0] + 3 * 86400.0
+    assert res.lab_delay == 7200.0  # the middle of the scenario's 1 .. 3 h
+    assert res.n_scored > 20
+    assert [r["name"] for r in res.table()] == list(backtest.REFERENCES)
+    assert all(math.isfinite(r["rmse"]) for r in res.table())

@@ -308,6 +308,11 @@ def test_scenario_state_round_trip():
         ({"lab_jitter_min": 200.0}, "200.0"),
         ({"dead_times_s": (0.0, -5.0, 0.0, 0.0)}, "-5.0"),
         ({"seed": 1.5}, "1.5"),
+        ({"offset_sd_ppm": -1.0}, "-1.0"),
+        ({"offset_tau_h": 0.0}, "0.0"),
+        ({"zero_walk_ppm": float("nan")}, "nan"),
+        ({"lab_slow_share": 1.5}, "1.5"),
+        ({"lab_slow_delay_h": (9.0, 2.0)}, "(9.0, 2.0)"),
     ],
 )
 def test_scenario_rejects_bad_values(kwargs, text):
@@ -324,3 +329,97 @@ def test_basis_rejects_wrong_width():
     with pytest.raises(ValueError, match=r"\(3, 5\)"):
         basis(np.zeros((3, 5)))
     np.testing.assert_allclose(basis(CENTERS), [1, 0, 0, 0, 0, 0, 0])
+
+
+# ---------------------------------------------------------------------------------- disturbances
+def test_offset_is_an_ar1_with_the_textbook_stationary_law():
+    # reference: the AR(1) x[n] = a x[n-1] + e[n], var(e) = s2, has stationary variance
+    # s2 / (1 - a^2) and autocorrelation a^h at lag h (Box & Jenkins; from memory), and
+    # statsmodels' ArmaProcess gives the same autocorrelations
+    from statsmodels.tsa.arima_process import ArmaProcess
+
+    sd, tau_h, dt = 10.0, 6.0, 600.0
+    run = simulate(Scenario(seed=8, days=2000.0, sample_period_s=dt, offset_sd_ppm=sd,
+                            offset_tau_h=tau_h))
+    a = np.exp(-dt / (tau_h * HOUR))
+    s2 = sd ** 2 * (1 - a ** 2)  # the variance of one innovation
+    o = run.offset
+    # about 4000 independent stretches: the sample variance is within 2.2 % (one sd)
+    assert np.var(o) == pytest.approx(s2 / (1 - a ** 2), rel=0.1)
+    acf_ref = ArmaProcess([1.0, -a], [1.0]).acf(40)
+    for h in (1, 12, 36):
+        r = np.corrcoef(o[:-h], o[h:])[0, 1]
+        assert r == pytest.approx(a ** h, abs=0.03)
+        assert acf_ref[h] == pytest.approx(a ** h, rel=1e-12)
+    # the offset is in the truth (through the intercept), in no input
+    assert np.array_equal(run.coef[:, 0], BASE_COEF[0] + o)
+    calm = simulate(Scenario(seed=8, days=2000.0, sample_period_s=dt))
+    np.testing.assert_array_equal(run.X, calm.X)
+    np.testing.assert_allclose(run.truth_y - calm.truth_y, o, atol=1e-9)
+
+
+def test_offset_walk_and_analyzer_zero_walk_have_the_stated_rates():
+    # reference: a random walk with step variance w^2 dt / day has increments over d days of
+    # variance w^2 d (sum of independent steps)
+    run = simulate(Scenario(seed=9, days=1500.0, sample_period_s=600.0, offset_walk_ppm=4.0,
+                            zero_walk_ppm=2.0, lab_noise_ppm=3.0, lab_resolution_ppm=0.0,
+                            lab_delay_h=(0.0, 0.0)))
+    per_day = 144
+    daily = run.offset[::per_day]
+    assert np.var(np.diff(daily)) == pytest.approx(4.0 ** 2, rel=0.12)
+    assert run.offset[0] == 0.0
+    dz = np.diff(run.lab_zero)
+    dd = np.diff(run.lab_t) / DAY
+    # increments standardized by their own elapsed time are N(0, w^2)
+    assert np.var(dz / np.sqrt(dd)) == pytest.approx(2.0 ** 2, rel=0.1)
+    # the zero error is in the reported values, not in the truth
+    resid = run.lab_y - run.truth_y[run.lab_index] - run.lab_zero
+    # far from the floor at 0 ppm (the walks wander far in 1500 days)
+    good = run.truth_y[run.lab_index] + run.lab_zero > 30.0
+    assert good.sum() > 1000
+    assert np.std(resid[good]) == pytest.approx(3.0, rel=0.05)
+    calm = simulate(Scenario(seed=9, days=1500.0, sample_period_s=600.0, offset_walk_ppm=4.0,
+                             lab_noise_ppm=3.0, lab_resolution_ppm=0.0, lab_delay_h=(0.0, 0.0)))
+    np.testing.assert_array_equal(calm.truth_y, run.truth_y)
+
+
+def test_zero_ramp_is_exact():
+    run = simulate(Scenario(seed=1, days=10.0, zero_ramp_ppm_per_day=0.5, lab_noise_ppm=0.0,
+                            lab_resolution_ppm=0.0))
+    ramp = 0.5 * (run.lab_t - run.scenario.start) / DAY
+    np.testing.assert_allclose(run.lab_zero, ramp, rtol=1e-12)
+    np.testing.assert_allclose(run.lab_y, run.truth_y[run.lab_index] + ramp, rtol=1e-12)
+
+
+def test_slow_lab_results_arrive_out_of_order():
+    sc = Scenario(seed=4, days=30.0, lab_slow_share=0.3, lab_slow_delay_h=(8.0, 12.0))
+    run = simulate(sc)
+    delay_h = (run.lab_arrival - run.lab_t) / HOUR
+    slow = delay_h > 3.0 + 1e-3
+    # the share is binomial: a 99.9 % interval around 0.3 of n results
+    lo, hi = stats.binom.interval(0.999, run.lab_t.size, 0.3)
+    assert lo <= slow.sum() <= hi
+    assert np.all((delay_h[slow] >= 8.0 - 1e-3) & (delay_h[slow] <= 12.0 + 1e-3))
+    assert np.any(np.diff(run.lab_arrival) < 0)  # reported after results drawn later
+    drawn = [e[1] for e in events(run) if e[0] == "y"]
+    assert drawn != sorted(drawn)
+    # everything else is the scenario without slow results
+    base = simulate(Scenario(seed=4, days=30.0))
+    for name in ("X", "lab_t", "lab_y", "truth_y"):
+        np.testing.assert_array_equal(getattr(run, name), getattr(base, name), err_msg=name)
+    np.testing.assert_array_equal(run.lab_arrival[~slow], base.lab_arrival[~slow])
+
+
+def test_real_drift_preset_has_every_nuisance():
+    run = simulate(Scenario.real_drift(days=20.0, seed=0))
+    sc = run.scenario
+    assert sc.offset_sd_ppm > 0 and sc.zero_walk_ppm > 0 and sc.blunders > 0
+    assert sc.fouling_ppm_per_day > 0 and sc.lab_slow_share > 0
+    assert run.lab_blunder.sum() == sc.blunders
+    assert np.any(np.diff(run.lab_arrival) < 0)
+    assert np.std(run.offset) > 5.0
+    assert np.any(run.lab_zero != 0)
+    # today's presets have none of it
+    for preset in (Scenario.stationary(), Scenario.drifting(), Scenario.demo()):
+        assert preset.offset_sd_ppm == preset.offset_walk_ppm == preset.zero_walk_ppm == 0
+        assert preset.zero_ramp_ppm_per_day == 0 and preset.lab_slow_share == 0

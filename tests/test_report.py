@@ -167,3 +167,19 @@ def test_demo_story_without_the_live_part(tmp_path, capsys):
     img = mpimg.imread(out / "c301-report.png")
     assert img.shape[:2] == (1100, 1540)
     assert math.isfinite(backtest.read_predictions(out / "c301-backtest.csv").mean[-1])
+
+
+def test_reference_scores_from_the_file_equal_the_backtest_headline(run_files):
+    # the predictions file carries the published prediction and the references at each lab
+    # row: the report's figures are the backtest's, computed again from the file alone
+    _, _, res, pred = run_files
+    track = report.load_track(pred)
+    np.testing.assert_array_equal(track.dof, res.track.dof)
+    refs = report.reference_scores(track)
+    assert res.n_left_out == 0
+    expected = {"published": "model", "no forgetting": "noforget", "static": "static",
+                "bias update": "bias", "persistence": "persist"}
+    for label, key in expected.items():
+        n, rmse = refs[label]
+        assert n == res.n_scored == res.scores[key].n
+        assert rmse == pytest.approx(res.scores[key].rmse, rel=1e-12)

@@ -7,23 +7,32 @@ time, sent ``lab_delay`` after it was drawn), and every message goes through
 have left the daemon. The predictions written are therefore the daemon's, bit for bit:
 replaying the same messages into a running daemon gives the same bytes (tested).
 
-Beside the model as configured, two references are scored on the same lab results:
+Beside the model as configured, four references are scored on the same lab results:
 
-* the same model without forgetting (run through the same service, as a second model), and
+* the same model without forgetting (run through the same service, as a second model);
 * the static batch model: ridge regression with the same basis and prior, fitted once on the
-  lab results of a training period at the start of the file (``train``), then held fixed.
+  lab results of a training period at the start of the file (``train``), then held fixed;
+* the static model plus a lab bias update, as plants run it: an exponential filter of its lab
+  residual, ``b <- b + f (y - (static + b))``, with the factor ``f`` of `BIAS_GRID` that has
+  the least RMSE on the training period;
+* persistence: the last lab value known.
 
-Scores are one-step-ahead: each lab result is predicted before the model learns from it. They
-are computed on the lab results drawn after the training period, leaving out those the
-model's robust gate rejected (lab blunders, by the gate's judgement), so that all three models
-are scored on the same set.
+Scores are what the control room saw: each lab result drawn after the training period is
+scored against the prediction the model published for its own sample time, before its result
+or any later one was known; the bias update and persistence use only the results that had
+reached the feed by then (in the order they arrived). Results the recursive model's gate
+rejected are scored like any other, for every model, and also apart (``scores_gated``,
+``scores_ungated``); the references never learn from them, as a plant's validity check would
+not. The arrival-time score of the recursive models (each result predicted when it reached
+the model, the ``fit/`` message) is given beside, labelled, for comparison only.
 
 Predictions file (``write_predictions``): a CSV with comment lines starting with ``#``, the
 first of which is ``# posteriord predictions: {json}`` with the model name, interval level,
 target, unit and detector settings. Columns::
 
     time,t,mean,std,lo,hi,status,trust,lab,lab_mean,lab_std,lab_scale,lab_dof,residual,z,
-    learned,lab_seen,alert,noforget_mean,noforget_std,static_mean,static_std
+    learned,lab_seen,alert,noforget_mean,noforget_std,static_mean,static_std,dof,
+    bias_mean,bias_std,persist,persist_std
 
 One row per published prediction (``time`` ISO 8601 UTC, ``t`` epoch seconds); the lab columns
 are filled on the row of the time the sample was drawn (a row of its own when no prediction
@@ -32,11 +41,17 @@ freedom, the residual ``lab - lab_mean``, the standardized residual ``z``, and `
 (``ok``, ``gate_open``, ``gated``, ``not_identified``), ``lab_seen`` the feed time the result
 reached the model (the newest sample time then). ``alert`` lists the trust-state changes
 and actions published at that time (``caution:extrapolation+stale``, ``normal``, ``flatten``).
+``noforget_mean`` / ``noforget_std`` are what the model without forgetting published for that
+lab sample's time, ``dof`` the published prediction's degrees of freedom; ``bias_mean`` /
+``bias_std`` and ``persist`` / ``persist_std`` the bias-update and persistence references for
+the lab sample of that row (their std: the training RMSE). The lab columns ``lab_mean`` ...
+``z`` are the arrival-time one-step prediction; the published one is the row's own ``mean``.
 Empty cells are missing values.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import logging
 import math
@@ -53,6 +68,7 @@ from daemon.runtime import wire
 from daemon.runtime.alignment import apply_dead_time
 from daemon.workbench.historian import read_csv
 from recursive.detect import crps_t, log_score_t
+from recursive.quantile import t_quantile
 
 __all__ = [
     "History",
@@ -61,11 +77,16 @@ __all__ = [
     "Scores",
     "BacktestResult",
     "backtest",
+    "backtest_scenario",
+    "bias_reference",
+    "choose_bias_factor",
     "collect",
     "feed_messages",
     "fit_static",
+    "history_from_run",
     "lab_features",
     "load_history",
+    "persistence_reference",
     "read_predictions",
     "score",
     "summary_text",
@@ -233,6 +254,7 @@ class Track:
     fits: list
     alerts: list
     meta: dict = field(default_factory=dict)
+    dof: np.ndarray | None = None
 
     @property
     def level(self) -> float:
@@ -263,7 +285,8 @@ def collect(messages, model: str, meta: dict | None = None) -> Track:
     Block predictions are unrolled into rows.
     """
     pred, fit, alert = f"pred/{model}", f"fit/{model}", f"alert/{model}"
-    cols: dict[str, list] = {k: [] for k in ("t", "mean", "std", "lo", "hi", "status", "trust")}
+    cols: dict[str, list] = {k: [] for k in ("t", "mean", "std", "lo", "hi", "status", "trust",
+                                             "dof")}
     fits: list[dict] = []
     alerts: list[dict] = []
     level = None
@@ -275,10 +298,12 @@ def collect(messages, model: str, meta: dict | None = None) -> Track:
                 for key in ("t", "mean", "std", "lo", "hi", "status"):
                     cols[key].extend(body[key])
                 cols["trust"].extend([body.get("trust")] * k)
+                cols["dof"].extend(body.get("dof") or [None] * k)
             else:
                 for key in ("t", "mean", "std", "lo", "hi", "status"):
                     cols[key].append(body[key])
                 cols["trust"].append(body.get("trust"))
+                cols["dof"].append(body.get("dof"))
         elif topic == fit:
             # the feed time the result reached the model: its newest sample time then
             last = cols["t"][-1] if cols["t"] else body["t"]
@@ -289,9 +314,9 @@ def collect(messages, model: str, meta: dict | None = None) -> Track:
     if level is not None:
         meta.setdefault("level", level)
     arr = {k: np.array([_nan(v) for v in cols[k]], dtype=float)
-           for k in ("t", "mean", "std", "lo", "hi")}
+           for k in ("t", "mean", "std", "lo", "hi", "dof")}
     return Track(model, arr["t"], arr["mean"], arr["std"], arr["lo"], arr["hi"], cols["status"],
-                 cols["trust"], fits, alerts, meta)
+                 cols["trust"], fits, alerts, meta, arr["dof"])
 
 
 class _Recorder:
@@ -417,10 +442,95 @@ def score(y, mean, scale, dof, level: float = 0.95) -> Scores:
                   float(np.mean(crps_t(y, mean, scale, dof))), level)
 
 
+# ---------------------------------------------------------------------------------- references
+BIAS_GRID = tuple(round(0.05 * i, 2) for i in range(1, 19))  # 0.05 .. 0.9
+
+
+def _check_known(m: int, arrived, n_known, use):
+    arrived = np.asarray(arrived, dtype=int)
+    n_known = np.asarray(n_known, dtype=int)
+    if arrived.ndim != 1 or np.any((arrived < 0) | (arrived >= m)):
+        raise ValueError(f"arrived must index the {m} lab results, got {arrived.tolist()!r}")
+    if n_known.shape != (m,) or np.any((n_known < 0) | (n_known > arrived.size)):
+        raise ValueError(f"n_known must be {m} counts within 0..{arrived.size}, got "
+                         f"{n_known.tolist()!r}")
+    use = np.ones(m, dtype=bool) if use is None else np.asarray(use, dtype=bool)
+    if use.shape != (m,):
+        raise ValueError(f"use must have {m} flags, got shape {use.shape}")
+    return arrived, n_known, use
+
+
+def bias_reference(y, base, arrived, n_known, factor: float, use=None) -> np.ndarray:
+    """The plant's bias update: a fixed model plus an exponential filter of its lab residual.
+
+    ``y`` and ``base`` (m,) are the lab values and the fixed model's predictions at each
+    result's sample time; ``arrived`` the indices of the results in the order they reached
+    the plant, and ``n_known[i]`` how many of them had arrived when the prediction for result
+    ``i``'s sample time was published. Results with ``use`` False (default all True) arrive but
+    leave the bias alone. Returns ``base + b`` where ``b`` is the bias after the first
+    ``n_known[i]`` arrivals, starting from 0 and updated ``b <- b + factor (y - (base + b))``
+    on each result used.
+    """
+    y = np.asarray(y, dtype=float)
+    base = np.asarray(base, dtype=float)
+    m = y.size
+    if base.shape != (m,):
+        raise ValueError(f"y {y.shape} and base {base.shape} do not match")
+    if not (math.isfinite(factor) and 0 < factor <= 1):
+        raise ValueError(f"factor={factor!r}: must be in (0, 1]")
+    arrived, n_known, use = _check_known(m, arrived, n_known, use)
+    b = np.zeros(arrived.size + 1)
+    for k, j in enumerate(arrived.tolist()):
+        r = y[j] - base[j]
+        b[k + 1] = b[k] + factor * (r - b[k]) if use[j] and math.isfinite(r) else b[k]
+    return base + b[n_known]
+
+
+def persistence_reference(y, t, arrived, n_known, use=None) -> np.ndarray:
+    """The last lab value known at each prediction: of the results arrived by then (as in
+    `bias_reference`), the one drawn last; nan before any has arrived."""
+    y = np.asarray(y, dtype=float)
+    t = np.asarray(t, dtype=float)
+    m = y.size
+    arrived, n_known, use = _check_known(m, arrived, n_known, use)
+    last = np.full(arrived.size + 1, np.nan)
+    newest, value = -math.inf, math.nan
+    for k, j in enumerate(arrived.tolist()):
+        if use[j] and math.isfinite(y[j]) and t[j] > newest:
+            newest, value = t[j], y[j]
+        last[k + 1] = value
+    return last[n_known]
+
+
+def choose_bias_factor(y, base, arrived, n_known, train, use=None, grid=BIAS_GRID):
+    """The filter factor of `bias_reference` with the least RMSE over the results ``train``
+    (a mask); returns ``(factor, {factor: rmse})``. Ties go to the smaller factor."""
+    train = np.asarray(train, dtype=bool) & np.isfinite(np.asarray(y, dtype=float))
+    if not train.any():
+        raise ValueError("no training lab results to choose the bias filter factor on")
+    table = {}
+    for f in grid:
+        pred = bias_reference(y, base, arrived, n_known, f, use)
+        err = (np.asarray(y, dtype=float) - pred)[train & np.isfinite(pred)]
+        table[f] = float(np.sqrt(np.mean(err ** 2))) if err.size else math.inf
+    best = min(table, key=lambda f: (table[f], f))
+    return best, table
+
+
 # ---------------------------------------------------------------------------------- backtest
+REFERENCES = ("model", "noforget", "static", "bias", "persist")
+
+
 @dataclass(eq=False)
 class BacktestResult:
-    """Everything a backtest found; `summary_text` writes it for people."""
+    """Everything a backtest found; `summary_text` writes it for people, `table` for programs.
+
+    ``scores`` (keys `REFERENCES`) are the headline: every lab result drawn after the training
+    period scored with the prediction published for its own sample time, gated ones
+    included; ``scores_gated`` the same over the results the recursive gate rejected alone,
+    ``scores_ungated`` over the others;
+    ``scores_arrival`` (``model``, ``noforget``) the one-step-ahead score at arrival.
+    """
 
     model: ModelConfig
     history: History
@@ -429,7 +539,7 @@ class BacktestResult:
     static: StaticModel
     scores: dict
     n_scored: int
-    n_gated_left_out: int
+    n_gated: int
     train_end: float
     lab_delay: float
     block: int
@@ -438,6 +548,40 @@ class BacktestResult:
     static_pred: dict
     alerts: Counter
     alert_reasons: Counter
+    scores_arrival: dict = field(default_factory=dict)
+    scores_gated: dict = field(default_factory=dict)
+    scores_ungated: dict = field(default_factory=dict)
+    bias_factor: float = math.nan
+    bias_grid: dict = field(default_factory=dict)
+    ref_pred: dict = field(default_factory=dict)
+    n_left_out: int = 0
+
+    @property
+    def ratio(self) -> float:
+        """The recursive model's RMSE over the bias update's (below 1: the model wins)."""
+        return _ratio(self.scores)
+
+    @property
+    def ratio_ungated(self) -> float:
+        """`ratio` over the lab results the gate accepted."""
+        return _ratio(self.scores_ungated)
+
+    def table(self) -> list[dict]:
+        """The headline scores as rows ``{"name", "label", "n", "rmse", "mae", "coverage",
+        "log_score", "crps", "rmse_arrival", "rmse_gated", "rmse_ungated"}``, in
+        `REFERENCES` order."""
+        out = []
+        for key in REFERENCES:
+            s = self.scores[key]
+            arr = self.scores_arrival.get(key)
+            g = self.scores_gated.get(key)
+            ug = self.scores_ungated.get(key)
+            out.append({"name": key, "label": _labels(self)[key], "n": s.n, "rmse": s.rmse,
+                        "mae": s.mae, "coverage": s.coverage, "log_score": s.log_score,
+                        "crps": s.crps, "rmse_arrival": arr.rmse if arr else math.nan,
+                        "rmse_gated": g.rmse if g else math.nan,
+                        "rmse_ungated": ug.rmse if ug else math.nan})
+        return out
 
 
 def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.0,
@@ -518,32 +662,58 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
                            else math.inf)
     static_pred = {"t": lab_t, "mean": s_mean, "scale": s_scale, "dof": s_dof, "std": s_std}
 
-    # the same lab results for all three models
-    a = _fits_by_time(track)
-    b = _fits_by_time(other)
-    idx = {t: i for i, t in enumerate(lab_t.tolist())}
-    rows = []
-    n_gated = 0
-    for t in sorted(a):
-        fa = a[t]
-        if t < train_end:
-            continue
-        if fa.get("reason") == "gated":
-            n_gated += 1
-            continue
-        fb, i = b.get(t), idx.get(t)
-        if fb is None or i is None or not ok[i]:
-            continue
-        cand = [(fa["pred_mean"], fa["scale"], fa["dof"]), (fb["pred_mean"], fb["scale"],
-                                                           fb["dof"]),
-                (s_mean[i], s_scale[i], s_dof[i])]
-        if all(_usable(*c) for c in cand):
-            rows.append((fa["y"], *cand))
-    y = np.array([r[0] for r in rows])
-    scores = {}
-    for key, k in (("model", 1), ("noforget", 2), ("static", 3)):
-        scores[key] = score(y, [r[k][0] for r in rows], [r[k][1] for r in rows],
-                            [r[k][2] for r in rows], model.level)
+    # what was known when: the position in the feed of each lab result and of the block
+    # carrying each published prediction
+    lab_pos, row_pos = _positions(messages, model.name, lab_t)
+    pub = _published_at(track, lab_t, row_pos, model.tolerance)
+    pub_nf = _published_at(other, lab_t, row_pos, model.tolerance)
+    sent = np.isfinite(lab_pos)
+    arrived = np.flatnonzero(sent)[np.argsort(lab_pos[sent], kind="stable")]
+    n_known = np.searchsorted(np.sort(lab_pos[sent]), pub["pos"], side="left")
+    fits_a, fits_b = _fits_by_time(track), _fits_by_time(other)
+    gated = np.array([fits_a.get(t, {}).get("reason") == "gated" for t in lab_t.tolist()],
+                     dtype=bool)
+    use = ~gated
+    train_mask = ok & use & (lab_t < train_end) & np.isfinite(pub["pos"])
+    factor, grid = choose_bias_factor(lab_y, s_mean, arrived, n_known, train_mask, use)
+    b_mean = bias_reference(lab_y, s_mean, arrived, n_known, factor, use)
+    p_mean = persistence_reference(lab_y, lab_t, arrived, n_known, use)
+    # the references publish a mean only: their spread is their RMSE on the training period
+    b_sd = _rms(lab_y - b_mean, train_mask)
+    p_sd = _rms(lab_y - p_mean, train_mask)
+    ref_pred = {"t": lab_t, "bias_mean": b_mean, "bias_std": np.full(lab_t.size, b_sd),
+                "persist": p_mean, "persist_std": np.full(lab_t.size, p_sd),
+                "noforget_mean": pub_nf["mean"], "noforget_std": pub_nf["std"],
+                "pub_t": pub["t"], "gated": gated, "factor": factor, "grid": grid}
+
+    cand = {
+        "model": (pub["mean"], pub["scale"], pub["dof"]),
+        "noforget": (pub_nf["mean"], pub_nf["scale"], pub_nf["dof"]),
+        "static": (s_mean, s_scale, s_dof),
+        "bias": (b_mean, np.full(lab_t.size, b_sd), np.full(lab_t.size, math.inf)),
+        "persist": (p_mean, np.full(lab_t.size, p_sd), np.full(lab_t.size, math.inf)),
+    }
+    after = ok & (lab_t >= train_end) & np.isfinite(lab_y)
+    usable = after.copy()
+    for mean_, scale_, dof_ in cand.values():
+        usable &= np.array([_usable(*c) for c in zip(mean_.tolist(), scale_.tolist(),
+                                                     dof_.tolist(), strict=True)], dtype=bool)
+    rows = np.flatnonzero(usable)
+    g_rows = rows[gated[rows]]
+    u_rows = rows[~gated[rows]]
+    scores, scores_gated, scores_ungated = {}, {}, {}
+    for key, (mean_, scale_, dof_) in cand.items():
+        for out, r in ((scores, rows), (scores_gated, g_rows), (scores_ungated, u_rows)):
+            out[key] = score(lab_y[r], mean_[r], scale_[r], dof_[r], model.level)
+    # the old way, labelled as such: each result predicted when it reached the model
+    scores_arrival = {}
+    for key, fits in (("model", fits_a), ("noforget", fits_b)):
+        got = [(lab_y[i], fits[t]["pred_mean"], fits[t]["scale"], fits[t]["dof"])
+               for i, t in zip(rows.tolist(), lab_t[rows].tolist(), strict=True)
+               if t in fits and _usable(fits[t]["pred_mean"], fits[t]["scale"],
+                                        fits[t]["dof"])]
+        cols = list(zip(*got, strict=True)) if got else ([], [], [], [])
+        scores_arrival[key] = score(*cols, level=model.level)
     alerts, reasons = Counter(), Counter()
     for e in track.alerts:
         if e.get("kind") == "state" and e.get("new") in ("caution", "untrusted"):
@@ -551,9 +721,107 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
             for r in e.get("reasons", []):
                 reasons[r["name"]] += 1
     track.meta["static_train_end"] = train_end
-    return BacktestResult(model, history, track, other, static, scores, len(rows), n_gated,
-                          train_end, lab_delay, block, len(messages), recorder.frames,
-                          static_pred, alerts, reasons)
+    track.meta["bias_factor"] = factor
+    return BacktestResult(model, history, track, other, static, scores, rows.size,
+                          int(g_rows.size), train_end, lab_delay, block, len(messages),
+                          recorder.frames, static_pred, alerts, reasons,
+                          scores_arrival=scores_arrival, scores_gated=scores_gated,
+                          scores_ungated=scores_ungated,
+                          bias_factor=factor, bias_grid=grid, ref_pred=ref_pred,
+                          n_left_out=int(after.sum() - rows.size))
+
+
+def _rms(err, mask) -> float:
+    e = np.asarray(err, dtype=float)[mask]
+    e = e[np.isfinite(e)]
+    return float(np.sqrt(np.mean(e ** 2))) if e.size else math.nan
+
+
+def _positions(messages, name: str, lab_t):
+    """Feed positions (message indices) of each lab result of ``lab_t`` (inf when never
+    sent) and of each feature row time of model ``name``."""
+    idx = {}
+    for i, t in enumerate(np.asarray(lab_t, dtype=float).tolist()):
+        idx.setdefault(t, i)
+    lab_pos = np.full(len(lab_t), np.inf)
+    row_pos: dict = {}
+    for k, (_, topic, body) in enumerate(messages):
+        if topic != name:
+            continue
+        if "y" in body:
+            i = idx.get(float(body["t"]))
+            if i is not None and not math.isfinite(lab_pos[i]):
+                lab_pos[i] = k
+        elif isinstance(body.get("t"), list):
+            for t in body["t"]:
+                row_pos.setdefault(float(t), k)
+        elif "t" in body:
+            row_pos.setdefault(float(body["t"]), k)
+    return lab_pos, row_pos
+
+
+def _published_at(track: Track, lab_t, row_pos: dict, tolerance: float) -> dict:
+    """The prediction published for each lab sample's own time: the newest published row at
+    or before it (within ``tolerance``), with the Student-t scale recovered from its interval
+    and ``pos`` the feed position of the block that carried it (nan where none)."""
+    lab_t = np.asarray(lab_t, dtype=float)
+    m = lab_t.size
+    out = {k: np.full(m, np.nan) for k in ("t", "mean", "std", "scale", "dof", "pos")}
+    if track.t.size == 0:
+        return out
+    order = np.argsort(track.t, kind="stable")
+    ts = track.t[order]
+    j = np.searchsorted(ts, lab_t, side="right") - 1
+    has = (j >= 0)
+    j = np.where(has, j, 0)
+    k = order[j]
+    has &= lab_t - track.t[k] <= tolerance
+    dof = track.dof if track.dof is not None and track.dof.size == track.t.size else \
+        np.full(track.t.size, np.nan)
+    q = t_quantile(dof[k], 0.5 + track.level / 2.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = (track.hi[k] - track.lo[k]) / (2.0 * q)
+    out["t"] = np.where(has, track.t[k], np.nan)
+    out["mean"] = np.where(has, track.mean[k], np.nan)
+    out["std"] = np.where(has, track.std[k], np.nan)
+    out["scale"] = np.where(has, scale, np.nan)
+    out["dof"] = np.where(has, dof[k], np.nan)
+    out["pos"] = np.array([row_pos.get(t, math.nan) if h else math.nan
+                           for t, h in zip(track.t[k].tolist(), has.tolist(), strict=True)])
+    return out
+
+
+def history_from_run(run, path: str = "<simulated>") -> History:
+    """A `History` holding a simulated `plant.Run` as its historian CSV would (without the
+    round trip through a file: the CSV keeps floats exactly, so the rows are the same)."""
+    names = {f.name for f in dataclasses.fields(History)}
+    lab = {"lab_arrival": np.asarray(run.lab_arrival, dtype=float)}
+    extra = {k: v for k, v in lab.items() if k in names}
+    return History(path, tuple(run.tags), run.target, np.asarray(run.t, dtype=float),
+                   np.asarray(run.X, dtype=float), np.asarray(run.lab_t, dtype=float),
+                   np.asarray(run.lab_y, dtype=float),
+                   {"rows": int(run.t.size), "bad": 0, "simulated": True}, **extra)
+
+
+def backtest_scenario(scenario, model: ModelConfig, *, train: float | None = None,
+                      lab_delay: float | None = None, block: int = 60,
+                      unit: str = "ppm") -> BacktestResult:
+    """Simulate ``scenario`` (a `plant.Scenario`) and backtest ``model`` on it.
+
+    ``train`` defaults to 14 days, or half the run when shorter than four weeks;
+    ``lab_delay`` to the middle of the scenario's usual lab delay. ``result.table()`` gives the
+    scores as rows, ``summary_text(result)`` as text.
+    """
+    from daemon.workbench import plant
+
+    run = plant.simulate(scenario)
+    days = float(scenario.days)
+    if train is None:
+        train = 14 * 86400.0 if days >= 28 else days * 86400.0 / 2
+    if lab_delay is None:
+        lab_delay = 3600.0 * round(sum(scenario.lab_delay_h) / 2, 3)
+    return backtest(history_from_run(run, f"<{plant.UNIT}, seed {scenario.seed}>"), model,
+                    train=train, lab_delay=lab_delay, block=block, unit=unit)
 
 
 def _usable(mean, scale, dof) -> bool:
@@ -596,6 +864,29 @@ def _policy(m: ModelConfig) -> str:
     return f"{m.forgetting}, half-life {format_duration(m.half_life)}"
 
 
+def _ratio(scores: dict) -> float:
+    if "bias" not in scores:
+        return math.nan
+    b = scores["bias"].rmse
+    return scores["model"].rmse / b if b > 0 else math.nan
+
+
+def _labels(res: BacktestResult) -> dict:
+    return {"model": f"recursive, {_policy(res.model)}",
+            "noforget": "recursive, no forgetting",
+            "static": f"static ridge on {res.static.n} lab results",
+            "bias": f"static + lab bias update, f={res.bias_factor:g}",
+            "persist": "persistence (last known lab value)"}
+
+
+def _g(x: float, width: int) -> str:
+    # four significant digits tell 0.1211 from 0.1234, whatever the unit's scale
+    if not math.isfinite(x):
+        return f"{'-':>{width}}"
+    text = f"{x:#.4g}"
+    return f"{text[:-1] if text.endswith('.') else text:>{width}}"
+
+
 def summary_text(res: BacktestResult, unit: str = "") -> str:
     """The backtest summary: scores side by side, alerts raised."""
     h, m = res.history, res.model
@@ -606,25 +897,47 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
         f" ({bad} bad), {h.lab_t.size} lab results, {_stamp(h.t[0])} .. {_stamp(h.t[-1])} UTC",
         f"  fed as the daemon sees it: {res.messages} messages (feature blocks of "
         f"{res.block} rows, lab results {format_duration(res.lab_delay)} after drawn)",
-        f"  scored: {res.n_scored} lab results drawn after {_stamp(res.train_end)} (the "
-        f"static model's training period), one step ahead; {res.n_gated_left_out} rejected "
-        f"by the gate left out",
+        f"  scored: {res.n_scored} lab results drawn after {_stamp(res.train_end)} (after "
+        f"the training period), each with",
+        "  the prediction published for its own sample time, before its result was known;",
+        f"  {res.n_gated} of them rejected by the recursive model's gate, scored all the same"
+        + (f"; {res.n_left_out} without a usable prediction left out" if res.n_left_out
+           else ""),
         "",
-        f"  {'':<40}{'RMSE':>8}{'MAE':>8}{'cover':>8}{'log sc.':>9}{'CRPS':>8}",
+        f"  {'':<40}{'RMSE':>8}{'MAE':>8}{'cover':>8}{'log sc.':>8}{'CRPS':>8}"
+        f"{'RMSE arr':>9}{'ungated':>9}",
     ]
     level = int(round(100 * m.level))
-    names = {"model": f"recursive, {_policy(m)}",
-             "noforget": "recursive, no forgetting",
-             "static": f"static ridge on {res.static.n} lab results"}
-    for key in ("model", "noforget", "static"):
+    names = _labels(res)
+    for key in REFERENCES:
         s = res.scores[key]
-        lines.append(f"  {names[key][:39]:<40}{s.rmse:8.2f}{s.mae:8.2f}"
-                     f"{100 * s.coverage:7.1f}%{s.log_score:9.3f}{s.crps:8.2f}")
+        arr = res.scores_arrival.get(key)
+        ug = res.scores_ungated.get(key)
+        lines.append(f"  {names[key][:39]:<40}{_g(s.rmse, 8)}{_g(s.mae, 8)}"
+                     f"{_g(100 * s.coverage, 7)}%{_g(s.log_score, 8)}{_g(s.crps, 8)}"
+                     f"{_g(arr.rmse, 9) if arr else ' ' * 9}"
+                     f"{_g(ug.rmse, 9) if ug else ' ' * 9}")
     lines += [
+        f"  recursive RMSE / bias-update RMSE: {_g(res.ratio, 0)} (below 1: the recursive "
+        "model wins),",
+        f"  {_g(res.ratio_ungated, 0)} on the results the gate accepted; bias update: "
+        "b <- b + f (lab - (static + b))",
+        f"  on the results known at each sample time, f={res.bias_factor:g} chosen on the "
+        f"training period from {BIAS_GRID[0]:g} .. {BIAS_GRID[-1]:g}",
         f"  (RMSE, MAE, CRPS in{u or ' target units'}; cover: share inside the {level}% "
-        f"interval; log sc.: mean -ln p(lab); lower is better except cover)",
-        "",
+        "interval, for the bias update",
+        "  and persistence a Gaussian with their training RMSE; log sc.: mean -ln p(lab); "
+        "lower is better",
+        "  except cover; RMSE arr: each result predicted when it reached the model, from every "
+        "result known",
+        "  then, not what the control room saw; ungated: RMSE without the results the gate "
+        "rejected)",
     ]
+    if res.n_gated:
+        parts = ", ".join(f"{k} {_g(res.scores_gated[k].rmse, 0)}" for k in REFERENCES)
+        lines.append(f"  RMSE over the {res.n_gated} results the gate rejected, alone:")
+        lines.append(f"    {parts}")
+    lines.append("")
     n_alerts = sum(res.alerts.values())
     if n_alerts:
         by = ", ".join(f"{k} {v}" for k, v in sorted(res.alerts.items()))
@@ -638,7 +951,13 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
 # ---------------------------------------------------------------------------------- files
 COLUMNS = ("time", "t", "mean", "std", "lo", "hi", "status", "trust", "lab", "lab_mean",
            "lab_std", "lab_scale", "lab_dof", "residual", "z", "learned", "lab_seen", "alert",
-           "noforget_mean", "noforget_std", "static_mean", "static_std")
+           "noforget_mean", "noforget_std", "static_mean", "static_std", "dof", "bias_mean",
+           "bias_std", "persist", "persist_std")
+
+
+# reference columns read back into the fits (by the lab row)
+_REF_COLUMNS = ("noforget_mean", "static_mean", "bias_mean", "bias_std", "persist",
+                "persist_std")
 
 
 def _cell(v) -> str:
@@ -661,7 +980,7 @@ def _alert_text(e: dict) -> str:
 
 
 def write_predictions(path, res_or_track, *, static: dict | None = None,
-                      noforget: Track | None = None) -> int:
+                      noforget: Track | None = None, refs: dict | None = None) -> int:
     """Write the predictions file (module docstring); returns the number of data rows.
 
     Pass a `BacktestResult` (the static and no-forgetting columns are filled) or a `Track`.
@@ -670,6 +989,7 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
         track = res_or_track.track
         static = res_or_track.static_pred
         noforget = res_or_track.noforget
+        refs = res_or_track.ref_pred
     else:
         track = res_or_track
     rows: dict[float, dict] = {}
@@ -686,6 +1006,8 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
         r = row(t)
         r.update(mean=track.mean[i], std=track.std[i], lo=track.lo[i], hi=track.hi[i],
                  status=track.status[i], trust=track.trust[i])
+        if track.dof is not None and track.dof.size == track.t.size:
+            r["dof"] = track.dof[i]
     for f in track.fits:
         r = row(f["t"])
         r.update(lab=f["y"], lab_mean=f.get("pred_mean"), lab_std=f.get("pred_std"),
@@ -698,7 +1020,12 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
         r = row(float(t))
         text = _alert_text(e)
         r["alert"] = f"{r['alert']};{text}" if r.get("alert") else text
-    if noforget is not None:
+    if refs and "noforget_mean" in refs:
+        for i, t in enumerate(refs["t"].tolist()):
+            if t in rows:
+                rows[t].update(noforget_mean=refs["noforget_mean"][i],
+                               noforget_std=refs["noforget_std"][i])
+    elif noforget is not None:
         for f in noforget.fits:
             if f["t"] in rows:
                 rows[f["t"]].update(noforget_mean=f.get("pred_mean"),
@@ -708,6 +1035,11 @@ def write_predictions(path, res_or_track, *, static: dict | None = None,
                              static["std"].tolist(), strict=True):
             if t in rows:
                 rows[t].update(static_mean=mu, static_std=sd)
+    if refs:
+        for i, t in enumerate(refs["t"].tolist()):
+            if t in rows:
+                rows[t].update({k: refs[k][i] for k in ("bias_mean", "bias_std", "persist",
+                                                        "persist_std")})
     order.sort()
     meta = {k: v for k, v in track.meta.items()}
     meta.setdefault("schema", SCHEMA)
@@ -772,7 +1104,7 @@ def read_predictions(path) -> Track:
         i = col.get(name)
         return None if i is None or cells[i] == "" else cells[i]
 
-    pt, pm, ps, plo, phi_, pst, ptr = [], [], [], [], [], [], []
+    pt, pm, ps, plo, phi_, pst, ptr, pdof = [], [], [], [], [], [], [], []
     fits, alerts = [], []
     for cells in data:
         t = num(cells, "t")
@@ -785,13 +1117,15 @@ def read_predictions(path) -> Track:
             phi_.append(num(cells, "hi"))
             pst.append(text(cells, "status"))
             ptr.append(text(cells, "trust"))
+            pdof.append(num(cells, "dof"))
         if text(cells, "lab") is not None:
             learned = text(cells, "learned")
             fits.append({"t": t, "y": num(cells, "lab"), "pred_mean": num(cells, "lab_mean"),
                          "pred_std": num(cells, "lab_std"), "scale": num(cells, "lab_scale"),
                          "dof": num(cells, "lab_dof"), "resid": num(cells, "residual"),
                          "z": num(cells, "z"), "reason": learned, "seen": num(cells, "lab_seen"),
-                         "accepted": learned in _LEARNED})
+                         "accepted": learned in _LEARNED,
+                         **{k: num(cells, k) for k in _REF_COLUMNS if k in col}})
         a = text(cells, "alert")
         if a:
             for part in a.split(";"):
@@ -802,4 +1136,4 @@ def read_predictions(path) -> Track:
                 else:
                     alerts.append({"t": t, "kind": "action", "action": state})
     return Track(meta.get("model", ""), np.array(pt), np.array(pm), np.array(ps), np.array(plo),
-                 np.array(phi_), pst, ptr, fits, alerts, meta)
+                 np.array(phi_), pst, ptr, fits, alerts, meta, np.array(pdof, dtype=float))

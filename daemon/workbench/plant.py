@@ -33,7 +33,22 @@ more reflux, higher pressure and richer feed leave more solvent in the bottoms. 
   ``lab_noise_ppm``), rounded to ``lab_resolution_ppm`` and floored at 0 ppm;
 * optional lab outage (no sample drawn or reported between two days), optional blunders (a
   decimal point in the wrong place or two digits swapped), optional TI-104 excursion above its
-  range for ``excursion_hours``.
+  range for ``excursion_hours``;
+* an optional unmeasured disturbance ``offset`` (ppm) added to the intercept: an AR(1) process
+  on the sample grid with stationary sd ``offset_sd_ppm`` and time constant ``offset_tau_h``
+  (``o[n] = a o[n-1] + offset_sd_ppm sqrt(1 - a^2) e[n]``, ``a = exp(-dt / tau)``, started
+  from its stationary law), plus a random walk of ``offset_walk_ppm`` per square-root day. It
+  stands for the feed components no analyzer sees: it moves the target, no input shows it;
+* optional lab/analyzer zero drift ``lab_zero`` (ppm) added to the reported values only, not
+  to the truth: a random walk of ``zero_walk_ppm`` per square-root day plus a ramp of
+  ``zero_ramp_ppm_per_day``, both starting at 0;
+* optional slow lab results: a share ``lab_slow_share`` of the results is reported after a
+  delay drawn from ``lab_slow_delay_h`` instead of ``lab_delay_h``, so results arrive late and
+  out of drawn-time order.
+
+The disturbance, the zero drift and the slow results draw from random streams of their own
+(seeded from ``seed``), so switching them on leaves the inputs, the lab schedule, the lab noise
+and the blunders of a scenario exactly as they were.
 
 Inputs move as Ornstein-Uhlenbeck processes (correlated across inputs) around operating points
 which jump now and then (setpoint moves, feed changes) and are followed through a first-order lag.
@@ -146,6 +161,15 @@ class Scenario:
     setpoint_moves_per_day: float = 1.0
     dead_times_s: tuple[float, float, float, float] = (0.0, 0.0, 0.0, 0.0)
     base_coef: tuple[float, ...] = field(default=BASE_COEF)
+    # Unmeasured disturbance, analyzer zero drift and slow lab results (module docstring);
+    # all off by default.
+    offset_sd_ppm: float = 0.0
+    offset_tau_h: float = 24.0
+    offset_walk_ppm: float = 0.0
+    zero_walk_ppm: float = 0.0
+    zero_ramp_ppm_per_day: float = 0.0
+    lab_slow_share: float = 0.0
+    lab_slow_delay_h: tuple[float, float] = (6.0, 12.0)
 
     def __post_init__(self) -> None:
         def bad(name: str, value: object, why: str) -> ValueError:
@@ -207,6 +231,21 @@ class Scenario:
             raise bad("setpoint_moves_per_day", self.setpoint_moves_per_day, "must be >= 0")
         if len(self.dead_times_s) != len(TAGS) or any(d < 0 for d in self.dead_times_s):
             raise bad("dead_times_s", self.dead_times_s, f"needs {len(TAGS)} values >= 0")
+        for name in ("offset_sd_ppm", "offset_walk_ppm", "zero_walk_ppm"):
+            v = getattr(self, name)
+            if not (math.isfinite(v) and v >= 0):
+                raise bad(name, v, "must be finite and >= 0")
+        if not (math.isfinite(self.offset_tau_h) and self.offset_tau_h > 0):
+            raise bad("offset_tau_h", self.offset_tau_h, "must be finite and > 0 hours")
+        if not math.isfinite(self.zero_ramp_ppm_per_day):
+            raise bad("zero_ramp_ppm_per_day", self.zero_ramp_ppm_per_day, "must be finite")
+        if not 0 <= self.lab_slow_share <= 1:
+            raise bad("lab_slow_share", self.lab_slow_share, "must be within 0..1")
+        if len(self.lab_slow_delay_h) != 2:
+            raise bad("lab_slow_delay_h", self.lab_slow_delay_h, "must be (min_h, max_h)")
+        lo, hi = self.lab_slow_delay_h
+        if not (0 <= lo <= hi and math.isfinite(hi)):
+            raise bad("lab_slow_delay_h", self.lab_slow_delay_h, "needs 0 <= min <= max < inf")
 
     # -- presets -------------------------------------------------------------------------------
 
@@ -219,6 +258,16 @@ class Scenario:
     def drifting(cls, days: float = 60.0, seed: int = 0) -> Scenario:
         """Slow fouling drift of the intercept (1 ppm/day), otherwise clean."""
         return cls(seed=seed, days=days, fouling_ppm_per_day=1.0)
+
+    @classmethod
+    def real_drift(cls, days: float = 60.0, seed: int = 0) -> Scenario:
+        """Drifting like a real unit: the fouling of `drifting`, an unmeasured feed offset
+        (AR(1), sd 15 ppm, time constant 2 days, plus a walk of 3 ppm per square-root day),
+        an analyzer zero that walks 1.5 ppm per square-root day, six blunders, and one result
+        in five reported 6 to 14 hours late, after results drawn later."""
+        return cls(seed=seed, days=days, fouling_ppm_per_day=1.0, offset_sd_ppm=15.0,
+                   offset_tau_h=48.0, offset_walk_ppm=3.0, zero_walk_ppm=1.5, blunders=6,
+                   lab_slow_share=0.2, lab_slow_delay_h=(6.0, 14.0))
 
     @classmethod
     def demo(cls, seed: int = 0) -> Scenario:
@@ -279,7 +328,11 @@ class Run:
     coef : (k, 7) true coefficients at every sample time, columns in `COEF_NAMES` order, so
         that ``truth_y[k] == basis(X_eff[k]) @ coef[k]`` where ``X_eff`` is ``X`` with each
         column delayed by the scenario's dead time (``X_eff == X`` with the default zero dead
-        times).
+        times). The unmeasured offset is part of the intercept column.
+    offset : (k,) the unmeasured disturbance at every sample time, ppm (zeros when off).
+    lab_zero : (m,) the analyzer zero error in each reported value, ppm (zeros when off):
+        ``lab_y`` is ``truth_y[lab_index] + lab_zero`` plus noise, rounded, floored at 0,
+        except for blunders.
     """
 
     scenario: Scenario
@@ -292,6 +345,8 @@ class Run:
     lab_blunder: np.ndarray
     truth_y: np.ndarray
     coef: np.ndarray
+    offset: np.ndarray | None = None
+    lab_zero: np.ndarray | None = None
 
     @property
     def tags(self) -> tuple[str, ...]:
@@ -367,6 +422,44 @@ def _coefficients(sc: Scenario, t_rel: np.ndarray) -> np.ndarray:
     return coef
 
 
+def _side_rng(sc: Scenario, stream: int) -> np.random.Generator:
+    # a stream of its own per feature, so that switching one on does not move the others
+    return np.random.default_rng((int(sc.seed), 301, stream))
+
+
+def _offset(sc: Scenario, k: int) -> np.ndarray:
+    """The unmeasured disturbance on the sample grid (module docstring), ppm."""
+    out = np.zeros(k)
+    dt = sc.sample_period_s
+    if sc.offset_sd_ppm > 0:
+        rng = _side_rng(sc, 1)
+        a = math.exp(-dt / (sc.offset_tau_h * _HOUR))
+        e = rng.standard_normal(k)
+        y0 = sc.offset_sd_ppm * rng.standard_normal()
+        # started from the stationary law: the first value is the draw y0 itself
+        drive = sc.offset_sd_ppm * math.sqrt(1.0 - a * a) * e
+        drive[0] = 0.0
+        out += _ar1(a, drive, y0 / a)
+    if sc.offset_walk_ppm > 0:
+        rng = _side_rng(sc, 2)
+        steps = sc.offset_walk_ppm * math.sqrt(dt / _DAY) * rng.standard_normal(k)
+        steps[0] = 0.0
+        out += np.cumsum(steps)
+    return out
+
+
+def _zero(sc: Scenario, t_rel: np.ndarray) -> np.ndarray:
+    """The analyzer zero error on the sample grid, ppm."""
+    out = sc.zero_ramp_ppm_per_day * (t_rel / _DAY)
+    if sc.zero_walk_ppm > 0:
+        rng = _side_rng(sc, 3)
+        steps = sc.zero_walk_ppm * math.sqrt(sc.sample_period_s / _DAY) * rng.standard_normal(
+            t_rel.size)
+        steps[0] = 0.0
+        out = out + np.cumsum(steps)
+    return out
+
+
 def _blunder(value: float, rng: np.random.Generator, min_change: float) -> float:
     """A gross lab error: digits swapped, or else the decimal point one place off."""
     digits = str(int(round(value)))
@@ -396,6 +489,8 @@ def simulate(scenario: Scenario) -> Run:
 
     X = _inputs(sc, rng, t_rel)
     coef = _coefficients(sc, t_rel)
+    offset = _offset(sc, k)
+    coef[:, 0] += offset
 
     lag = np.rint(np.asarray(sc.dead_times_s) / sc.sample_period_s).astype(int)
     idx = np.arange(k)
@@ -412,6 +507,11 @@ def simulate(scenario: Scenario) -> Run:
     noise = rng.standard_normal(n_lab) * sc.lab_noise_ppm
     lab_index, first = np.unique(lab_index, return_index=True)
     delay, noise = delay[first], noise[first]
+    if sc.lab_slow_share > 0:
+        srng = _side_rng(sc, 4)
+        slow = srng.random(lab_index.size) < sc.lab_slow_share
+        slow_delay = srng.uniform(*sc.lab_slow_delay_h, size=lab_index.size) * _HOUR
+        delay = np.where(slow, slow_delay, delay)
     lab_t = t[lab_index]
     lab_arrival = np.rint(lab_t + delay)
 
@@ -426,7 +526,8 @@ def simulate(scenario: Scenario) -> Run:
             noise[keep],
         )
 
-    lab_y = truth[lab_index] + noise
+    lab_zero = _zero(sc, t_rel)[lab_index]
+    lab_y = truth[lab_index] + lab_zero + noise
     if sc.lab_resolution_ppm > 0:
         lab_y = np.round(lab_y / sc.lab_resolution_ppm) * sc.lab_resolution_ppm
     lab_y = np.maximum(lab_y, 0.0)
@@ -452,6 +553,8 @@ def simulate(scenario: Scenario) -> Run:
         lab_blunder=lab_blunder,
         truth_y=truth,
         coef=coef,
+        offset=offset,
+        lab_zero=lab_zero,
     )
 
 

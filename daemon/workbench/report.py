@@ -11,6 +11,12 @@ Page 2 (``<name>-calibration.<ext>``): the histogram of the probability integral
 (PIT, ``Phi(z)``: uniform for a calibrated model) and the coverage of central intervals of
 every probability, against the nominal one.
 
+When the file holds them (a backtest's predictions file), page 1 also draws the references of
+the backtest at each lab sample, the static model plus a lab bias update and persistence (the
+last lab value known then), and its title line gives the RMSE at the lab results of the
+prediction published for each sample's own time against those of the references
+(`reference_scores`), every result counted, rejected ones too.
+
 ``z`` maps the predictive CDF at the lab value to a standard normal quantile, so the PIT is
 ``Phi(z)`` exactly and a lab value lies in the central interval of probability p exactly when
 ``|z| <= Phi^-1((1 + p) / 2)``, whatever the predictive's degrees of freedom.
@@ -28,7 +34,8 @@ from scipy import special
 from daemon.workbench.backtest import Track, collect, read_predictions
 from recursive.detect import Cusum
 
-__all__ = ["calibration", "cusum_path", "load_track", "report", "staleness"]
+__all__ = ["calibration", "cusum_path", "load_track", "reference_scores", "report",
+           "staleness"]
 
 _STATE_COLOR = {"caution": "#f2b134", "untrusted": "#d64541"}
 _MAX_POINTS = 6000
@@ -94,6 +101,41 @@ def staleness(pred_t, lab_t, seen, learned) -> np.ndarray:
     ok = j >= 0
     out[ok] = pred_t[ok] - drawn[j[ok]]
     return out
+
+
+_REF_LABELS = (("published", "published"), ("noforget_mean", "no forgetting"),
+               ("static_mean", "static"), ("bias_mean", "bias update"),
+               ("persist", "persistence"))
+
+
+def reference_scores(track: Track) -> dict:
+    """RMSE at the lab results of the published prediction and of each reference the file
+    holds: ``{label: (n, rmse)}`` over the same results (those where all of them exist).
+
+    The published prediction for a lab sample is the one of the newest prediction time at or
+    before the drawn time. In a backtest's file only the results after its training period
+    count, as in its summary.
+    """
+    start = float(track.meta.get("static_train_end", -math.inf))
+    fits = [f for f in track.fits if math.isfinite(f.get("y", math.nan)) and f["t"] >= start]
+    if not fits or track.t.size == 0:
+        return {}
+    order = np.argsort(track.t, kind="stable")
+    ts = track.t[order]
+    lab_t = np.array([f["t"] for f in fits], dtype=float)
+    j = np.searchsorted(ts, lab_t, side="right") - 1
+    cols = {"published": np.where(j >= 0, track.mean[order][np.maximum(j, 0)], np.nan)}
+    for key, _ in _REF_LABELS[1:]:
+        if any(key in f for f in fits):
+            cols[key] = np.array([f.get(key, math.nan) for f in fits], dtype=float)
+    y = np.array([f["y"] for f in fits], dtype=float)
+    every = np.all([np.isfinite(v) for v in cols.values()], axis=0)
+    n = int(every.sum())
+    if n == 0:
+        return {}
+    label = dict(_REF_LABELS)
+    return {label[k]: (n, float(np.sqrt(np.mean((y[every] - v[every]) ** 2))))
+            for k, v in cols.items()}
 
 
 def calibration(z, levels=None) -> dict:
@@ -218,6 +260,19 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
                          ylim[1] - 0.02 * (ylim[1] - ylim[0]))
         ax1.plot(ld[gated], yg, "x", color="#d64541", markersize=7, markeredgewidth=2,
                  label="lab result rejected by the gate (drawn at the edge if off scale)")
+    refs = reference_scores(track)
+    for key, style, color, label in (("bias_mean", "_", "#e67e22", "static + lab bias update"),
+                                     ("persist", "+", "#6c3483", "persistence (last lab known)")):
+        v = np.array([f.get(key, math.nan) for f in track.fits], dtype=float)
+        if np.isfinite(v).any():
+            ax1.plot(ld, v, style, color=color, markersize=7, markeredgewidth=1.6,
+                     label=f"reference: {label}")
+    if refs:
+        n = next(iter(refs.values()))[0]
+        text = ", ".join(f"{k} {r:#.4g}" for k, (_, r) in refs.items())
+        ax1.text(0.995, 0.98, f"RMSE at {n} lab results, as published at sample time: {text}",
+                 transform=ax1.transAxes, ha="right", va="top", fontsize=8.5, color="#333",
+                 bbox={"facecolor": "white", "alpha": 0.85, "edgecolor": "#bbb"})
     segs = _segments(track.t, track.trust)
     for ax in axes:
         for state, a, b in segs:
