@@ -35,8 +35,10 @@ Time stamps:
   1973); else ISO 8601; else the common spreadsheet formats (``MM/DD/YYYY hh:mm:ss AM/PM``,
   ``DD.MM.YYYY HH:MM:SS``, ``DD/MM/YYYY``, ``YYYY/MM/DD``, with or without seconds): the
   formats that read every sampled time; when several read them differently, those giving
-  times in order are kept; when still several remain (``01/02/2026`` through a single day),
-  the reader asks for ``time_format``. ``"epoch"`` is epoch seconds; ``"epoch_ms"``,
+  times in order are kept, then one whose largest step between rows is less than a tenth of
+  any other's (day first or month first through ``03/05`` .. ``03/11``: one of the two jumps
+  a month at midnight); when still several remain (``01/02/2026`` through a single day), the
+  reader asks for ``time_format``. ``"epoch"`` is epoch seconds; ``"epoch_ms"``,
   ``"epoch_us"``, ``"epoch_ns"`` the other units.
 * Times before 1900 or from 2200 on are bad rows (``implausible_time``); when the first data
   lines hold nothing else, the reader stops at once with a hint at the epoch unit.
@@ -531,11 +533,23 @@ class CsvReader:
                 if all(a <= b for a, b in zip(seq, seq[1:], strict=False)):
                     ordered[key] = f
             groups = ordered or groups
+        if len(groups) > 1:
+            # of readings in order, one whose largest step is far the smallest is the one
+            # (01/02 .. 01/11 read day first jumps a month at every midnight)
+            gaps = sorted((self._max_step(key), f) for key, f in groups.items())
+            if gaps[0][0] * 10 < gaps[1][0]:
+                return gaps[0][1]
         if len(groups) != 1:
             raise ValueError(
                 f"{self.path}: time stamps like {first!r} can be read as "
                 f"{' or '.join(repr(f) for f in groups.values())}; choose with --time-format")
         return next(iter(groups.values()))
+
+    @staticmethod
+    def _max_step(parsed) -> float:
+        seq = [x for x in parsed if x is not None]
+        return max(((b - a).total_seconds() for a, b in zip(seq, seq[1:], strict=False)),
+                   default=0.0)
 
     def _progress_bar(self):
         if not self.progress or sys.stderr is None or not sys.stderr.isatty():
@@ -972,8 +986,9 @@ def reading_text(summary: dict) -> list[str]:
         if not n:
             continue
         texts = s.get("missing_texts", {}).get(tag, {})
-        detail = ", ".join(f"{(k or 'blank')!r} {v}" if k else f"blank {v}"
-                           for k, v in sorted(texts.items(), key=lambda kv: -kv[1]))
+        # blanks are the rest (cells of merged rows included, so no count is shown for them)
+        detail = ", ".join(f"{k!r} {v}" for k, v in sorted(texts.items(),
+                                                           key=lambda kv: -kv[1]) if k)
         miss.append(f"{tag} {n}" + (f" ({detail})" if detail else ""))
     out.append("  missing readings: " + ("; ".join(miss) if miss else "none"))
     if s.get("bad"):
