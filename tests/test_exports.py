@@ -455,3 +455,30 @@ def test_bad_data_is_one_line_and_usage_exit(tmp_path, capsys, text, args, messa
     assert "Traceback" not in err
     last = err.strip().splitlines()[-1]
     assert last.startswith("posteriord tune: ") and message in last
+
+
+# ---------------------------------------------------------------- commissioning window
+def _ranges(out):
+    line = next(ln for ln in out.splitlines() if ln.startswith("no config given"))
+    return {tag: (float(lo), float(hi)) for tag, lo, hi in
+            re.findall(r"(\S+) (-?[\d.e+]+)\.\.(-?[\d.e+]+)", line)}
+
+
+def test_tune_commissions_on_the_window_and_says_what_is_in_sample(tmp_path, capsys):
+    common = ["tune", path_of("documented"), "--target", "AX-410", "--burn-in", "5"]
+    assert main([*common, "--until", "2d"]) == EXIT_OK
+    cap = capsys.readouterr()
+    window = _ranges(cap.out)
+    assert "ranges from the data before --until" in cap.out
+    assert "commissioning window 2026-10-22 00:00 to 2026-10-24 00:00 UTC (144 of 450 rows)" \
+        in cap.err and "in-sample" not in cap.err
+    assert main(common) == EXIT_OK
+    cap = capsys.readouterr()
+    full = _ranges(cap.out)
+    assert "scores below are in-sample" in cap.err
+    _, X, _ = by_hand("documented")
+    first = X[:144]  # 2 days of 20-minute rows
+    for k, tag in enumerate(("TI-101", "TI-102", "FI-201", "SI-301")):
+        lo, hi = window[tag]
+        assert lo <= np.nanmin(first[:, k]) and hi >= np.nanmax(first[:, k])
+    assert window != full  # the later rows moved the ranges of the full file

@@ -143,6 +143,12 @@ def lab_account(res) -> list[str]:
     return lines
 
 
+def _stamp(t: float) -> str:
+    from datetime import UTC, datetime
+
+    return datetime.fromtimestamp(float(t), UTC).strftime("%Y-%m-%d %H:%M")
+
+
 def _run(func):
     def wrapped(args) -> int:
         try:
@@ -186,22 +192,46 @@ def cmd_backtest(args) -> int:
     return EXIT_OK
 
 
+def _window(history, until):
+    """The rows (and lab results) before ``until``: the commissioning window."""
+    from daemon.workbench.backtest import History
+
+    if until is None:
+        return history
+    rows = history.t < until
+    labs = history.lab_t < until
+    return History(history.path, history.tags, history.target, history.t[rows],
+                   history.X[rows], history.lab_t[labs], history.lab_y[labs], history.summary)
+
+
 def cmd_tune(args) -> int:
     from daemon.workbench import tune
 
     if args.config or args.model:
         base = _one_model(_config(args.config), args.model)
         history = _history(args, [i.tag for i in base.inputs])
+        until = None if args.until is None else float(history.t[0]) + args.until
     else:
         history = _history(args, args.inputs or None)
+        until = None if args.until is None else float(history.t[0]) + args.until
+        window = _window(history, until)
         try:
-            base = tune.base_model(history, name=args.name, dead_times=dict(args.dead_time),
+            base = tune.base_model(window, name=args.name, dead_times=dict(args.dead_time),
                                    degree=args.degree)
         except ValueError as exc:
             raise _Fail(EXIT_USAGE, str(exc)) from None
+        where = "the data" if until is None else "the data before --until"
         print("no config given: inputs " + ", ".join(
-            f"{i.tag} {i.lo:g}..{i.hi:g}" for i in base.inputs) + " (ranges from the data)")
-    until = None if args.until is None else float(history.t[0]) + args.until
+            f"{i.tag} {i.lo:g}..{i.hi:g}" for i in base.inputs) + f" (ranges from {where})")
+    if until is None:
+        print("tune: no --until, so every lab result is used to choose the settings and the "
+              "scores below are in-sample (optimistic); give --until (e.g. the first 4 weeks) "
+              "and check the later data with backtest", file=sys.stderr)
+    else:
+        n_rows = int((history.t < until).sum())
+        print(f"tune: commissioning window {_stamp(history.t[0])} to {_stamp(until)} UTC "
+              f"({n_rows} of {history.t.size} rows); later data is not used and is out of "
+              f"sample for a backtest", file=sys.stderr)
     read, with_inputs = _matching(history, base)
     late = 0 if until is None else int((history.lab_t >= until).sum())
     print(f"lab results: {history.summary.get('lab_cells', read)} in the file, {read} read, "
