@@ -482,3 +482,21 @@ def test_tune_commissions_on_the_window_and_says_what_is_in_sample(tmp_path, cap
         lo, hi = window[tag]
         assert lo <= np.nanmin(first[:, k]) and hi >= np.nanmax(first[:, k])
     assert window != full  # the later rows moved the ranges of the full file
+
+
+def test_unmatched_lab_results_get_a_tolerance_hint_that_works(tmp_path, capsys):
+    cfg = tmp_path / "model.toml"
+    common = [path_of("documented"), "--target", "AX-410"]
+    assert main(["tune", *common, "--burn-in", "10", "--out", str(cfg)]) == EXIT_OK
+    capsys.readouterr()
+    assert main(["backtest", *common, "--config", str(cfg), "--train", "2d"]) == EXIT_OK
+    err = capsys.readouterr().err
+    assert 'lab.tolerance = "20m" would match' in err
+    # the lab results on rows with a missing reading are matched to the row before, but for
+    # one whose row before misses the reading too (rows 200 and 201 of the generator)
+    cfg.write_text(cfg.read_text().replace('tolerance = "2m"', 'tolerance = "20m"'))
+    assert main(["backtest", *common, "--config", str(cfg), "--train", "2d"]) == EXIT_OK
+    err = capsys.readouterr().err
+    assert "75 read (the rest above); 74 matched to inputs, 1 unmatched" in err
+    h = backtest.load_history(path_of("documented"), target="AX-410")
+    assert brute_matched(h, load(str(cfg)).models[0]) == 74

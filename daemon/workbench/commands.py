@@ -115,6 +115,21 @@ def _matching(history, model) -> tuple[int, int]:
     return int(ok.size), int(ok.sum())
 
 
+def _tolerance_hint(history, model) -> str:
+    """A hint when the rows are further apart than the model's matching tolerance."""
+    import numpy as np
+
+    from daemon.config import format_duration
+
+    if history.t.size < 2:
+        return ""
+    step = float(np.median(np.diff(history.t)))
+    if step <= model.tolerance:
+        return ""
+    return (f" (the rows are {format_duration(step)} apart: lab.tolerance = "
+            f"\"{format_duration(step)}\" would match a result to the row before)")
+
+
 def lab_account(res) -> list[str]:
     """Where every lab result read went in a backtest: lines for people."""
     from daemon.config import format_duration
@@ -132,7 +147,8 @@ def lab_account(res) -> list[str]:
              f"(the rest above); {matched} matched to inputs, {read - matched} unmatched"]
     if read - matched:
         parts = [f"{read - with_inputs} without inputs within tolerance "
-                 f"{format_duration(m.tolerance)} of the drawn time"]
+                 f"{format_duration(m.tolerance)} of the drawn time"
+                 + _tolerance_hint(h, m)]
         if refused > 0:
             parts.append(f"{refused} refused by the daemon (too old or out of order)")
         lines.append("  unmatched: " + "; ".join(parts))
@@ -236,6 +252,7 @@ def cmd_tune(args) -> int:
     late = 0 if until is None else int((history.lab_t >= until).sum())
     print(f"lab results: {history.summary.get('lab_cells', read)} in the file, {read} read, "
           f"{with_inputs} matched to inputs, {read - with_inputs} unmatched"
+          + (_tolerance_hint(history, base) if read > with_inputs else "")
           + (f"; {late} drawn after --until not used" if late else ""), file=sys.stderr)
     try:
         res = tune.tune(history, base, until=until, burn_in=args.burn_in, policy=args.policy,
