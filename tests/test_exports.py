@@ -500,3 +500,14 @@ def test_unmatched_lab_results_get_a_tolerance_hint_that_works(tmp_path, capsys)
     assert "75 read (the rest above); 74 matched to inputs, 1 unmatched" in err
     h = backtest.load_history(path_of("documented"), target="AX-410")
     assert brute_matched(h, load(str(cfg)).models[0]) == 74
+
+
+def test_cp1252_export_and_utc_named_in_the_time_header(tmp_path):
+    path = tmp_path / "w.csv"
+    path.write_bytes("Time (UTC);TI-104 (\u00b0C);AX-350\n05.01.2026 00:00:00;1,5;2\n"
+                     .encode("cp1252"))
+    r = read_csv(path)
+    assert r.encoding == "cp1252" and r.units == {"TI-104": "\u00b0C"}
+    row = next(iter(r))
+    assert row.t == calendar.timegm((2026, 1, 5, 0, 0, 0)) and row.x == (1.5,)
+    assert "times in UTC (from the header)" in reading_text(r.summary())[0]

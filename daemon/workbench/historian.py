@@ -290,6 +290,10 @@ class CsvReader:
         names = [p[0] for p in parsed]
         self._ti = self._time_index(time_column, cols, names)
         self.time_column = cols[self._ti]
+        self.tz_from_header = False
+        if self._zone is None and parsed[self._ti][1] in ("UTC", "utc", "GMT", "Z"):
+            # "Time (UTC)": naive times in UTC
+            self.tz, self._zone, self.tz_from_header = "UTC", UTC, True
         self._ncols = len(cols)
         sample_cells = [(ln, self._split(s)) for ln, s in sample]
         self.units: dict[str, str] = {}
@@ -297,7 +301,9 @@ class CsvReader:
         self._skip: set[int] = set()
         self.units_line = None
         data_cells = self._meta_rows(sample_cells, names)
-        for name, (_, unit, desc) in zip(names, parsed, strict=True):
+        for i, (name, (_, unit, desc)) in enumerate(zip(names, parsed, strict=True)):
+            if i == self._ti:
+                continue
             if unit and name not in self.units:
                 self.units[name] = unit
             if desc and name not in self.descriptions:
@@ -352,6 +358,15 @@ class CsvReader:
         return text.split(d)
 
     def _scan(self) -> tuple[int, str, list[tuple[int, str]]]:
+        if self.encoding.lower().replace("-", "") in ("utf8", "utf8sig"):
+            # spreadsheet exports on Windows are often cp1252 ("\xb0C"): not UTF-8, then
+            with open(self.path, "rb") as f:
+                head = f.read(1 << 16)
+            try:
+                head.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                if exc.start < len(head) - 4:  # not a character cut by the read's end
+                    self.encoding = "cp1252"
         header_line, header, sample = None, None, []
         with open(self.path, "rb") as f:
             for lineno, raw in enumerate(f, 1):
@@ -519,8 +534,9 @@ class CsvReader:
         if not viable:
             raise ValueError(
                 f"{self.path}: cannot read time stamps like {first!r} in column "
-                f"{self.time_column!r}; give --time-format, a strptime format such as "
-                f"'%d.%m.%Y %H:%M:%S' or '%m/%d/%Y %I:%M:%S %p'")
+                f"{self.time_column!r}; give --time-column if the time is in another column, "
+                f"or --time-format, a strptime format such as '%d.%m.%Y %H:%M:%S' or "
+                f"'%m/%d/%Y %I:%M:%S %p'")
         best = max(sum(p is not None for p in parsed) for _, parsed in viable)
         viable = [(f, p) for f, p in viable if sum(x is not None for x in p) == best]
         groups: dict[tuple, str] = {}
@@ -854,6 +870,8 @@ class CsvReader:
             "time_format_detected": self.format_detected,
             "epoch_unit": self.epoch_unit,
             "tz": self.tz,
+            "tz_from_header": self.tz_from_header,
+            "encoding": self.encoding,
             "t_first": self.t_first,
             "t_last": self.t_last,
             "tags": list(self.tags),
@@ -966,10 +984,14 @@ def reading_text(summary: dict) -> list[str]:
     elif fmt:
         how.append(f"format {fmt!r}" + (" (detected)" if s.get("time_format_detected")
                                        else ""))
-    if s.get("tz"):
+    if s.get("tz_from_header"):
+        how.append("times in UTC (from the header)")
+    elif s.get("tz"):
         how.append(f"local times in {s['tz']}")
     how.append(f"separator {_SEP_NAME.get(s.get('delimiter'), repr(s.get('delimiter')))}")
     how.append(f"decimal {s.get('decimal')!r}")
+    if s.get("encoding") not in (None, "utf-8"):
+        how.append(f"encoding {s['encoding']}")
     out = [f"read {os.path.basename(s['path'])}: {s['good']} rows, {_iso(s.get('t_first'))} "
            f"to {_iso(s.get('t_last'))} UTC; time column {s.get('time_column')!r}, "
            + ", ".join(how)]
