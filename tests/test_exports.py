@@ -511,3 +511,18 @@ def test_cp1252_export_and_utc_named_in_the_time_header(tmp_path):
     row = next(iter(r))
     assert row.t == calendar.timegm((2026, 1, 5, 0, 0, 0)) and row.x == (1.5,)
     assert "times in UTC (from the header)" in reading_text(r.summary())[0]
+
+
+@pytest.mark.parametrize("text", [
+    "Date,Time,TI-104\n05/01/2026,13:20:00,1.5\n06/01/2026,01:00:00,2\n",
+    "Time;Datum;TI-104\n13:20:00;05/01/2026;1,5\n01:00:00;06/01/2026;2\n",
+])
+def test_separate_date_and_clock_columns(tmp_path, text):
+    path = write(tmp_path / "dc.csv", text)
+    r = read_csv(path, tz="UTC")
+    assert r.tags == ("TI-104",) and "+" in r.time_column
+    rows = list(r)
+    # 05/01 then 06/01 through one night: day first and month first are both in order, but
+    # month first jumps a month; so read day first
+    assert [row.t for row in rows] == [calendar.timegm((2026, 1, 5, 13, 20, 0)),
+                                       calendar.timegm((2026, 1, 6, 1, 0, 0))]

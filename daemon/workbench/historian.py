@@ -169,6 +169,9 @@ _TIME_NAMES = frozenset({
     "datum/zeit", "datum zeit", "tijd", "tijdstip", "fecha", "fecha/hora", "horodatage",
     "date et heure", "data/ora", "local time", "utc time", "time (utc)",
 })
+_DATE_NAMES = frozenset({"date", "datum", "fecha", "data", "day", "jour", "dag"})
+_CLOCK_NAMES = frozenset({"time", "clock", "uhrzeit", "zeit", "hora", "heure", "ora", "tijd",
+                          "time of day"})
 _DATES = ("%m/%d/%Y", "%d/%m/%Y", "%d.%m.%Y", "%Y/%m/%d", "%d-%m-%Y", "%m-%d-%Y", "%Y.%m.%d",
           "%m/%d/%y", "%d/%m/%y", "%d.%m.%y")
 _CLOCKS = ("%H:%M:%S", "%H:%M", "%H:%M:%S.%f", "%I:%M:%S %p", "%I:%M %p", "%I:%M:%S.%f %p")
@@ -289,7 +292,12 @@ class CsvReader:
         parsed = [split_header(c) for c in cols]
         names = [p[0] for p in parsed]
         self._ti = self._time_index(time_column, cols, names)
-        self.time_column = cols[self._ti]
+        self._ti2 = None
+        if time_column is None:
+            self._ti, self._ti2 = self._date_and_clock(cols)
+        self._tis = {self._ti} if self._ti2 is None else {self._ti, self._ti2}
+        self.time_column = cols[self._ti] + ("" if self._ti2 is None else
+                                             f" + {cols[self._ti2]}")
         self.tz_from_header = False
         if self._zone is None and parsed[self._ti][1] in ("UTC", "utc", "GMT", "Z"):
             # "Time (UTC)": naive times in UTC
@@ -302,20 +310,20 @@ class CsvReader:
         self.units_line = None
         data_cells = self._meta_rows(sample_cells, names)
         for i, (name, (_, unit, desc)) in enumerate(zip(names, parsed, strict=True)):
-            if i == self._ti:
+            if i in self._tis:
                 continue
             if unit and name not in self.units:
                 self.units[name] = unit
             if desc and name not in self.descriptions:
                 self.descriptions[name] = desc
         self.decimal = decimal or self._detect_decimal(data_cells)
-        self.mapping = {c: n for c, n in zip(cols, names, strict=True)
-                        if c != n and n and c != cols[self._ti]}
+        self.mapping = {c: n for i, (c, n) in enumerate(zip(cols, names, strict=True))
+                        if c != n and n and i not in self._tis}
         self.names = names
 
         def index(name: str, what: str) -> int:
             hits = [i for i, (c, n) in enumerate(zip(cols, names, strict=True))
-                    if name in (c, n) and i != self._ti]
+                    if name in (c, n) and i not in self._tis]
             if not hits:
                 shown = [n if c == n else f"{n} ({c!r})" for c, n in zip(cols, names,
                                                                         strict=True)]
@@ -326,7 +334,7 @@ class CsvReader:
                                  f"header (columns {', '.join(str(i + 1) for i in hits)})")
             return hits[0]
 
-        data = [i for i in range(len(cols)) if i != self._ti and names[i]]
+        data = [i for i in range(len(cols)) if i not in self._tis and names[i]]
         seen: dict[str, int] = {}
         for i in data:
             if names[i] in seen and tags is None:
@@ -346,8 +354,8 @@ class CsvReader:
         self._xi = tuple(xi)
         self.tags = tuple(names[i] for i in xi)
         self._reset()
-        self._detect_time([cells[self._ti].strip() for _, cells in data_cells
-                           if len(cells) > self._ti and cells[self._ti].strip()])
+        self._detect_time([c for c in (self._tcell(cells) for _, cells in data_cells
+                                        if len(cells) == self._ncols) if c])
 
     # header, layout detection
 
@@ -419,6 +427,21 @@ class CsvReader:
                 return i
         return 0
 
+    def _tcell(self, cells: list[str]) -> str:
+        """The time text of a row: the time cell, or the date and clock cells joined."""
+        if self._ti2 is None:
+            return cells[self._ti].strip()
+        return f"{cells[self._ti].strip()} {cells[self._ti2].strip()}".strip()
+
+    def _date_and_clock(self, cols) -> tuple[int, int | None]:
+        """Separate date and clock columns (``Date,Time,...``), else the time column alone."""
+        low = [" ".join(c.lower().split()) for c in cols]
+        dates = [i for i, c in enumerate(low) if c in _DATE_NAMES]
+        clocks = [i for i, c in enumerate(low) if c in _CLOCK_NAMES]
+        if len(dates) == 1 and len(clocks) == 1 and self._ti in (dates[0], clocks[0]):
+            return dates[0], clocks[0]
+        return self._ti, None
+
     @staticmethod
     def _numberish(c: str) -> bool:
         c = c.strip()
@@ -433,8 +456,8 @@ class CsvReader:
             lineno, cells = sample_cells[k]
             if len(cells) > self._ncols:
                 break
-            tcell = cells[self._ti].strip() if len(cells) > self._ti else ""
-            others = [c.strip() for i, c in enumerate(cells) if i != self._ti]
+            tcell = self._tcell(cells) if len(cells) == self._ncols else ""
+            others = [c.strip() for i, c in enumerate(cells) if i not in self._tis]
             if (any(ch.isdigit() for ch in tcell) or not any(others)
                     or any(self._numberish(c) for c in others)):
                 break
@@ -442,7 +465,7 @@ class CsvReader:
             is_units = (tcell.lower() in _UNIT_WORDS or short) and self.units_line is None
             for i, c in enumerate(cells):
                 c = c.strip()
-                if i == self._ti or not c or i >= len(names):
+                if i in self._tis or not c or i >= len(names):
                     continue
                 if is_units:
                     self.units[names[i]] = c
@@ -460,7 +483,7 @@ class CsvReader:
         commas = dots = 0
         for _, cells in data_cells:
             for i, c in enumerate(cells):
-                if i == self._ti:
+                if i in self._tis:
                     continue
                 c = c.strip()
                 if _COMMA_NUMBER.fullmatch(c):
@@ -743,7 +766,7 @@ class CsvReader:
         cells = self._split(text)
         if len(cells) != self._ncols:
             return "columns", cells
-        t = self._time(cells[self._ti].strip())
+        t = self._time(self._tcell(cells))
         if isinstance(t, str):
             return t, cells
         x = []
