@@ -14,7 +14,11 @@ before any long computation, or given explicitly:
 
 * separator ``,`` ``;`` or tab (``delimiter``), decimal mark ``.`` or ``,`` (``decimal``);
 * the time column: ``time_column``, else a column called time, timestamp, date, datetime, ...
-  (any case), else the first column;
+  (any case), else the first column; a ``Date`` and a ``Time`` column (also Datum/Uhrzeit,
+  ...) are read together; a time column whose header names UTC (``Time (UTC)``) holds UTC
+  times;
+* the encoding: UTF-8 (with or without a byte-order mark), else cp1252 when the start of the
+  file is not UTF-8;
 * headers with a unit and a description: ``TI-104 (degC)``, ``TI-104 [degC]``,
   ``"TI-104 Tray 12 temperature"``: a first word that looks like an instrument tag (letters,
   then digits: ``TI-104``, ``FIC101.PV``) is the tag and the rest its description; a header
