@@ -205,52 +205,62 @@ def test_bad_time_format_and_zone():
 
 
 def test_blank_bad_and_non_finite_cells(tmp_path):
+    # a cell that is not a number is a missing reading of its tag only: the row, its other
+    # readings and its lab value are kept
     text = (
         "# simulated data from a fictitious unit, not plant data\n"  # 1
         "time,TI-104,FI-201,AX-350\n"  # 2
         "1767571200,110.5,14.0,\n"  # 3 good, no lab value
         "1767571260,,14.1,187.0\n"  # 4 good, blank input
         "\n"  # 5 blank line
-        "1767571320,abc,14.2,\n"  # 6 bad number
+        "1767571320,abc,14.2,\n"  # 6 text: missing TI-104
         "# a comment in the middle\n"  # 7
-        "1767571380,110.7,nan,\n"  # 8 non-finite
-        "1767571440,110.8,14.4,inf\n"  # 9 non-finite target
+        "1767571380,110.7,nan,\n"  # 8 nan: missing FI-201
+        "1767571440,110.8,14.4,inf\n"  # 9 lab value not a number
         "1767571500,110.9,14.5\n"  # 10 too few columns
         "1767571560,111.0,14.6,,\n"  # 11 too many columns
-        "1767571620,-Infinity,14.7,\n"  # 12 non-finite
+        "1767571620,-Infinity,14.7,\n"  # 12 missing TI-104
         "17675716x0,111.1,14.7,\n"  # 13 bad time
-        ",111.1,14.7,\n"  # 14 blank time
+        ",111.1,14.7,188\n"  # 14 blank time, with a lab value
         '"1767571680","111.2",14.8,"201.5"\n'  # 15 good, quoted
         "1767571740, 111.3 ,14.9, 12 \n"  # 16 good, spaces
-        "1767571800,1.1e2,15,x\n"  # 17 bad target
+        "1767571800,1.1e2,15,x\n"  # 17 lab value not a number
     )
     path = write(tmp_path / "cells.csv", text)
     reader, rows = read_all(path)
-    assert rows[0] == Row(3, 1767571200.0, (110.5, 14.0), None)
-    assert rows[1].line == 4 and math.isnan(rows[1].x[0]) and rows[1].y == 187.0
-    assert rows[2] == Row(15, 1767571680.0, (111.2, 14.8), 201.5)
-    assert rows[3] == Row(16, 1767571740.0, (111.3, 14.9), 12.0)
-    assert len(rows) == 4
-    assert reader.bad == [
-        (6, "number"),
-        (8, "non_finite"),
-        (9, "non_finite"),
-        (10, "columns"),
-        (11, "columns"),
-        (12, "non_finite"),
-        (13, "time"),
-        (14, "time"),
-        (17, "number"),
+    nan = math.nan
+    expected = [
+        (3, 1767571200.0, (110.5, 14.0), None),
+        (4, 1767571260.0, (nan, 14.1), 187.0),
+        (6, 1767571320.0, (nan, 14.2), None),
+        (8, 1767571380.0, (110.7, nan), None),
+        (9, 1767571440.0, (110.8, 14.4), None),
+        (12, 1767571620.0, (nan, 14.7), None),
+        (15, 1767571680.0, (111.2, 14.8), 201.5),
+        (16, 1767571740.0, (111.3, 14.9), 12.0),
+        (17, 1767571800.0, (110.0, 15.0), None),
     ]
-    assert reader.bad_counts == {"number": 2, "non_finite": 3, "columns": 2, "time": 2}
-    assert reader.n_bad == 9 and reader.n_good == 4 and reader.n_rows == 13
+    assert len(rows) == len(expected)
+    for row, (line, t, x, y) in zip(rows, expected, strict=True):
+        assert (row.line, row.t, row.y) == (line, t, y)
+        np.testing.assert_array_equal(row.x, x)  # nan == nan here
+    assert reader.bad == [(10, "columns"), (11, "columns"), (13, "time"), (14, "time")]
+    assert reader.bad_counts == {"columns": 2, "time": 2}
+    assert reader.n_bad == 4 and reader.n_good == 9 and reader.n_rows == 13
     assert reader.n_comments == 1
+    assert reader.missing == {"TI-104": 3, "FI-201": 1}
+    assert reader.missing_texts == {"TI-104": {"": 1, "abc": 1, "-Infinity": 1},
+                                    "FI-201": {"nan": 1}}
+    # every lab cell accounted for: 3 read, 2 text, 1 on a bad row
+    assert reader.lab_cells == 6 and reader.n_lab == 3
+    assert reader.lab_text == {"inf": 1, "x": 1} and reader.lab_text_lines == [9, 17]
+    assert reader.lab_in_bad == [(14, "time")]
     # line numbers point at the very lines of the file
     lines = text.splitlines()
     assert lines[6 - 1].startswith("1767571320,abc")
-    assert lines[17 - 1].endswith(",x")
+    assert lines[14 - 1].endswith(",188")
     summary = json.loads(json.dumps(reader.summary()))
-    assert summary["bad_lines"][0] == [6, "number"]
+    assert summary["bad_lines"][0] == [10, "columns"]
 
 
 def test_selected_columns_and_target(tmp_path):
@@ -277,20 +287,20 @@ def test_missing_column_error_names_file_and_column(tmp_path):
 
 
 def test_bad_list_capped_counts_complete(tmp_path):
-    body = "".join(f"{i},{'x' if i % 2 else i}\n" for i in range(1, 61))
-    path = write(tmp_path / "many.csv", "time,a\n" + body)
+    body = "".join(f"{'x' if i % 2 else i},{i}\n" for i in range(1, 61))
+    path = write(tmp_path / "many.csv", "time,a\n0,0\n" + body)
     reader, rows = read_all(path, max_bad=10)
-    assert len(rows) == 30
-    assert reader.n_bad == 30 and reader.bad_counts == {"number": 30}
-    assert reader.bad == [(i + 1, "number") for i in range(1, 20, 2)]
+    assert len(rows) == 31
+    assert reader.n_bad == 30 and reader.bad_counts == {"time": 30}
+    assert reader.bad == [(i + 2, "time") for i in range(1, 20, 2)]
 
 
 def test_reiteration_resets_counters(tmp_path):
-    path = write(tmp_path / "again.csv", "time,a\n1,1\n2,x\n3,3\n")
+    path = write(tmp_path / "again.csv", "time,a\n1,1\nx,2\n3,3\n")
     reader = read_csv(path)
     assert [r.t for r in reader] == [1.0, 3.0]
     assert [r.t for r in reader] == [1.0, 3.0]
-    assert reader.n_bad == 1 and reader.bad == [(3, "number")]
+    assert reader.n_bad == 1 and reader.bad == [(3, "time")]
 
 
 # -- ordering ------------------------------------------------------------------------------------
@@ -301,7 +311,7 @@ UNSORTED = (
     "200,2\n"  # 3
     "150,3\n"  # 4 backwards
     "300,4\n"  # 5
-    "300,5\n"  # 6 duplicate
+    "300,5\n"  # 6 repeated time: merged into line 5
     "250,6\n"  # 7 backwards
     "400,7\n"  # 8
     "oops,8\n"  # 9 bad time
@@ -312,7 +322,8 @@ def test_unsorted_rows_are_bad_when_streaming(tmp_path):
     path = write(tmp_path / "unsorted.csv", UNSORTED)
     reader, rows = read_all(path)
     assert [(r.t, r.x[0]) for r in rows] == [(100, 1), (200, 2), (300, 4), (400, 7)]
-    assert reader.bad == [(4, "backwards"), (6, "duplicate"), (7, "backwards"), (9, "time")]
+    assert reader.bad == [(4, "backwards"), (7, "backwards"), (9, "time")]
+    assert reader.merged == [6] and reader.n_conflicts == 1  # 4 and 5 differ: the first kept
 
 
 def test_sort_option_fixes_order(tmp_path):
@@ -322,7 +333,8 @@ def test_sort_option_fixes_order(tmp_path):
     assert [(r.t, r.x[0], r.line) for r in rows] == [
         (100, 1, 2), (150, 3, 4), (200, 2, 3), (250, 6, 7), (300, 4, 5), (400, 7, 8),
     ]  # fmt: skip
-    assert reader.bad == [(6, "duplicate"), (9, "time")]
+    assert reader.bad == [(9, "time")]
+    assert reader.merged == [6] and reader.n_conflicts == 1
     assert reader.n_good == 6
 
 

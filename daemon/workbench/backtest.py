@@ -125,15 +125,19 @@ class History:
 
 
 def load_history(path, tags=None, *, target=None, tz=None, time_format="auto",
-                 progress=False) -> History:
+                 progress=False, time_column=None, delimiter=None, decimal=None) -> History:
     """Read a historian CSV (see :mod:`daemon.workbench.historian`) into memory.
 
-    ``tags`` are the input columns to keep (default: every column but time and target);
-    ``target`` the lab column (default ``AX-350`` when present). Bad rows are skipped and
-    counted in ``summary``.
+    ``tags`` are the input columns to keep, by header or tag (default: every column but time
+    and target); ``target`` the lab column (default ``AX-350`` when present). The layout
+    (separator, decimal mark, time column and format, units row, header descriptions) is
+    detected unless given. A cell that is not a number is a missing reading (nan) of its tag;
+    the row and its lab value are kept. Bad rows are skipped; ``summary`` holds the counts,
+    the layout found and the account of every lab cell (`historian.reading_text`).
     """
     reader = read_csv(path, target=target, tags=tags, tz=tz, time_format=time_format,
-                      progress=progress)
+                      progress=progress, time_column=time_column, delimiter=delimiter,
+                      decimal=decimal)
     if reader.target is None:
         raise ValueError(f"{path}: no lab column; name it with --target "
                          f"(columns are {reader.columns})")
@@ -175,12 +179,18 @@ def feed_messages(history: History, models, *, lab_delay: float = 7200.0, block:
                   seq: bool = True) -> list[tuple[float, str, dict]]:
     """The feed a live plant would have sent: ``(arrival time, topic, body)``, in order.
 
-    For each model, its input columns (rows with a blank input are left out) go out as feature
-    blocks ``{"t": [...], "x": [[...], ...]}`` of at most ``block`` rows, and each lab value as
+    For each model, its input columns go out as feature blocks
+    ``{"t": [...], "x": [[...], ...]}`` of at most ``block`` rows, and each lab value as
     ``{"t": drawn, "y": value}`` once ``lab_delay`` seconds have passed since it was drawn:
     after every row up to that time, before any later row. A block is sent when its last row
     is read (its arrival time) and is cut short before a lab result. ``seq`` adds a per-topic
     sequence number, which lets the daemon count lost messages.
+
+    The daemon's wire format needs every input of a sample finite, so a row with a missing
+    reading (nan) of one of the model's inputs is not sent as a feature sample; its lab value
+    still goes out as a lab result, and the daemon matches it to the inputs it buffered at the
+    drawn time (within the model's tolerance), as it would live. Rows missing only readings
+    of other columns are sent as usual.
 
     Feature rows always travel as blocks (a block may hold a single row): the daemon predicts
     each feature block on its own, so the outputs do not depend on how many messages the

@@ -90,15 +90,87 @@ def _one_model(config, name):
 
 
 def _history(args, tags):
+    """Read the CSV (all of it, before any long computation) and say what was read."""
     from daemon.workbench.backtest import load_history
+    from daemon.workbench.historian import reading_text
 
     try:
-        return load_history(args.data, tags, target=args.target, tz=args.tz,
-                            time_format=args.time_format, progress=True)
+        history = load_history(args.data, tags, target=args.target, tz=args.tz,
+                               time_format=args.time_format, progress=True,
+                               time_column=args.time_column, delimiter=args.sep,
+                               decimal=args.decimal)
     except OSError as exc:
         raise _Fail(EXIT_RUNTIME, f"{args.data}: {exc.strerror or exc}") from None
-    except ValueError as exc:
+    except (ValueError, OverflowError) as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
+    for line in reading_text(history.summary):
+        print(line, file=sys.stderr)
+    return history
+
+
+def _unit(args, history) -> str:
+    """--unit, else the target's unit from the file's units row or header."""
+    if getattr(args, "unit", None):
+        return args.unit
+    return history.summary.get("units", {}).get(history.target, "") or ""
+
+
+def _matching(history, model) -> tuple[int, int]:
+    """Lab results read, and those with inputs within the model's tolerance (daemon rule)."""
+    from daemon.workbench.backtest import lab_features
+
+    _, _, _, ok = lab_features(history, model)
+    return int(ok.size), int(ok.sum())
+
+
+def _tolerance_hint(history, model) -> str:
+    """A hint when the rows are further apart than the model's matching tolerance."""
+    import numpy as np
+
+    from daemon.config import format_duration
+
+    if history.t.size < 2:
+        return ""
+    step = float(np.median(np.diff(history.t)))
+    if step <= model.tolerance:
+        return ""
+    return (f" (the rows are {format_duration(step)} apart: lab.tolerance = "
+            f"\"{format_duration(step)}\" would match a result to the row before)")
+
+
+def lab_account(res) -> list[str]:
+    """Where every lab result read went in a backtest: lines for people."""
+    from daemon.config import format_duration
+
+    h, m = res.history, res.model
+    read, with_inputs = _matching(h, m)
+    fits = res.track.fits
+    matched = len(fits)
+    in_train = sum(1 for f in fits if f["t"] < res.train_end)
+    gated_all = sum(1 for f in fits if f.get("reason") == "gated")
+    after = matched - in_train
+    other = after - res.n_gated_left_out - res.n_scored
+    refused = with_inputs - matched
+    lines = [f"lab results: {h.summary.get('lab_cells', read)} in the file, {read} read "
+             f"(the rest above); {matched} matched to inputs, {read - matched} unmatched"]
+    if read - matched:
+        parts = [f"{read - with_inputs} without inputs within tolerance "
+                 f"{format_duration(m.tolerance)} of the drawn time"
+                 + _tolerance_hint(h, m)]
+        if refused > 0:
+            parts.append(f"{refused} refused by the daemon (too old or out of order)")
+        lines.append("  unmatched: " + "; ".join(parts))
+    lines.append(f"  matched: {in_train} in the static model's training period (learned, not "
+                 f"scored), {res.n_gated_left_out} gated after it ({gated_all} in all), "
+                 f"{res.n_scored} scored"
+                 + (f", {other} not scored (no prediction from every model)" if other else ""))
+    return lines
+
+
+def _stamp(t: float) -> str:
+    from datetime import UTC, datetime
+
+    return datetime.fromtimestamp(float(t), UTC).strftime("%Y-%m-%d %H:%M")
 
 
 def _run(func):
@@ -108,6 +180,10 @@ def _run(func):
         except _Fail as exc:
             print(f"posteriord {args.what}: {exc}", file=sys.stderr)
             return exc.code
+        except (ValueError, OverflowError) as exc:
+            # bad data found late (deep in a computation) is still one line, not a traceback
+            print(f"posteriord {args.what}: {exc}", file=sys.stderr)
+            return EXIT_USAGE
     return wrapped
 
 
@@ -125,16 +201,31 @@ def cmd_backtest(args) -> int:
 
     model = _one_model(_config(args.config), args.model)
     history = _history(args, [i.tag for i in model.inputs])
+    unit = _unit(args, history)
     try:
         res = backtest.backtest(history, model, train=args.train, lab_delay=args.lab_delay,
-                                block=args.block, unit=args.unit)
+                                block=args.block, unit=unit)
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
-    print(backtest.summary_text(res, args.unit))
+    for line in lab_account(res):
+        print(line, file=sys.stderr)
+    print(backtest.summary_text(res, unit))
     if args.out:
         n = backtest.write_predictions(args.out, res)
         print(f"\npredictions: {args.out} ({n} rows)")
     return EXIT_OK
+
+
+def _window(history, until):
+    """The rows (and lab results) before ``until``: the commissioning window."""
+    from daemon.workbench.backtest import History
+
+    if until is None:
+        return history
+    rows = history.t < until
+    labs = history.lab_t < until
+    return History(history.path, history.tags, history.target, history.t[rows],
+                   history.X[rows], history.lab_t[labs], history.lab_y[labs], history.summary)
 
 
 def cmd_tune(args) -> int:
@@ -143,22 +234,40 @@ def cmd_tune(args) -> int:
     if args.config or args.model:
         base = _one_model(_config(args.config), args.model)
         history = _history(args, [i.tag for i in base.inputs])
+        until = None if args.until is None else float(history.t[0]) + args.until
     else:
         history = _history(args, args.inputs or None)
+        until = None if args.until is None else float(history.t[0]) + args.until
+        window = _window(history, until)
         try:
-            base = tune.base_model(history, name=args.name, dead_times=dict(args.dead_time),
+            base = tune.base_model(window, name=args.name, dead_times=dict(args.dead_time),
                                    degree=args.degree)
         except ValueError as exc:
             raise _Fail(EXIT_USAGE, str(exc)) from None
+        where = "the data" if until is None else "the data before --until"
         print("no config given: inputs " + ", ".join(
-            f"{i.tag} {i.lo:g}..{i.hi:g}" for i in base.inputs) + " (ranges from the data)")
-    until = None if args.until is None else float(history.t[0]) + args.until
+            f"{i.tag} {i.lo:g}..{i.hi:g}" for i in base.inputs) + f" (ranges from {where})")
+    if until is None:
+        print("tune: no --until, so every lab result is used to choose the settings and the "
+              "scores below are in-sample (optimistic); give --until (e.g. the first 4 weeks) "
+              "and check the later data with backtest", file=sys.stderr)
+    else:
+        n_rows = int((history.t < until).sum())
+        print(f"tune: commissioning window {_stamp(history.t[0])} to {_stamp(until)} UTC "
+              f"({n_rows} of {history.t.size} rows); later data is not used and is out of "
+              f"sample for a backtest", file=sys.stderr)
+    read, with_inputs = _matching(history, base)
+    late = 0 if until is None else int((history.lab_t >= until).sum())
+    print(f"lab results: {history.summary.get('lab_cells', read)} in the file, {read} read, "
+          f"{with_inputs} matched to inputs, {read - with_inputs} unmatched"
+          + (_tolerance_hint(history, base) if read > with_inputs else "")
+          + (f"; {late} drawn after --until not used" if late else ""), file=sys.stderr)
     try:
         res = tune.tune(history, base, until=until, burn_in=args.burn_in, policy=args.policy,
                         keep_outliers=args.keep_outliers)
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
-    print(tune.table_text(res, top=args.top, unit=args.unit,
+    print(tune.table_text(res, top=args.top, unit=_unit(args, history),
                           source=os.path.basename(args.data)))
     block = tune.model_toml(res.model, tune.header_comments(res, args.data))
     print()
@@ -244,6 +353,11 @@ def cmd_replay(args) -> int:
             pace = "as fast as possible" if args.speed is None else f"at {args.speed:g}x"
             print(f"replay: {len(messages)} messages from {history.t.size} rows and "
                   f"{history.lab_t.size} lab results, {pace}", file=sys.stderr)
+            for m in models:
+                read, with_inputs = _matching(history, m)
+                print(f"replay: {m.name}: {with_inputs} of {read} lab results have inputs "
+                      f"within tolerance; the daemon's fit/ messages say what it learned",
+                      file=sys.stderr)
             n = live.replay(sock, messages, speed=args.speed, progress=True)
             print(f"replay: sent {n} messages", file=sys.stderr)
         finally:
@@ -297,12 +411,32 @@ def _client_keys(args):
 
 
 # ---------------------------------------------------------------------------------- parsers
+def _sep(text: str) -> str:
+    sep = {"tab": "\t", "\\t": "\t", "semicolon": ";", "comma": ","}.get(text, text)
+    if sep not in (",", ";", "\t"):
+        raise argparse.ArgumentTypeError(f"expected ',', ';' or tab, got {text!r}")
+    return sep
+
+
+def _decimal(text: str) -> str:
+    mark = {"comma": ",", "point": ".", "dot": "."}.get(text, text)
+    if mark not in (".", ","):
+        raise argparse.ArgumentTypeError(f"expected '.' or ',', got {text!r}")
+    return mark
+
+
 def _csv_options(p) -> None:
-    p.add_argument("data", help="historian CSV export (see daemon/workbench/historian.py)")
-    p.add_argument("--target", help="lab column (default AX-350 when present)")
-    p.add_argument("--tz", help="IANA time zone of naive time stamps")
+    p.add_argument("data", help="historian CSV export (see the README's CSV format)")
+    p.add_argument("--target", help="lab column, header or tag (default AX-350 when present)")
+    p.add_argument("--tz", help="IANA time zone of time stamps without an offset, e.g. "
+                                "Europe/Berlin (daylight saving as the zone had it)")
     p.add_argument("--time-format", default="auto",
-                   help="auto, iso, epoch or a strptime format (default auto)")
+                   help="auto, iso, epoch (seconds), epoch_ms, epoch_us, epoch_ns or a strptime "
+                        "format such as '%%d.%%m.%%Y %%H:%%M:%%S' (default auto: detected)")
+    p.add_argument("--time-column", help="header of the time column (default: detected)")
+    p.add_argument("--sep", type=_sep, help="separator: ',', ';' or tab (default: detected)")
+    p.add_argument("--decimal", type=_decimal,
+                   help="decimal mark: '.' or ',' (default: detected)")
 
 
 def add_work_commands(sub) -> None:
@@ -318,7 +452,8 @@ def add_work_commands(sub) -> None:
     b.add_argument("--lab-delay", type=_duration, default=7200.0,
                    help="time from drawing a lab sample to its result (default 2h)")
     b.add_argument("--block", type=int, default=60, help="feature rows per message (60)")
-    b.add_argument("--unit", default="", help="unit of the target, for the summary")
+    b.add_argument("--unit", default="", help="unit of the target, for the summary "
+                                              "(default: from the file's units)")
     b.set_defaults(func=_run(cmd_backtest))
 
     t = sub.add_parser("tune", help="choose prior, noise prior and forgetting half-life by "
@@ -340,7 +475,8 @@ def add_work_commands(sub) -> None:
     t.add_argument("--keep-outliers", action="store_true",
                    help="score the lab results the gate rejects too")
     t.add_argument("--top", type=int, default=12, help="candidates listed (default 12)")
-    t.add_argument("--unit", default="", help="unit of the target, for the table")
+    t.add_argument("--unit", default="", help="unit of the target, for the table "
+                                              "(default: from the file's units)")
     t.add_argument("--out", help="write the [[model]] block to this file")
     t.set_defaults(func=_run(cmd_tune))
 
