@@ -255,3 +255,43 @@ def test_service_publishes_one_fit_per_arrival_the_late_one_flagged(run):
     got = svc.runners[NAME]
     assert msgpack.packb(got.to_state()["posterior"]) == msgpack.packb(ref.to_state()["posterior"])
     assert (got.n_learned, got.rejected["gated"]) == (ref.n_learned, ref.rejected["gated"])
+
+
+def test_replay_of_the_log_goes_through_the_same_rewinds(tmp_path, run):
+    """A crash amid out-of-order arrivals: the checkpoint (with the kept snapshots) and the
+    log's records, replayed in arrival order, give the learned state of the live run."""
+    from test_durability import LAB_DRIVEN, bench, crash_copy
+
+    def learned(r: ModelRunner) -> bytes:
+        st = r.to_state()
+        return msgpack.packb({
+            "posterior": st["posterior"], "monitor": {k: st["monitor"][k] for k in LAB_DRIVEN},
+            "offered": [[*e[:4], e[5], e[6], e[7]["posterior"], e[7]["last_lab_t"]]
+                        for e in st["offered"]],
+            "floor": st["lab_floor"], "n_learned": r.n_learned, "late": r.n_late,
+            "gated": r.rejected["gated"], "last_lab_t": r.last_lab_t}, use_bin_type=True)
+
+    m = c301_model(NAME)
+    live = bench(tmp_path / "state", [m])
+    history, batch, until = batch_setup(run, 6)
+    todo = list(history)
+    msg = [NAME.encode()]
+    for t, row in zip(run.t.tolist(), run.X.tolist(), strict=True):
+        if t > until:
+            break
+        live.process([[*msg, msgpack.packb({"t": t, "x": row})]])
+        while todo and todo[0][0] + 1800.0 <= t:
+            lt, ly = todo.pop(0)
+            live.process([[*msg, msgpack.packb({"t": lt, "y": ly})]])
+    order = (5, 2, 4, 0, 3, 1)
+    for n, i in enumerate(order):
+        if n == 2:
+            live.checkpoint()  # two arrivals before it, four only in the log
+        live.process([[*msg, msgpack.packb({"t": batch[i][0], "y": batch[i][1]})]])
+        if n in (2, 4):
+            back = bench(crash_copy(live, tmp_path / f"crash{n}"), [m])
+            assert back.replayed == n - 1
+            assert learned(back.runners[NAME]) == learned(live.runners[NAME]), n
+            back.close()
+    assert live.runners[NAME].n_late == 5
+    live.close()
