@@ -27,7 +27,9 @@ from recursive import OutOfOrderError, Posterior, Prediction
 
 _PREDICTION_FIELDS = tuple(f.name for f in fields(Prediction))
 
-STATUSES = ("unidentified", "learning", "frozen", "stale")
+# "waiting": an input's dead time reaches back before the buffered readings (after a start or
+# a reset), so there is no prediction yet
+STATUSES = ("unidentified", "learning", "frozen", "stale", "waiting")
 CONTROLS = ("freeze", "resume", "reset", "acknowledge")
 # Schema of ModelRunner.to_state(): one model's whole run-time state, as plain data.
 RUNNER_SCHEMA = "posteriord.runner/1"
@@ -79,6 +81,19 @@ class PredBatch:
     marks: tuple | list = ()
 
 
+def _blanked(pred: Prediction, rows: list) -> Prediction:
+    """``pred`` with nan in the given rows: no prediction there."""
+    out = {}
+    for f in _PREDICTION_FIELDS:
+        v = np.array(getattr(pred, f))
+        if f == "identified":
+            v[rows] = False
+        else:
+            v[rows] = math.nan
+        out[f] = v
+    return Prediction(**out)
+
+
 def _drawn(entry: _Offered) -> float:
     return entry.t
 
@@ -95,6 +110,9 @@ class ModelRunner:
         self.index = {tag: i for i, tag in enumerate(self.tags)}
         self.spec = (self.tags, self.index)
         self.aligner = self._new_aligner()
+        # predictions use each input at t - dead_time, as learning does; with no dead time
+        # that is the sample's own row, and no lookup is made
+        self.delayed = any(i.dead_time > 0 for i in cfg.inputs)
         self.ids: OrderedDict = OrderedDict()
         self.monitor = Monitor(cfg, self.basis) if cfg.alerts else None
         # alert events waiting to be published by the service
@@ -236,6 +254,9 @@ class ModelRunner:
         """
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
+        waiting = None
+        if self.delayed:
+            X, waiting = self._aligned(ts, X)
         if singles and len(ts) > 1 and not self.post.rowwise:
             parts = [self.post.predict(self.basis(X[i:i + 1]), t=t[i:i + 1])
                      for i in range(len(ts))]
@@ -243,7 +264,29 @@ class ModelRunner:
                                  for f in _PREDICTION_FIELDS})
         else:
             pred = self.post.predict(self.basis(X), t=t)
-        return self._finish(ts, t, X, ids, pred, singles)
+        return self._finish(ts, t, X, ids, pred, singles, waiting)
+
+    def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
+        """The rows the predictions at ``ts`` use: each input at t - its dead time, looked
+        up as for a lab result drawn at t. Also the indices of the rows whose inputs are
+        not buffered (their own readings stand in, so the batch stays finite, and their
+        predictions are blanked)."""
+        if len(ts) > 4:
+            out, ok = self.aligner.lookup_many(ts)
+            if ok.all():
+                return out, None
+            out[~ok] = X[~ok]
+            return out, np.flatnonzero(~ok).tolist()
+        lookup = self.aligner.lookup
+        out = np.array(X, dtype=float)
+        waiting = []
+        for k, tk in enumerate(ts):
+            x = lookup(tk)
+            if x is None:
+                waiting.append(k)
+            else:
+                out[k] = x
+        return out, waiting or None
 
     def predict_blocks(self, blocks: list) -> Iterator[PredBatch]:
         """:meth:`predict` of several blocks ``(ts, X, ids)``, yielding one result per block.
@@ -255,7 +298,7 @@ class ModelRunner:
         before asking for the next one sends the same messages, bit for bit and with the
         same trust states and alerts in between, as block by block.
         """
-        if len(blocks) == 1 or not self.post.rowwise:
+        if len(blocks) == 1 or not self.post.rowwise or self.delayed:
             for ts, X, ids in blocks:
                 yield self.predict(ts, X, ids)
             return
@@ -270,10 +313,21 @@ class ModelRunner:
             yield self._finish(ts, t[sl], Xb, ids, part)
 
     def _finish(self, ts: list, t: np.ndarray, X: np.ndarray, ids: list,
-                pred: Prediction, singles: bool = False) -> PredBatch:
+                pred: Prediction, singles: bool = False,
+                waiting: list | None = None) -> PredBatch:
         trust, marks = None, ()
+        if waiting is not None:
+            pred = _blanked(pred, waiting)
         if self.monitor is None:
             pass
+        elif waiting is not None:
+            # the detectors see the rows that have a prediction (a start-up moment only)
+            ok = np.ones(len(ts), dtype=bool)
+            ok[waiting] = False
+            if ok.any():
+                last = int(np.flatnonzero(ok)[-1])
+                self.alerts += self.monitor.on_predictions(ts[last], X[ok], pred.std[ok],
+                                                           pred.leverage[ok], self.last_lab_t)
         elif singles:
             trust, marks = self.monitor.on_prediction_rows(ts, X, pred.std, pred.leverage,
                                                            self.last_lab_t)
@@ -290,6 +344,10 @@ class ModelRunner:
         else:
             status = np.where(t - self.last_lab_t > self.cfg.stale_after, "stale",
                               "learning").tolist()
+        if waiting is not None:
+            status = list(status)
+            for k in waiting:
+                status[k] = "waiting"
         self.n_predictions += len(ts)
         self.last_mean = float(pred.mean[-1])
         self.last_std = float(pred.std[-1])
@@ -524,8 +582,7 @@ class ModelRunner:
             "std": self.last_std,
             "mean": self.last_mean,
             "noise_std": math.sqrt(p.noise_var) if p.noise_var == p.noise_var else math.nan,
-            "status": self.status_at(self.last_x_t) if self.last_x_t is not None else (
-                "unidentified" if not p.identified else "stale"),
+            "status": self._status_now(),
             "features": self.n_features,
             "predictions": self.n_predictions,
             "lab_results": self.n_lab,
@@ -535,6 +592,14 @@ class ModelRunner:
             "trust": self.trust,
             "reasons": [] if self.monitor is None else self.monitor.reasons(),
         }
+
+    def _status_now(self) -> str:
+        t = self.last_x_t
+        if t is None:
+            return "unidentified" if not self.post.identified else "stale"
+        if self.delayed and self.aligner.lookup(t) is None:
+            return "waiting"
+        return self.status_at(t)
 
     def posterior(self) -> dict:
         p = self.post
