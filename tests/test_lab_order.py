@@ -132,8 +132,15 @@ def test_every_order_of_five_gives_the_in_order_bits(run):
         assert r.n_lab == ref.n_lab and r.n_learned == ref.n_learned
 
 
-def test_random_orders_of_eight_give_the_in_order_bits(run):
-    cfg = config()
+DELAYED_INPUTS = [{"tag": tag, "lo": lo, "hi": hi, "dead_time": "19m" if tag == "FI-201" else "0s"}
+                  for tag, (lo, hi) in plant.RANGES.items()]
+
+
+@pytest.mark.parametrize("tables", [{}, {"inputs": DELAYED_INPUTS},
+                                    {"alerts": {"enabled": False}}],
+                         ids=["alerts", "dead_time", "no_alerts"])
+def test_random_orders_of_eight_give_the_in_order_bits(run, tables):
+    cfg = config(**tables)
     history, batch, until = batch_setup(run, 8)
     base = fed(cfg, run, until, history)
     ref = copy(base)
@@ -157,7 +164,7 @@ def test_random_orders_of_eight_give_the_in_order_bits(run):
             direct = copy(base)
             exp = {j: direct.learn(*batch[j], None)[0] for j in sorted(arrived)}[i]
             got = {k: v for k, v in fits[i].items() if k not in ("late", "trust")}
-            exp.pop("trust")
+            exp.pop("trust", None)
             assert msgpack.packb(got) == msgpack.packb(exp), (perm, i)
         assert [f["z"] for f in ref_fits] != [fits[i]["z"] for i in range(8)] or \
             perm == sorted(perm)

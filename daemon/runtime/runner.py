@@ -2,10 +2,12 @@
 
 A :class:`ModelRunner` is driven by the service loop with already-decoded values; it does
 no I/O. Predictions are computed in vectorized batches; lab results are matched to the
-buffered features of the time the sample was drawn and learned one at a time.
+buffered features of the time the sample was drawn and learned one at a time. Both use the
+same rows: for time t, each input as it was at t minus its dead time.
 
 Every change of learned state goes through :meth:`ModelRunner.learn_row` (a matched lab
-result) or :meth:`ModelRunner.control` (freeze, resume, reset, acknowledge). The service logs
+result, learned in drawn-time order even when it arrives late) or :meth:`ModelRunner.control`
+(freeze, resume, reset, acknowledge). The service logs
 their arguments in the write-ahead log and, after a restart, replays them through the same
 two methods, so that the replayed state is bit-identical to the one that was lost.
 """
@@ -444,6 +446,8 @@ class ModelRunner:
             raise Rejected("lab_out_of_order", f"t={t!r} is the sample time of a lab result "
                                                f"already offered (a duplicate)")
         floor = self.lab_floor
+        if floor is None and not offered:
+            floor = self.last_offered_t  # nothing kept to put it among
         if floor is not None and t <= floor:
             raise Rejected("lab_too_old", f"t={t!r} is not after {floor!r}, the oldest lab "
                                           f"time that late results can be put after")
