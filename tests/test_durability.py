@@ -843,14 +843,65 @@ def resume_index(msgs: list[tuple], last: dict) -> int:
 def test_sigkill_at_random_points_then_resume_gives_the_uninterrupted_state(tmp_path):
     msgs, _ = kill_stream()
     assert len(msgs) > 3000
-    # the uninterrupted reference: the same stream through one in-process service
+    ref = reference_run(tmp_path, msgs)
+    assert ref.runners[A].rejected["gated"] >= 1 and ref.runners[A].n_learned > 50
+    kill_and_resume(tmp_path, msgs, ref)
+
+
+def shuffled_labs(msgs: list[tuple], seed: int, size: int = 4) -> list[tuple]:
+    """The stream with its lab results reported in batches of ``size``, each batch in a
+    random order once its last result is due (the models' features in between go first)."""
+    rng = np.random.default_rng(seed)
+    out: list[tuple] = []
+    batch: list[list[tuple]] = []
+    i = 0
+    while i < len(msgs):
+        m = msgs[i]
+        if m[0] != "y":
+            out.append(m)
+            i += 1
+            continue
+        pair = [m]  # the same result for both models, one after the other
+        while i + len(pair) < len(msgs) and msgs[i + len(pair)][0] == "y" and \
+                msgs[i + len(pair)][2] == m[2]:
+            pair.append(msgs[i + len(pair)])
+        i += len(pair)
+        batch.append(pair)
+        if len(batch) == size:
+            for k in rng.permutation(size):
+                out += batch[k]
+            batch = []
+    for pair in batch:
+        out += pair
+    # the closing feature samples stay last
+    tail = [m for m in out if m[0] == "x" and m[2] == msgs[-1][2]]
+    return [m for m in out if m not in tail] + tail
+
+
+def test_sigkill_amid_out_of_order_lab_results_resumes_to_the_same_bits(tmp_path):
+    msgs = shuffled_labs(kill_stream()[0], seed=29, size=3)
+    ref = reference_run(tmp_path, msgs)
+    for m in (A, B):
+        assert ref.runners[m].n_late > 10 and ref.runners[m].rejected["lab_out_of_order"] == 0
+        assert ref.runners[m].rejected["lab_too_old"] == 0
+    # kill points where both log-only runs see lab results
+    kill_and_resume(tmp_path, msgs, ref, seed=9)
+
+
+def reference_run(tmp_path: Path, msgs: list[tuple]) -> Service:
+    """The uninterrupted reference: the stream through one in-process service."""
     ref = Service(loads(config_text(tmp_path / "unused", [model_a(), model_b()]), "<ref>"))
     ref.pub = Recorder()
     for i in range(0, len(msgs), 64):
         ref.process([m[3] for m in msgs[i:i + 64]])
-    assert ref.runners[A].rejected["gated"] >= 1 and ref.runners[A].n_learned > 50
+    return ref
 
-    rng = np.random.default_rng(7)
+
+def kill_and_resume(tmp_path: Path, msgs: list[tuple], ref: Service, seed: int = 7) -> None:
+    """Feed ``msgs`` to daemon subprocesses killed at random points, each resuming where
+    the last left off; the final state must be the reference's, bit for bit."""
+
+    rng = np.random.default_rng(seed)
     kills = np.sort(rng.choice(np.arange(300, len(msgs) - 100, 50), size=6, replace=False))
     # per run: checkpoint interval, and whether it works through its input before the kill;
     # runs 1 and 4 checkpoint only at start-up, so all they learn is in the log alone

@@ -213,13 +213,50 @@ class Aligner:
             out.append(self._x[j][i] if r < 0 else float(self._x[j][r, i]))
         return tuple(out)
 
+    def lookup_many(self, ts: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
+        """`lookup` of several times at once: ``(values, available)``.
+
+        ``values`` (m, n) holds the rows `lookup` returns (the same floats), with nan rows
+        where it returns None; ``available`` (m,) bool. The times must be finite.
+        """
+        ts = np.asarray(ts, dtype=float)
+        m, n = ts.size, len(self.tags)
+        values = np.full((m, n), np.nan)
+        ok = np.zeros(m, dtype=bool)
+        if m == 0 or not len(self):
+            return values, ok
+        times_all = self._t
+        dead = self.dead_times_s
+        # only the rows any of the looked-up instants can fall on
+        a = max(self._head, bisect_right(times_all, float(ts.min()) - max(dead),
+                                         self._head) - 1)
+        b = bisect_right(times_all, float(ts.max()) - min(dead), self._head)
+        if b <= a:
+            return values, ok
+        times = np.asarray(times_all[a:b], dtype=float)
+        rows = self._rows(a, b)
+        ok[:] = True
+        for i, d in enumerate(dead):
+            s = ts - d
+            j = np.searchsorted(times, s, side="right") - 1
+            good = j >= 0
+            jj = np.where(good, j, 0)
+            good &= s - times[jj] <= self.tolerance_s
+            values[:, i] = rows[jj, i]
+            ok &= good
+        values[~ok] = np.nan
+        return values, ok
+
     def rows(self) -> np.ndarray:
         """The remembered rows as one float array of shape (len(self), len(tags))."""
+        return self._rows(self._head, len(self._x))
+
+    def _rows(self, start: int, end: int) -> np.ndarray:
         n = len(self.tags)
         xs, rs = self._x, self._r
         parts: list = []
         plain: list = []
-        j, end = self._head, len(xs)
+        j = start
         while j < end:
             r = rs[j]
             if r < 0:

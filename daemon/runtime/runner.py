@@ -2,16 +2,19 @@
 
 A :class:`ModelRunner` is driven by the service loop with already-decoded values; it does
 no I/O. Predictions are computed in vectorized batches; lab results are matched to the
-buffered features of the time the sample was drawn and learned one at a time.
+buffered features of the time the sample was drawn and learned one at a time. Both use the
+same rows: for time t, each input as it was at t minus its dead time.
 
 Every change of learned state goes through :meth:`ModelRunner.learn_row` (a matched lab
-result) or :meth:`ModelRunner.control` (freeze, resume, reset, acknowledge). The service logs
+result, learned in drawn-time order even when it arrives late) or :meth:`ModelRunner.control`
+(freeze, resume, reset, acknowledge). The service logs
 their arguments in the write-ahead log and, after a restart, replays them through the same
 two methods, so that the replayed state is bit-identical to the one that was lost.
 """
 
 from __future__ import annotations
 
+import bisect
 import math
 from collections import Counter, OrderedDict
 from collections.abc import Iterator
@@ -26,13 +29,30 @@ from recursive import OutOfOrderError, Posterior, Prediction
 
 _PREDICTION_FIELDS = tuple(f.name for f in fields(Prediction))
 
-STATUSES = ("unidentified", "learning", "frozen", "stale")
+# "waiting": an input's dead time reaches back before the buffered readings (after a start or
+# a reset), so there is no prediction yet
+STATUSES = ("unidentified", "learning", "frozen", "stale", "waiting")
 CONTROLS = ("freeze", "resume", "reset", "acknowledge")
 # Schema of ModelRunner.to_state(): one model's whole run-time state, as plain data.
 RUNNER_SCHEMA = "posteriord.runner/1"
 # publishers (src values) whose sequence numbers a model follows
 _MAX_SOURCES = 64
 _COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_lost")
+# lab results remembered for learning a late one in drawn-time order (besides the feature
+# buffer's span): each holds a snapshot, and a late result re-applies those drawn after it
+MAX_REWIND = 64
+
+
+class _Offered:
+    """A lab result offered to the posterior, with the learning state just before it."""
+
+    __slots__ = ("t", "x", "y", "ident", "clock", "accepted", "reason", "before")
+
+    def __init__(self, t, x, y, ident, clock, before):
+        self.t, self.x, self.y, self.ident, self.clock = t, x, y, ident, clock
+        self.before = before
+        self.accepted = False
+        self.reason = ""
 
 
 class Rejected(Exception):
@@ -63,6 +83,23 @@ class PredBatch:
     marks: tuple | list = ()
 
 
+def _blanked(pred: Prediction, rows: list) -> Prediction:
+    """``pred`` with nan in the given rows: no prediction there."""
+    out = {}
+    for f in _PREDICTION_FIELDS:
+        v = np.array(getattr(pred, f))
+        if f == "identified":
+            v[rows] = False
+        else:
+            v[rows] = math.nan
+        out[f] = v
+    return Prediction(**out)
+
+
+def _drawn(entry: _Offered) -> float:
+    return entry.t
+
+
 class ModelRunner:
     """Run-time state of one model."""
 
@@ -75,6 +112,9 @@ class ModelRunner:
         self.index = {tag: i for i, tag in enumerate(self.tags)}
         self.spec = (self.tags, self.index)
         self.aligner = self._new_aligner()
+        # predictions use each input at t - dead_time, as learning does; with no dead time
+        # that is the sample's own row, and no lookup is made
+        self.delayed = any(i.dead_time > 0 for i in cfg.inputs)
         self.ids: OrderedDict = OrderedDict()
         self.monitor = Monitor(cfg, self.basis) if cfg.alerts else None
         # alert events waiting to be published by the service
@@ -91,6 +131,10 @@ class ModelRunner:
         # a result drawn at or before it is a duplicate or out of order and is not offered,
         # so a feed re-sent after a restart cannot teach the model anything twice
         self.last_offered_t: float | None = None
+        # the recent offered results in drawn-time order (see learn_row); a late result
+        # drawn at or before ``lab_floor`` cannot be placed exactly and is not offered
+        self.offered: list[_Offered] = []
+        self.lab_floor: float | None = None
         self.last_fit: dict | None = None
         # event counters (exported by the collector at scrape time)
         self.n_features = 0
@@ -99,6 +143,8 @@ class ModelRunner:
         self.n_learned = 0
         self.n_gaps = 0
         self.n_lost = 0
+        # late lab results learned by rewinding (not part of the exported counters)
+        self.n_late = 0
         self.rejected: Counter = Counter()
 
     def _new_aligner(self) -> Aligner:
@@ -126,6 +172,8 @@ class ModelRunner:
         self.last_x_t = None
         self.last_lab_t = None
         self.last_offered_t = None
+        self.offered = []
+        self.lab_floor = None
         self.last_fit = None
         if self.monitor is not None:
             self.monitor.reset()
@@ -208,6 +256,9 @@ class ModelRunner:
         """
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
+        waiting = None
+        if self.delayed:
+            X, waiting = self._aligned(ts, X)
         if singles and len(ts) > 1 and not self.post.rowwise:
             parts = [self.post.predict(self.basis(X[i:i + 1]), t=t[i:i + 1])
                      for i in range(len(ts))]
@@ -215,7 +266,29 @@ class ModelRunner:
                                  for f in _PREDICTION_FIELDS})
         else:
             pred = self.post.predict(self.basis(X), t=t)
-        return self._finish(ts, t, X, ids, pred, singles)
+        return self._finish(ts, t, X, ids, pred, singles, waiting)
+
+    def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
+        """The rows the predictions at ``ts`` use: each input at t - its dead time, looked
+        up as for a lab result drawn at t. Also the indices of the rows whose inputs are
+        not buffered (their own readings stand in, so the batch stays finite, and their
+        predictions are blanked)."""
+        if len(ts) > 4:
+            out, ok = self.aligner.lookup_many(ts)
+            if ok.all():
+                return out, None
+            out[~ok] = X[~ok]
+            return out, np.flatnonzero(~ok).tolist()
+        lookup = self.aligner.lookup
+        out = np.array(X, dtype=float)
+        waiting = []
+        for k, tk in enumerate(ts):
+            x = lookup(tk)
+            if x is None:
+                waiting.append(k)
+            else:
+                out[k] = x
+        return out, waiting or None
 
     def predict_blocks(self, blocks: list) -> Iterator[PredBatch]:
         """:meth:`predict` of several blocks ``(ts, X, ids)``, yielding one result per block.
@@ -227,7 +300,7 @@ class ModelRunner:
         before asking for the next one sends the same messages, bit for bit and with the
         same trust states and alerts in between, as block by block.
         """
-        if len(blocks) == 1 or not self.post.rowwise:
+        if len(blocks) == 1 or not self.post.rowwise or self.delayed:
             for ts, X, ids in blocks:
                 yield self.predict(ts, X, ids)
             return
@@ -242,10 +315,21 @@ class ModelRunner:
             yield self._finish(ts, t[sl], Xb, ids, part)
 
     def _finish(self, ts: list, t: np.ndarray, X: np.ndarray, ids: list,
-                pred: Prediction, singles: bool = False) -> PredBatch:
+                pred: Prediction, singles: bool = False,
+                waiting: list | None = None) -> PredBatch:
         trust, marks = None, ()
+        if waiting is not None:
+            pred = _blanked(pred, waiting)
         if self.monitor is None:
             pass
+        elif waiting is not None:
+            # the detectors see the rows that have a prediction (a start-up moment only)
+            ok = np.ones(len(ts), dtype=bool)
+            ok[waiting] = False
+            if ok.any():
+                last = int(np.flatnonzero(ok)[-1])
+                self.alerts += self.monitor.on_predictions(ts[last], X[ok], pred.std[ok],
+                                                           pred.leverage[ok], self.last_lab_t)
         elif singles:
             trust, marks = self.monitor.on_prediction_rows(ts, X, pred.std, pred.leverage,
                                                            self.last_lab_t)
@@ -262,6 +346,10 @@ class ModelRunner:
         else:
             status = np.where(t - self.last_lab_t > self.cfg.stale_after, "stale",
                               "learning").tolist()
+        if waiting is not None:
+            status = list(status)
+            for k in waiting:
+                status[k] = "waiting"
         self.n_predictions += len(ts)
         self.last_mean = float(pred.mean[-1])
         self.last_std = float(pred.std[-1])
@@ -316,28 +404,77 @@ class ModelRunner:
         """Learn from a lab result already matched with its features ``x`` (tags order).
 
         The one path by which lab results change the model, live and in replay. Returns the
-        ``fit/`` body; raises :class:`Rejected` (``frozen``, ``lab_out_of_order``, ``bad_x``)
-        when nothing changed but the lab counter.
+        ``fit/`` body; raises :class:`Rejected` (``frozen``, ``lab_out_of_order``,
+        ``lab_too_old``, ``bad_x``) when nothing changed but the lab counter.
+
+        A result drawn before the last one offered is learned as if it had come in
+        drawn-time order: the learning state (posterior, detectors, last lab time) goes back
+        to its snapshot from just before the first result drawn after it, then the late
+        result and those after it are offered again in drawn-time order. Only the late
+        result's fit is returned, marked ``"late": true``; its z is against the posterior
+        before it in drawn-time order. The counters end as in drawn-time order. A result
+        drawn at the time of one already offered is a duplicate (``lab_out_of_order``); one
+        drawn at or before :attr:`lab_floor` (older than the results kept for re-ordering:
+        the feature buffer's span, at most :data:`MAX_REWIND`) is ``lab_too_old``.
         """
         self.n_lab += 1
         if self.frozen:
             raise Rejected("frozen", "learning is frozen")
+        offered = self.offered
+        k = len(offered)
         last = self.last_offered_t
         if last is not None and t <= last:
-            if t == last:
-                raise Rejected("lab_out_of_order", f"t={t!r} is the sample time of the last "
-                                                   f"lab result offered (a duplicate)")
-            raise Rejected("lab_out_of_order", f"t={t!r} is before the last lab result "
-                                               f"offered ({last!r})")
+            k = self._place(t)
         phi = self.basis(np.asarray(x, dtype=float))
         if not np.isfinite(phi).all():
             # finite readings far outside the range can overflow the basis
             raise Rejected("bad_x", f"the basis of the features at t={t!r} is not finite")
+        if k == len(offered):
+            step = self._offer(t, x, y, ident, clock, phi)
+            fit = self._fit(step, t, y, ident)
+        else:
+            fit = self._offer_late(k, t, x, y, ident, clock, phi)
+        self._trim()
+        self.last_fit = fit
+        return fit
+
+    def _place(self, t: float) -> int:
+        """Where a result drawn at or before the last offered one goes among :attr:`offered`."""
+        offered = self.offered
+        k = bisect.bisect_left(offered, t, key=_drawn)
+        if k < len(offered) and offered[k].t == t:
+            raise Rejected("lab_out_of_order", f"t={t!r} is the sample time of a lab result "
+                                               f"already offered (a duplicate)")
+        floor = self.lab_floor
+        if floor is None and not offered:
+            floor = self.last_offered_t  # nothing kept to put it among
+        if floor is not None and t <= floor:
+            raise Rejected("lab_too_old", f"t={t!r} is not after {floor!r}, the oldest lab "
+                                          f"time that late results can be put after")
+        return k
+
+    def _snapshot(self) -> tuple:
+        # the posterior's arrays are replaced by each update, never written in place, so a
+        # copy of its attribute table is a snapshot; the detectors change in place
+        return (dict(self.post.__dict__),
+                None if self.monitor is None else self.monitor.to_state(),
+                self.last_lab_t, self.last_offered_t)
+
+    def _restore(self, snap: tuple) -> None:
+        post, mon, self.last_lab_t, self.last_offered_t = snap
+        self.post.__dict__.update(post)
+        if mon is not None:
+            self.monitor.load_state(mon)
+
+    def _offer(self, t: float, x, y: float, ident, clock: float, phi) -> object:
+        """Offer one result to the posterior and the detectors; append it to :attr:`offered`."""
+        entry = _Offered(t, x, y, ident, clock, self._snapshot())
         try:
             step = self.post.update(phi, y, t)
         except OutOfOrderError as exc:
             raise Rejected("lab_out_of_order", str(exc)) from None
         self.last_offered_t = t
+        entry.accepted, entry.reason = step.accepted, step.reason
         if step.accepted:
             self.n_learned += 1
             self.last_lab_t = t
@@ -345,6 +482,43 @@ class ModelRunner:
             self.rejected[step.reason] += 1
         if self.monitor is not None:
             self.alerts += self.monitor.on_lab(clock, step, x, self.post)
+        self.offered.append(entry)
+        return step
+
+    def _offer_late(self, k: int, t: float, x, y: float, ident, clock: float, phi) -> dict:
+        later = self.offered[k:]
+        undo = (self._snapshot(), self.n_learned, Counter(self.rejected), len(self.alerts))
+        self._restore(later[0].before)
+        del self.offered[k:]
+        for e in later:
+            if e.accepted:
+                self.n_learned -= 1
+            else:
+                self.rejected[e.reason] -= 1
+                if not self.rejected[e.reason]:
+                    del self.rejected[e.reason]
+        try:
+            step = self._offer(t, x, y, ident, clock, phi)
+            fit = self._fit(step, t, y, ident)
+            for e in later:
+                # the detectors' clock (the feed's) does not go back: they see the results
+                # offered again now
+                self._offer(e.t, e.x, e.y, e.ident, max(e.clock, clock),
+                            self.basis(np.asarray(e.x, dtype=float)))
+        except BaseException:
+            # nothing half done: back to the state before this result
+            self._restore(undo[0])
+            self.n_learned, self.rejected = undo[1], undo[2]
+            del self.alerts[undo[3]:]
+            self.offered[k:] = later
+            raise
+        self.n_late += 1
+        fit["late"] = True
+        if self.monitor is not None:
+            fit["trust"] = self.monitor.state
+        return fit
+
+    def _fit(self, step, t: float, y: float, ident) -> dict:
         fit = {
             "t": t, "y": y, "pred_mean": step.mean, "pred_std": step.std,
             "resid": step.innovation, "z": step.z, "accepted": step.accepted,
@@ -354,8 +528,25 @@ class ModelRunner:
             fit["id"] = ident
         if self.monitor is not None:
             fit["trust"] = self.monitor.state
-        self.last_fit = fit
         return fit
+
+    def _forget_offered(self) -> None:
+        if self.offered:
+            self.lab_floor = self.offered[-1].t
+            self.offered = []
+
+    def _trim(self) -> None:
+        """Forget the offered results no late result can be put before."""
+        offered = self.offered
+        # a result the feature buffer can still match is drawn within its span of the
+        # newest sample, hence of the last offered result
+        horizon = self.last_offered_t - self.aligner.history_s
+        n = 0
+        while n < len(offered) and (len(offered) - n > MAX_REWIND or offered[n].t < horizon):
+            n += 1
+        if n:
+            self.lab_floor = offered[n - 1].t
+            del offered[:n]
 
     # ------------------------------------------------------------------ control
     def control(self, cmd: str) -> None:
@@ -378,6 +569,8 @@ class ModelRunner:
                 raise ValueError(f"acknowledge needs the alerts of {self.name!r}, which are "
                                  f"disabled")
             self.alerts.append(self.monitor.acknowledge())
+            # a rewind would undo the acknowledgement: late results go after it only
+            self._forget_offered()
         else:
             raise ValueError(f"control action must be one of {CONTROLS}, got {cmd!r}")
 
@@ -393,16 +586,24 @@ class ModelRunner:
             "std": self.last_std,
             "mean": self.last_mean,
             "noise_std": math.sqrt(p.noise_var) if p.noise_var == p.noise_var else math.nan,
-            "status": self.status_at(self.last_x_t) if self.last_x_t is not None else (
-                "unidentified" if not p.identified else "stale"),
+            "status": self._status_now(),
             "features": self.n_features,
             "predictions": self.n_predictions,
             "lab_results": self.n_lab,
             "learned": self.n_learned,
+            "learned_late": self.n_late,
             "rejected": dict(self.rejected),
             "trust": self.trust,
             "reasons": [] if self.monitor is None else self.monitor.reasons(),
         }
+
+    def _status_now(self) -> str:
+        t = self.last_x_t
+        if t is None:
+            return "unidentified" if not self.post.identified else "stale"
+        if self.delayed and self.aligner.lookup(t) is None:
+            return "waiting"
+        return self.status_at(t)
 
     def posterior(self) -> dict:
         p = self.post
@@ -439,7 +640,45 @@ class ModelRunner:
             "last_mean": self.last_mean,
             "counters": {k: getattr(self, k) for k in _COUNTERS},
             "rejected": dict(self.rejected),
+            "n_late": self.n_late,
+            "lab_floor": self.lab_floor,
+            "offered": [self._offered_state(e) for e in self.offered],
         }
+
+    def _offered_state(self, e: _Offered) -> list:
+        post, mon, last_lab_t, last_offered_t = e.before
+        p = Posterior.__new__(Posterior)
+        p.__dict__.update(post)
+        ps = p.to_state()
+        del ps["config"]  # the model's posterior holds it
+        return [e.t, list(e.x), e.y, e.ident, e.clock, e.accepted, e.reason,
+                {"posterior": ps, "monitor": mon, "last_lab_t": last_lab_t,
+                 "last_offered_t": last_offered_t}]
+
+    def _load_offered(self, state: dict) -> None:
+        if "offered" not in state:
+            # a state from before late results were re-ordered: they go after its last one
+            self.lab_floor = self.last_offered_t
+            return
+        self.n_late = int(state["n_late"])
+        floor = state["lab_floor"]
+        self.lab_floor = None if floor is None else float(floor)
+        cfg = state["posterior"]["config"]
+        last = -math.inf
+        for t, x, y, ident, clock, accepted, reason, before in state["offered"]:
+            t = float(t)
+            if not t > last:
+                raise ValueError(f"offered lab results out of order at t={t!r}")
+            last = t
+            post = Posterior.from_state({**before["posterior"], "config": cfg})
+            mon = before["monitor"]
+            if (mon is None) != (self.monitor is None):
+                raise ValueError("offered lab result with a monitor state that does not "
+                                 "match the model's alerts")
+            snap = (post.__dict__, mon, before["last_lab_t"], before["last_offered_t"])
+            e = _Offered(t, [float(v) for v in x], float(y), ident, float(clock), snap)
+            e.accepted, e.reason = bool(accepted), str(reason)
+            self.offered.append(e)
 
     @classmethod
     def from_state(cls, state: dict, name: str | None = None) -> ModelRunner:
@@ -480,6 +719,7 @@ class ModelRunner:
             for k in _COUNTERS:
                 setattr(r, k, int(state["counters"][k]))
             r.rejected = Counter({str(k): int(v) for k, v in state["rejected"].items()})
+            r._load_offered(state)
         except (KeyError, TypeError) as exc:
             raise ValueError(f"bad model state: {exc!r}") from None
         return r
