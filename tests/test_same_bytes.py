@@ -47,9 +47,12 @@ def feed():
 
 
 def service(policy: str) -> Service:
-    model = c301_model(forgetting=POLICIES[policy],
+    model = c301_model(forgetting=POLICIES[policy.removesuffix("+dead time")],
                        lab={"keep": "12h", "keep_count": 5000, "tolerance": "4m",
                             "stale_after": "3h"})
+    if policy.endswith("+dead time"):
+        # predictions then use each input as it was 19 min earlier (and wait for it)
+        model["inputs"][2]["dead_time"] = "19m"
     svc = Service(loads(toml_config({"metrics": ""}, [model]), "<test>"),
                   registry=CollectorRegistry())
     svc.pub = Recorder()
@@ -60,7 +63,7 @@ def published(svc: Service) -> list[tuple[str, bytes]]:
     return [(topic, msgpack.packb(body)) for topic, body in svc.pub.out]
 
 
-@pytest.mark.parametrize("policy", sorted(POLICIES))
+@pytest.mark.parametrize("policy", [*sorted(POLICIES), "stabilized+dead time"])
 def test_burst_paced_and_random_wake_ups_publish_the_same_bytes(feed, policy):
     burst, paced, chunked = service(policy), service(policy), service(policy)
     burst.process(feed)

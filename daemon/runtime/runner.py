@@ -115,6 +115,11 @@ class ModelRunner:
         # predictions use each input at t - dead_time, as learning does; with no dead time
         # that is the sample's own row, and no lookup is made
         self.delayed = any(i.dead_time > 0 for i in cfg.inputs)
+        # how long a run of pending samples may span before the oldest's delayed inputs
+        # could leave the buffer (history minus the longest dead time and the tolerance)
+        dead = max(float(i.dead_time) for i in cfg.inputs)
+        self.lookback_margin = max(0.0, max(cfg.keep, dead + cfg.tolerance) - dead
+                                   - cfg.tolerance)
         self.ids: OrderedDict = OrderedDict()
         self.monitor = Monitor(cfg, self.basis) if cfg.alerts else None
         # alert events waiting to be published by the service
@@ -322,6 +327,8 @@ class ModelRunner:
             pred = _blanked(pred, waiting)
         if self.monitor is None:
             pass
+        elif waiting is not None and singles:
+            trust, marks = self._rows_with_waiting(ts, X, pred, waiting)
         elif waiting is not None:
             # the detectors see the rows that have a prediction (a start-up moment only)
             ok = np.ones(len(ts), dtype=bool)
@@ -355,6 +362,28 @@ class ModelRunner:
         self.last_std = float(pred.std[-1])
         return PredBatch(t, ids, pred.mean, pred.std, pred.var, lo, hi, pred.dof, status,
                          trust, marks)
+
+    def _rows_with_waiting(self, ts, X, pred, waiting) -> tuple[list, list]:
+        """Per-sample detector steps of the rows that have a prediction; a waiting row
+        takes no step and is published with the trust of the step before it."""
+        ok = np.ones(len(ts), dtype=bool)
+        ok[waiting] = False
+        idx = np.flatnonzero(ok)
+        before = self.monitor.state
+        stepped, marks = [], []
+        if idx.size:
+            tr, mk = self.monitor.on_prediction_rows([ts[i] for i in idx.tolist()], X[idx],
+                                                     pred.std[idx], pred.leverage[idx],
+                                                     self.last_lab_t)
+            stepped = [self.monitor.state] * idx.size if tr is None else tr
+            marks = [(int(idx[j]), ev) for j, ev in mk]
+        trust, cur, j = [], before, 0
+        for i in range(len(ts)):
+            if ok[i]:
+                cur = stepped[j]
+                j += 1
+            trust.append(cur)
+        return trust, marks
 
     # ------------------------------------------------------------------ lab
     def match(self, t: float, ident) -> tuple[float, tuple]:

@@ -69,6 +69,10 @@ COMMANDS = ("ping", "status", "posterior", "detectors", "acknowledge", "freeze",
             "reset", "checkpoint", "reload")
 
 
+# most single samples of a model with dead times predicted together (see _feed)
+_DELAYED_PENDING = 64
+
+
 class _Pending:
     """A model's feature samples of one wake-up, waiting to be predicted and answered.
 
@@ -585,6 +589,12 @@ class Service:
         elif seg.block != msg.block:
             self._flush(runner, seg)
             seg.block = msg.block
+        elif runner.delayed and (seg.blocks or len(seg.ts) >= _DELAYED_PENDING or (
+                seg.ts and msg.t[-1] - seg.ts[0] > runner.lookback_margin)):
+            # a model with dead times predicts from rows up to a dead time old: answer what
+            # is pending before newer rows push the ones it needs out of the buffer (so a
+            # burst spanning hours gives what the same feed paced out gives)
+            self._flush(runner, seg)
         if not msg.block and not msg.has_y:
             # the common message: one feature sample, buffered for a batched prediction
             self._buffer(runner, seg, msg.t[0], msg.x[0], msg.ids[0])

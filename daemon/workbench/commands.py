@@ -149,7 +149,7 @@ def lab_account(res) -> list[str]:
     in_train = sum(1 for f in fits if f["t"] < res.train_end)
     gated_all = sum(1 for f in fits if f.get("reason") == "gated")
     after = matched - in_train
-    other = after - res.n_gated_left_out - res.n_scored
+    other = after - res.n_scored
     refused = with_inputs - matched
     lines = [f"lab results: {h.summary.get('lab_cells', read)} in the file, {read} read "
              f"(the rest above); {matched} matched to inputs, {read - matched} unmatched"]
@@ -161,8 +161,8 @@ def lab_account(res) -> list[str]:
             parts.append(f"{refused} refused by the daemon (too old or out of order)")
         lines.append("  unmatched: " + "; ".join(parts))
     lines.append(f"  matched: {in_train} in the static model's training period (learned, not "
-                 f"scored), {res.n_gated_left_out} gated after it ({gated_all} in all), "
-                 f"{res.n_scored} scored"
+                 f"scored), {res.n_scored} scored after it, {res.n_gated} of them gated by the "
+                 f"recursive model ({gated_all} gated in all; gated results are scored too)"
                  + (f", {other} not scored (no prediction from every model)" if other else ""))
     return lines
 
