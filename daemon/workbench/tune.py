@@ -554,8 +554,8 @@ def tune(history: History, base: ModelConfig, *, until: float | None = None,
             current[axis] = _best_on_axis(axis, current,
                                           lambda p, s=score_mask: evaluate(p, s))
         if "noise" in search and not known_noise:
-            current["noise"] = _noise_from_residuals(evaluate(current, score_mask),
-                                                     current["noise"])
+            current.update(_renoise(current, _noise_from_residuals(
+                evaluate(current, score_mask), current["noise"])))
 
     for _ in range(2):
         cache.clear()
@@ -578,10 +578,20 @@ def tune(history: History, base: ModelConfig, *, until: float | None = None,
                     current[axis] = _refine(axis, current,
                                             lambda p, s=scored: evaluate(p, s, "refine"))
             if "noise" in search and not known_noise:
-                current["noise"] = _noise_from_residuals(evaluate(current, scored),
-                                                         current["noise"])
+                current.update(_renoise(current, _noise_from_residuals(
+                    evaluate(current, scored), current["noise"])))
         if "half_life" in search:
+            # every policy at the prior and noise the winner ended with, so that they are
+            # compared alike; one of them may now do better than the winner
+            for name in best_of:
+                p = best_of[name]
+                if not known_noise:
+                    p = _renoise(p, current["noise"])
+                best_of[name] = {**p, "alpha": current["alpha"], "noise": current["noise"]}
             best_of[current["policy"]] = dict(current)
+            top = max(best_of.values(), key=lambda p: _score(evaluate(p, scored)))
+            if _score(evaluate(top, scored)) > _score(evaluate(current, scored)):
+                current = dict(top)
         new = mask_from(model_of(current))
         if np.array_equal(new, scored):
             break
@@ -603,6 +613,21 @@ def tune(history: History, base: ModelConfig, *, until: float | None = None,
 
 def _score(c: Candidate) -> float:
     return c.score if math.isfinite(c.score) else -math.inf
+
+
+def _renoise(p: dict, noise: float) -> dict:
+    """``p`` with the learned-noise guess ``noise`` and the same model otherwise.
+
+    With learned noise the prior precision (``alpha``) and the drift rates (``q``) hold at
+    the guess (``recursive.Posterior`` works in units of the guessed noise variance): what
+    the model is made of is ``alpha * guess^2`` and ``q / guess^2``. Moving the guess alone
+    would change both, so they move with it.
+    """
+    f = (noise / p["noise"]) ** 2
+    out = {**p, "noise": noise, "alpha": p["alpha"] / f}
+    if p["q"] is not None:
+        out["q"] = p["q"] * f
+    return out
 
 
 def _noise_from_residuals(c: Candidate, fallback: float) -> float:
