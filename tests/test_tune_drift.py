@@ -225,3 +225,43 @@ def test_tune_command_takes_a_lab_delay_and_refuses_a_bare_until(tmp_path, capsy
         main(["tune", str(path), "--until", "14"])
     assert info.value.code == 2
     assert 'did you mean "14h"?' in capsys.readouterr().err
+
+
+def test_a_new_noise_guess_keeps_the_model():
+    # with an uninformative noise prior (strength 0) the guess only sets the units in which
+    # alpha and the drift rate hold, so rescaling them with it leaves every prediction as
+    # it was
+    hist, inputs = _offset_plant(seed=6, n=80, dt=_HOUR, q=0.1 / _HOUR, noise=0.5)
+    base = _base(inputs, noise_strength=0.0)
+    data = tune.lab_data(hist, base)
+    scored = np.arange(data.t.size) >= 10
+    p = {"alpha": 0.3, "noise": 1.0, "policy": "offset", "half_life": 3 * 86400.0,
+         "q": 0.05 / _HOUR}
+    q = tune._renoise(p, 0.4)
+    assert q["alpha"] == pytest.approx(0.3 / 0.16) and q["q"] == pytest.approx(0.008 / _HOUR)
+    a, b = (tune.prequential(tune._variant(base, x["alpha"], x["noise"], x["half_life"],
+                                           x["policy"], x["q"]), data, scored)
+            for x in (p, q))
+    assert a.total == pytest.approx(b.total, rel=1e-10)
+    # moving the guess alone changes the model
+    c = tune.prequential(tune._variant(base, 0.3, 0.4, 3 * 86400.0, "offset", 0.05 / _HOUR),
+                         data, scored)
+    assert abs(c.total - a.total) > 1.0
+
+
+def test_dense_analyzer_rate_is_recovered_at_its_delay():
+    # an analyzer every 10 min whose result comes 40 min later (4 samples): scored at that
+    # delay the offset rate is still recovered, and a tune that ignored the delay does no
+    # better at it than the delay-aware one
+    q_true = 0.3 ** 2 / 600.0
+    hist, inputs = _offset_plant(seed=3, n=500, dt=600.0, q=q_true, noise=0.3,
+                                 slopes=(1.0, 0.5))
+    aware = tune.tune(hist, _base(inputs), burn_in=20, lab_delay=2400.0, policy="offset")
+    assert q_true / 2 < aware.model.offset_drift < 2 * q_true
+    blind = tune.tune(hist, _base(inputs), burn_in=20, lab_delay=0.0, policy="offset")
+    data = tune.lab_data(hist, aware.model)
+    scored = np.arange(data.t.size) >= 20
+    at_delay = [tune.prequential(r.model, data, scored, lab_delay=2400.0).total
+                for r in (aware, blind)]
+    assert at_delay[0] >= at_delay[1] - 0.5
+    assert blind.best.score > aware.best.score  # the blind score flatters the model
