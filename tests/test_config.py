@@ -1027,3 +1027,17 @@ def test_describe_drift():
                           'policy = "term_drift"\nlinear_drift = "0.1 per 1d"\n'))
     assert "drift per term group, no other forgetting" in text
     assert "linear terms" in text and "known noise std" in text and "offset (constant)" not in text
+
+
+def test_models_without_drift_keep_their_fingerprint_and_old_states_load():
+    # fingerprints computed by the code before the drift settings existed (commit f8ae32b):
+    # a restart after the upgrade must not throw learned state away
+    assert _model().fingerprint() == "65c741c971cc7fd4"
+    assert demo_config().models[0].fingerprint() == "ca8f80eaa75e75b5"
+    m = _model()
+    old = {k: v for k, v in m.to_state().items()
+           if k not in ("offset_drift", "linear_drift", "higher_drift")}
+    assert ModelConfig.from_state(old) == m
+    drifting = _two('policy = "offset"\noffset_drift = "0.5 per 1h"\n')
+    assert "offset_drift" in drifting.learning_settings()
+    assert "offset_drift" not in m.learning_settings()

@@ -19,6 +19,10 @@ from recursive.forgetting import TermDrift
 FINGERPRINT_SCHEMA = 1
 # Schema of ModelConfig.to_state(), the settings of a model kept in a state folder.
 MODEL_STATE_SCHEMA = "posteriord.model-config/1"
+# Settings added after the schema above: absent from older state folders (read as their
+# default) and left out of the fingerprint while at their default, so that models
+# configured before they existed keep their fingerprints and learned state.
+_ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift")
 
 
 @dataclass(frozen=True)
@@ -172,6 +176,8 @@ class ModelConfig:
             if row.learning and row.section.startswith("model") \
                     and row.section != "model.inputs":
                 value = getattr(self, row.field)
+                if row.field in _ADDED_LATER and value == row.default:
+                    continue
                 out[row.field] = list(value) if isinstance(value, tuple) else value
         rows = [r for r in _BY_SECTION["model.inputs"] if r.learning]
         out["inputs"] = [{r.field: getattr(i, r.field) for r in rows} for i in self.inputs]
@@ -208,6 +214,7 @@ class ModelConfig:
             got = state.get("schema") if isinstance(state, dict) else type(state).__name__
             raise ValueError(f"model config schema must be {MODEL_STATE_SCHEMA!r}, got {got!r}")
         names = {f.name for f in fields(cls)}
+        state = {**{k: _default("model.forgetting", k) for k in _ADDED_LATER}, **state}
         keys = set(state) - {"schema"}
         if keys != names:
             raise ValueError(f"model config keys differ from the settings: missing "
