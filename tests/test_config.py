@@ -5,6 +5,7 @@ config, fingerprints and the generated settings documentation."""
 from __future__ import annotations
 
 import ipaddress
+import json
 import math
 import os
 import subprocess
@@ -36,10 +37,12 @@ from daemon.config import (
     parse_duration,
     settings_markdown,
 )
+from daemon.config.durations import format_drift, parse_drift
 from daemon.endpoints import is_loopback
 from daemon.workbench import plant
 from recursive import Posterior
 from recursive.basis import Identity, Polynomial
+from recursive.forgetting import TermDrift
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -133,6 +136,9 @@ MODEL_DEFAULTS = {
     "forgetting": "stabilized",
     "half_life": 5 * DAY,
     "q": None,
+    "offset_drift": None,
+    "linear_drift": None,
+    "higher_drift": None,
     "gate": 4.0,
     "gate_release": 3,
     "level": 0.95,
@@ -214,8 +220,8 @@ DURATIONS = [
                                 milliseconds=7)),
     ("0s", timedelta(0)),
     (0, timedelta(0)),
-    (90, timedelta(seconds=90)),
-    (2.5, timedelta(seconds=2.5)),
+    (0.0, timedelta(0)),
+    ("0", timedelta(0)),
 ]
 
 
@@ -228,7 +234,7 @@ def test_parse_duration(text, expected):
 
 @pytest.mark.parametrize("bad", [
     -1, -0.5, math.nan, math.inf, "", "   ", "5", "-5m", "+5m", "5x", "5 mins", "m", "5M",
-    "1m1h", "1h1h", "1e3s", "5s5ms5s", "tomorrow", True, None, [1], "1,5h",
+    "1m1h", "1h1h", "1e3s", "5s5ms5s", "tomorrow", True, None, [1], "1,5h", 90, 2.5, "27",
 ])
 def test_parse_duration_rejects(bad):
     with pytest.raises(ValueError) as info:
@@ -253,9 +259,26 @@ def test_format_duration_rejects(bad):
 
 
 def test_durations_in_config_use_parse_duration():
-    m = _model('[model.forgetting]\nhalf_life = "1h30m"\n[model.lab]\ntolerance = 90\n')
+    m = _model('[model.forgetting]\nhalf_life = "1h30m"\n[model.lab]\ntolerance = "90s"\n')
     assert m.half_life == timedelta(hours=1, minutes=30).total_seconds()
     assert m.tolerance == 90.0
+    assert _model("[model.lab]\ntolerance = 0\n").tolerance == 0.0
+
+
+@pytest.mark.parametrize("raw,number", [("27", "27"), ("2.5", "2.5"), ('"27"', "27")])
+def test_bare_number_duration_is_an_error_that_suggests_units(raw, number):
+    with pytest.raises(ConfigError) as info:
+        _model(f"[model.forgetting]\nhalf_life = {raw}\n")
+    err = info.value
+    assert err.key == "model[0].forgetting.half_life"
+    assert "unit" in err.expected
+    assert f'did you mean "{number}h"?' in str(err) and f'"{number}s"' in str(err)
+
+
+@pytest.mark.parametrize("value", [27, 27.0, "27", " 3 "])
+def test_parse_duration_bare_number_suggests_units(value):
+    with pytest.raises(ValueError, match='did you mean "'):
+        parse_duration(value)
 
 
 # ------------------------------------------------------------------------------- endpoints
@@ -472,7 +495,8 @@ CASES = [
     (MINIMAL + '[model.forgetting]\npolicy = "none"\nhalf_life = "1d"\n',
      "model[0].forgetting.half_life", 'no value (policy is "none")', '"1d"'),
     (MINIMAL + '[model.forgetting]\npolicy = "kalman"\n', "model[0].forgetting.policy",
-     'one of "stabilized", "exponential", "random_walk", "none"', '"kalman"'),
+     'one of "stabilized", "exponential", "random_walk", "offset", "term_drift", "none"',
+     '"kalman"'),
     (MINIMAL + "[model.gate]\nk = 0\nrelease = 2\n", "model[0].gate.release",
      "no value (gate.k = 0 turns the gate off)", "2"),
     (MINIMAL + "[model.gate]\nrelease = -1\n", "model[0].gate.release", "an integer >= 0",
@@ -782,8 +806,8 @@ def test_fingerprint_stable_across_loads_and_spellings(tmp_path):
     assert fp == load(path).models[0].fingerprint() == _fp(FULL)
     assert len(fp) == 16 and int(fp, 16) >= 0
     assert _fp(FULL.replace('"10d"', '"240h"')) == fp
-    assert _fp(FULL.replace('"10d"', "864000")) == fp
-    assert _fp(FULL.replace('dead_time = "1m"', "dead_time = 60.0")) == fp
+    assert _fp(FULL.replace('"10d"', '"864000s"')) == fp
+    assert _fp(FULL.replace('dead_time = "1m"', 'dead_time = "60s"')) == fp
     assert _fp(FULL.replace("[model.gate]\nk = 4\nrelease = 3\n", "")) == fp  # defaults
 
 
@@ -842,7 +866,9 @@ def test_learning_flags_are_what_the_fingerprint_uses():
     assert "level" not in learning and "stale_after" not in learning
     settings = loads(FULL).models[0].learning_settings()
     inputs_fields = {r.field for r in SETTINGS if r.section == "model.inputs"}
-    assert set(settings) == (learning - inputs_fields) | {"inputs"}
+    # the drift rates enter only when set (fingerprints from before they existed hold)
+    later = {"offset_drift", "linear_drift", "higher_drift"}
+    assert set(settings) == (learning - inputs_fields - later) | {"inputs"}
     assert set(settings["inputs"][0]) == inputs_fields
 
 
@@ -873,3 +899,147 @@ def test_alerts_head_start_must_be_below_the_decision_interval():
     base = loads(MINIMAL).models[0].fingerprint()
     assert m.models[0].fingerprint() != base
     assert loads(MINIMAL + "[model.alerts]\ncusum_h = 4.0\n").models[0].fingerprint() == base
+
+
+# ------------------------------------------------------------------------------- drift rates
+TWO = """
+[[model]]
+name = "m2"
+inputs = [{tag = "A", lo = 0, hi = 1}, {tag = "B", lo = -1, hi = 1}]
+[model.basis]
+degree = 2
+"""
+
+
+def _two(forgetting: str) -> ModelConfig:
+    return loads(TWO + "[model.forgetting]\n" + forgetting).models[0]
+
+
+@pytest.mark.parametrize("text,s,span", [
+    ("0.5 per 1h", 0.5, timedelta(hours=1)), ("2 per 4h", 2.0, timedelta(hours=4)),
+    ("  1.5e-3 per 1d12h ", 1.5e-3, timedelta(days=1, hours=12)),
+    ("0 per 1h", 0.0, timedelta(hours=1)), (".3 per 90s", 0.3, timedelta(seconds=90)),
+])
+def test_parse_drift_is_s_squared_over_t(text, s, span):
+    # a random walk with variance rate q has Var(w(t+T) - w(t)) = q T (common practice:
+    # the Wiener process), so a change of standard deviation s over T is q = s^2 / T
+    assert parse_drift(text) == pytest.approx(s * s / span.total_seconds(), rel=1e-15)
+
+
+def test_drift_rates_scale_with_the_square_root_of_time():
+    assert parse_drift("0.5 per 1h") == pytest.approx(parse_drift("1 per 4h"), rel=1e-15)
+    assert parse_drift(format_drift(parse_drift("0.37 per 5h"))) == pytest.approx(
+        parse_drift("0.37 per 5h"), rel=1e-6)
+
+
+@pytest.mark.parametrize("bad", ["0.5", "0.5 per", "per 1h", "0.5 per 1", "-1 per 1h",
+                                 "0.5 per 0s", "0.5 per -1h", "x per 1h", "0.5per1h", 0.5, None,
+                                 True, ["0.5 per 1h"]])
+def test_parse_drift_rejects(bad):
+    with pytest.raises(ValueError) as info:
+        parse_drift(bad)
+    assert repr(bad) in str(info.value)
+
+
+def test_offset_policy_builds_term_drift_on_the_constant_only():
+    m = _two('policy = "offset"\noffset_drift = "0.5 per 1h"\n')
+    assert m.forgetting == "offset" and m.half_life == 5 * DAY
+    assert m.offset_drift == 0.25 / 3600.0
+    post = m.build_posterior()
+    f = post.forgetting
+    assert isinstance(f, TermDrift) and f.half_life == 5 * DAY
+    names = m.build_basis().names
+    assert names[0] == "1"
+    assert f.q == (0.25 / 3600.0,) + (0.0,) * (len(names) - 1)
+    m2 = _two('policy = "offset"\noffset_drift = "0.5 per 1h"\nhalf_life = "2d"\n')
+    assert m2.build_posterior().forgetting.half_life == 2 * DAY
+
+
+def test_term_drift_groups_by_degree():
+    m = _two('policy = "term_drift"\noffset_drift = "1 per 1h"\nlinear_drift = "0.1 per 1d"\n'
+             'higher_drift = "0.2 per 1d"\n')
+    basis = m.build_basis()
+    degree = basis.exponents.sum(axis=1)
+    q = np.array(m.build_posterior().forgetting.q)
+    assert m.half_life is None and m.build_posterior().forgetting.half_life is None
+    np.testing.assert_array_equal(q[degree == 0], [1.0 / 3600.0])
+    np.testing.assert_allclose(q[degree == 1], 0.01 / DAY, rtol=1e-15)
+    np.testing.assert_allclose(q[degree >= 2], 0.04 / DAY, rtol=1e-15)
+    assert (degree == 1).sum() == 2 and (degree >= 2).sum() == 3
+    only_linear = _two('policy = "term_drift"\nlinear_drift = "0.1 per 1d"\nhalf_life = "3d"\n')
+    f = only_linear.build_posterior().forgetting
+    assert f.half_life == 3 * DAY and f.q[0] == 0.0
+
+
+@pytest.mark.parametrize("forgetting,key,expected_part,got", [
+    ('policy = "offset"\n', "offset_drift", "required with policy", "nothing (the key is "
+     "missing)"),
+    ('policy = "offset"\noffset_drift = 0.5\n', "offset_drift", "a drift rate like", "0.5"),
+    ('policy = "offset"\noffset_drift = "0 per 1h"\n', "offset_drift", "above 0",
+     '"0 per 1h"'),
+    ('policy = "offset"\noffset_drift = "1 per 1h"\nlinear_drift = "1 per 1h"\n',
+     "linear_drift", "no value", '"1 per 1h"'),
+    ('policy = "stabilized"\noffset_drift = "1 per 1h"\n', "offset_drift", "no value",
+     '"1 per 1h"'),
+    ('policy = "random_walk"\nq = 1e-6\nhigher_drift = "1 per 1h"\n', "higher_drift",
+     "no value", '"1 per 1h"'),
+    ('policy = "term_drift"\n', "offset_drift", "at least one", "nothing (the key is missing)"),
+    ('policy = "term_drift"\nlinear_drift = "0 per 1h"\n', "linear_drift", "at least one",
+     '"0 per 1h"'),
+    ('policy = "offset"\noffset_drift = "1 per 2"\n', "offset_drift", "a drift rate like",
+     '"1 per 2"'),
+])
+def test_drift_errors_say_expected_got_where(forgetting, key, expected_part, got):
+    e = _err(TWO + "[model.forgetting]\n" + forgetting)
+    assert e.file == "plant.toml" and e.key == f"model[0].forgetting.{key}"
+    assert e.where == 'model[0] "m2"'
+    assert expected_part in e.expected and e.got == got
+
+
+def test_drift_hints():
+    assert 'did you mean "0.5 per 1h"?' in str(_err(TWO + '[model.forgetting]\n'
+                                                       'policy = "offset"\noffset_drift = 0.5\n'))
+    assert 'did you mean "1 per 2h"?' in str(_err(TWO + '[model.forgetting]\n'
+                                                     'policy = "offset"\n'
+                                                     'offset_drift = "1 per 2"\n'))
+
+
+def test_drift_settings_round_trip_and_fingerprint():
+    m = _two('policy = "term_drift"\noffset_drift = "1 per 1h"\nhigher_drift = "0.2 per 1d"\n'
+             'half_life = "3d"\n')
+    assert ModelConfig.from_state(m.to_state()) == m
+    assert ModelConfig.from_state(json.loads(json.dumps(m.to_state()))) == m
+    fp = m.fingerprint()
+    same = _two('policy = "term_drift"\noffset_drift = "2 per 4h"\n'
+                'higher_drift = "0.4 per 4d"\nhalf_life = "72h"\n')
+    assert same.fingerprint() == fp  # the same rates spelled differently
+    other = _two('policy = "term_drift"\noffset_drift = "1.1 per 1h"\n'
+                 'higher_drift = "0.2 per 1d"\nhalf_life = "3d"\n')
+    assert other.fingerprint() != fp
+    assert {"offset_drift", "higher_drift"} <= set(m.learning_settings())
+
+
+def test_describe_drift():
+    text = describe(loads(TWO + '[model.forgetting]\npolicy = "offset"\n'
+                          'offset_drift = "0.5 per 1h"\n'))
+    assert "offset drift, with stabilized forgetting of all terms, half-life 5d" in text
+    # 0.5 per sqrt(1h) is 0.5 * sqrt(24) per sqrt(1d) (from memory: sqrt(24) = 4.89898)
+    assert "drifts 0.5 per 1h (2.45 per 1d; q = 6.944e-05 per second at the noise guess)" in text
+    text = describe(loads(TWO + '[model.noise]\nstd = 0.3\n[model.forgetting]\n'
+                          'policy = "term_drift"\nlinear_drift = "0.1 per 1d"\n'))
+    assert "drift per term group, no other forgetting" in text
+    assert "linear terms" in text and "known noise std" in text and "offset (constant)" not in text
+
+
+def test_models_without_drift_keep_their_fingerprint_and_old_states_load():
+    # fingerprints computed by the code before the drift settings existed (commit f8ae32b):
+    # a restart after the upgrade must not throw learned state away
+    assert _model().fingerprint() == "65c741c971cc7fd4"
+    assert demo_config().models[0].fingerprint() == "ca8f80eaa75e75b5"
+    m = _model()
+    old = {k: v for k, v in m.to_state().items()
+           if k not in ("offset_drift", "linear_drift", "higher_drift")}
+    assert ModelConfig.from_state(old) == m
+    drifting = _two('policy = "offset"\noffset_drift = "0.5 per 1h"\n')
+    assert "offset_drift" in drifting.learning_settings()
+    assert "offset_drift" not in m.learning_settings()

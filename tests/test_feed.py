@@ -48,7 +48,7 @@ def feed_warnings(caplog) -> list[str]:
 # ---------------------------------------------------------------------------------- policy
 def _feed(ctx, ivl: float, ivl_max: float) -> Feed:
     text = toml_config({"feeds": [f"tcp://127.0.0.1:{free_port()}"],
-                        "reconnect_ivl": ivl, "reconnect_ivl_max": ivl_max}, [])
+                        "reconnect_ivl": f"{ivl}s", "reconnect_ivl_max": f"{ivl_max}s"}, [])
     d = loads(text, "<test>").daemon
     return Feed(ctx, d, ["m"], Security(ctx, CurveKeys()), FeedStats(d.feeds),
                 logging.getLogger("posteriord"))

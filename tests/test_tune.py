@@ -44,7 +44,7 @@ def test_without_forgetting_the_choice_is_the_evidence_maximum_of_bayesian_ridge
     hist, X, y, inputs = _linear()
     base = ModelConfig(name="sim", inputs=inputs, basis_kind="identity", alpha=1.0,
                        noise_std=1.0, forgetting="none", half_life=None, gate=None)
-    res = tune.tune(hist, base, burn_in=1)
+    res = tune.tune(hist, base, burn_in=1, policy="none", lab_delay=0.0)
     assert res.model.forgetting == "none"
     ref = BayesianRidge(tol=1e-12, max_iter=10_000, alpha_1=1e-12, alpha_2=1e-12,
                         lambda_1=1e-12, lambda_2=1e-12).fit(X, y)
@@ -88,7 +88,7 @@ def test_recovers_the_optimal_half_life_of_a_random_walk_level():
     base = ModelConfig(name="sim", inputs=(InputConfig("x", -1.0, 1.0),), basis_kind="identity",
                        alpha=1.0, noise_std=4.0, forgetting="stabilized", half_life=86400.0,
                        gate=None)
-    res = tune.tune(hist, base, burn_in=20)
+    res = tune.tune(hist, base, burn_in=20, policy="stabilized")
     assert res.model.forgetting == "stabilized"
     # tolerance: a factor 1.3 either way (the score is flat near its maximum: the sampling
     # spread of the estimate over seeds is about 20 % with 2000 lab results)
@@ -172,8 +172,13 @@ def test_model_block_reads_back_as_the_same_model():
 
 def test_tune_refuses_what_it_cannot_do(tmp_path):
     hist = backtest.load_history(_small_plant(tmp_path))
-    with pytest.raises(ValueError, match="random_walk"):
-        tune.tune(hist, replace(_c301(), forgetting="random_walk", q=1e-6, half_life=None))
+    with pytest.raises(ValueError, match="kalman"):
+        tune.tune(hist, _c301(), policy="kalman")
+    with pytest.raises(ValueError, match="lab_delay"):
+        tune.tune(hist, _c301(), lab_delay=-1.0)
+    with pytest.raises(ValueError, match="linear or higher"):
+        tune.tune(hist, replace(_c301(), forgetting="term_drift", half_life=None,
+                                linear_drift=1e-9))
     with pytest.raises(ValueError, match="too few"):
         tune.tune(hist, _c301(), burn_in=10_000)
     with pytest.raises(ValueError, match="unknown parameter"):

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import math
 
-from daemon.config.durations import format_duration
+from daemon.config.durations import drift_change, format_drift, format_duration
 from daemon.config.model import Config, ModelConfig
 from daemon.config.settings import _BY_SECTION, RULES, SECTIONS
 from daemon.endpoints import is_loopback
@@ -86,6 +86,19 @@ def _describe_model(m: ModelConfig) -> list[str]:
         noise = "noise estimate kept" if m.half_life is None else \
             f"noise half-life {format_duration(m.half_life)}"
         lines.append(f"  forgetting: random walk, q {_num(m.q)} per second, {noise}")
+    elif m.forgetting in ("offset", "term_drift"):
+        lines.append("  forgetting: " + ("offset drift" if m.forgetting == "offset"
+                                         else "drift per term group") + ", "
+                     + ("with stabilized forgetting of all terms, half-life "
+                        f"{format_duration(m.half_life)}" if m.half_life is not None
+                        else "no other forgetting (noise estimate kept)"))
+        ref = "known noise std" if m.noise_std is not None else "noise guess"
+        for label, q in (("offset (constant)", m.offset_drift),
+                         ("linear terms", m.linear_drift), ("higher terms", m.higher_drift)):
+            if q:
+                lines.append(f"    {label:<18} drifts {format_drift(q)} "
+                             f"({drift_change(q, 86400.0):.3g} per 1d; q = {q:.4g} per second "
+                             f"at the {ref})")
     else:
         lines.append(f"  forgetting: {m.forgetting}, half-life {format_duration(m.half_life)}")
     if m.gate is None:
@@ -110,8 +123,14 @@ regenerate, do not edit by hand. -->
 posteriord reads one TOML file (`posteriord run --config FILE`; `posteriord check-config
 FILE` checks it and prints what it understood). `daemon/config/demo.toml` is a complete example.
 
-* Durations are a number of seconds or a string of `<number><unit>` parts, largest unit
-  first, each unit once: `"250ms"`, `"90s"`, `"5m"`, `"36h"`, `"1.5d"`, `"2w"`, `"1h30m"`.
+* Durations are a string of `<number><unit>` parts, largest unit first, each unit once:
+  `"250ms"`, `"90s"`, `"5m"`, `"36h"`, `"1.5d"`, `"2w"`, `"1h30m"`. A number without a unit
+  is an error (`half_life = 27` could mean hours or days), except `0`.
+* Drift rates are `"<s> per <T>"`, e.g. `"0.5 per 1h"`: a random walk whose change over a
+  time T has a standard deviation of s (in the units of the drifting weight; target units
+  for the offset). Since a random walk's spread grows with the square root of the time,
+  `"0.5 per 1h"`, `"1 per 4h"` and `"2.449 per 1d"` are the same rate; it is used as the
+  variance rate q = s^2 / T per second.
 * Unknown keys are errors (with a suggestion when a known key is close), and so are keys that
   would have no effect given the other settings.
 * Errors name the file, the model (`model[0]` is the first `[[model]]` table) and the key,

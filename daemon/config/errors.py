@@ -52,9 +52,10 @@ class ConfigError(ValueError):
 class _Bad(Exception):
     """A value failed a type or range check; ``expected`` says what would have passed."""
 
-    def __init__(self, expected: str):
+    def __init__(self, expected: str, hint: str = ""):
         super().__init__(expected)
         self.expected = expected
+        self.hint = hint
 
 
 class _Missing:

@@ -9,7 +9,13 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
-from daemon.config.durations import format_duration, parse_duration
+from daemon.config.durations import (
+    bare_number_hint,
+    format_drift,
+    format_duration,
+    parse_drift,
+    parse_duration,
+)
 from daemon.config.errors import _Bad, _show
 from daemon.endpoints import endpoint_problem, split_host_port
 from daemon.sharding import parse_shard
@@ -74,7 +80,30 @@ def _duration(v: Any) -> float:
     try:
         return parse_duration(v)
     except ValueError:
+        hint = bare_number_hint(v)
+        if hint:
+            raise _Bad('a duration with a unit like "36h" or "5d" (a bare number is only '
+                       'allowed for 0)', hint) from None
         raise _Bad('a duration like "36h" or "5d"') from None
+
+
+_DRIFT_EXPECTED = ('a drift rate like "0.5 per 1h" (a change in target units, "per", a '
+                   'duration with a unit)')
+
+
+def _drift(v: Any) -> float:
+    if isinstance(v, bool) or isinstance(v, int | float):
+        raise _Bad(_DRIFT_EXPECTED, f'did you mean "{v:g} per 1h"?' if not isinstance(v, bool)
+                   and math.isfinite(v) and v >= 0 else "")
+    try:
+        return parse_drift(v)
+    except ValueError:
+        hint = ""
+        if isinstance(v, str):
+            change, sep, span = v.partition(" per ")
+            if sep and bare_number_hint(span):
+                hint = f'did you mean "{change.strip()} per {span.strip()}h"?'
+        raise _Bad(_DRIFT_EXPECTED, hint) from None
 
 
 def _numbers(v: Any) -> tuple[float, ...]:
@@ -157,6 +186,8 @@ BOOLEAN = _Kind("boolean", "true or false", "true or false", _boolean)
 STRING = _Kind("string", "a string", "a non-empty string", _nonempty_string)
 DURATION = _Kind("duration", "a duration", 'a duration like "36h" or "5d"', _duration,
                  _write_duration)
+DRIFT = _Kind('drift rate `"<s> per <T>"`', "a drift rate", _DRIFT_EXPECTED, _drift,
+              lambda v: f'"{format_drift(v)}"')
 NUMBERS = _Kind("array of numbers", "an array of numbers", "an array of finite numbers",
                 _numbers)
 ENDPOINT = _Kind("endpoint", "a ZeroMQ endpoint", f"a ZeroMQ endpoint like {_ENDPOINT_EXAMPLE}",

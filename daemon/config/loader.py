@@ -59,7 +59,7 @@ def _parse_table(section: str, table: dict, ctx: _Ctx, local_prefix: str
             try:
                 values[row.field] = row.parse(raw)
             except _Bad as bad:
-                raise ctx.error(local, bad.expected, _show(raw)) from None
+                raise ctx.error(local, bad.expected, _show(raw), bad.hint) from None
             present.add(row.field)
         elif row.default is REQUIRED:
             raise ctx.error(local, row.kind.expected, _show(REQUIRED))
@@ -186,6 +186,27 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
             if f in present:
                 raise not_allowed(f, "noise.std is set, so the noise is not learned")
     policy = values["forgetting"]
+    drift_keys = ("offset_drift", "linear_drift", "higher_drift")
+    allowed_drift = {"offset": ("offset_drift",), "term_drift": drift_keys}.get(policy, ())
+    for f in drift_keys:
+        if f in present and f not in allowed_drift:
+            where = ('policy = "term_drift"' if f != "offset_drift" else
+                     'policy = "offset" or "term_drift"')
+            raise not_allowed(f, f'{f} only applies to {where}, policy is "{policy}"')
+    if policy == "offset" and values["offset_drift"] is None:
+        raise ctx.error("forgetting.offset_drift", 'a drift rate like "0.5 per 1h" (required '
+                        'with policy = "offset")', _show(REQUIRED))
+    if policy == "offset" and not values["offset_drift"] > 0:
+        raise ctx.error("forgetting.offset_drift", 'a drift rate above 0 (policy = "offset" '
+                        'without drift is "stabilized")', _show(_given(raw, "offset_drift")))
+    if policy == "term_drift":
+        if not any(values[f] for f in drift_keys):
+            given = next((f for f in drift_keys if f in present), "offset_drift")
+            raise ctx.error(f"forgetting.{given}", "at least one of offset_drift, linear_drift, "
+                            'higher_drift above 0 (required with policy = "term_drift")',
+                            _show(_given(raw, given)))
+        if "half_life" not in present:
+            values["half_life"] = None
     if policy == "random_walk":
         if values["q"] is None:
             raise ctx.error("forgetting.q", 'a number > 0 (required with policy = '

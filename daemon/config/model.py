@@ -12,12 +12,17 @@ from daemon.config.settings import _BY_SECTION, SETTINGS, _default
 from daemon.sharding import parse_shard
 from recursive import Exponential, Gate, Posterior, RandomWalk, Stabilized
 from recursive.basis import Basis, Identity, Input, Polynomial
+from recursive.forgetting import TermDrift
 
 # Version of the canonical text hashed by ModelConfig.fingerprint(); bump it if that text
 # changes meaning, so that old fingerprints can never match new ones by accident.
 FINGERPRINT_SCHEMA = 1
 # Schema of ModelConfig.to_state(), the settings of a model kept in a state folder.
 MODEL_STATE_SCHEMA = "posteriord.model-config/1"
+# Settings added after the schema above: absent from older state folders (read as their
+# default) and left out of the fingerprint while at their default, so that models
+# configured before they existed keep their fingerprints and learned state.
+_ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift")
 
 
 @dataclass(frozen=True)
@@ -64,7 +69,9 @@ class InputConfig:
 
 @dataclass(frozen=True)
 class ModelConfig:
-    """One ``[[model]]`` table; durations in seconds, ``q`` per second.
+    """One ``[[model]]`` table; durations in seconds, ``q`` and the drift rates
+    (``offset_drift``, ``linear_drift``, ``higher_drift``: variance rates ``s**2 / T``) per
+    second.
 
     Built by :func:`load` / :func:`loads`, which check every value; direct construction is
     not checked.
@@ -84,6 +91,9 @@ class ModelConfig:
     forgetting: str = _default("model.forgetting", "policy")
     half_life: float | None = _default("model.forgetting", "half_life")
     q: float | None = _default("model.forgetting", "q")
+    offset_drift: float | None = _default("model.forgetting", "offset_drift")
+    linear_drift: float | None = _default("model.forgetting", "linear_drift")
+    higher_drift: float | None = _default("model.forgetting", "higher_drift")
     gate: float | None = _default("model.gate", "k")
     gate_release: int = _default("model.gate", "release")
     level: float = _default("model", "level")
@@ -134,6 +144,8 @@ class ModelConfig:
             policy = Exponential(self.half_life)
         elif self.forgetting == "random_walk":
             policy = RandomWalk(self.q, self.half_life)
+        elif self.forgetting in ("offset", "term_drift"):
+            policy = TermDrift(self.drift_rates(basis), self.half_life)
         else:
             policy = None
         gate = None
@@ -144,6 +156,19 @@ class ModelConfig:
                          noise_prior=(self.noise_guess, self.noise_strength),
                          forgetting=policy, gate=gate)
 
+    def drift_rates(self, basis: Basis | None = None) -> tuple[float, ...]:
+        """The per-term variance rates (per second) of the ``offset`` and ``term_drift``
+        policies, in basis order: ``offset_drift`` for the constant, ``linear_drift`` for
+        terms of degree 1, ``higher_drift`` for the others (0 where not set).
+
+        They are absolute at the noise reference (the known ``std``, or the ``guess`` when
+        the noise is learned), the convention of :class:`recursive.forgetting.TermDrift`.
+        """
+        basis = self.build_basis() if basis is None else basis
+        by_degree = (self.offset_drift or 0.0, self.linear_drift or 0.0,
+                     self.higher_drift or 0.0)
+        return tuple(float(by_degree[min(int(d), 2)]) for d in basis.exponents.sum(axis=1))
+
     def learning_settings(self) -> dict:
         """The settings that affect learning (rows with ``learning=True``), as plain data."""
         out: dict[str, Any] = {}
@@ -151,6 +176,8 @@ class ModelConfig:
             if row.learning and row.section.startswith("model") \
                     and row.section != "model.inputs":
                 value = getattr(self, row.field)
+                if row.field in _ADDED_LATER and value == row.default:
+                    continue
                 out[row.field] = list(value) if isinstance(value, tuple) else value
         rows = [r for r in _BY_SECTION["model.inputs"] if r.learning]
         out["inputs"] = [{r.field: getattr(i, r.field) for r in rows} for i in self.inputs]
@@ -187,6 +214,7 @@ class ModelConfig:
             got = state.get("schema") if isinstance(state, dict) else type(state).__name__
             raise ValueError(f"model config schema must be {MODEL_STATE_SCHEMA!r}, got {got!r}")
         names = {f.name for f in fields(cls)}
+        state = {**{k: _default("model.forgetting", k) for k in _ADDED_LATER}, **state}
         keys = set(state) - {"schema"}
         if keys != names:
             raise ValueError(f"model config keys differ from the settings: missing "

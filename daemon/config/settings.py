@@ -9,6 +9,7 @@ from typing import Any
 from daemon.config.errors import REQUIRED, _Bad
 from daemon.config.kinds import (
     BOOLEAN,
+    DRIFT,
     DURATION,
     ENDPOINT,
     ENDPOINTS,
@@ -289,18 +290,42 @@ SETTINGS: tuple[Setting, ...] = (
             "uninformative prior.", GE0, learning=True),
     # [model.forgetting]
     Setting("model.forgetting", "policy", "forgetting",
-            _choice("stabilized", "exponential", "random_walk", "none"), "stabilized",
+            _choice("stabilized", "exponential", "random_walk", "offset", "term_drift", "none"),
+            "stabilized",
             "`stabilized`: old information decays toward the prior (never less certain than "
             "the prior); `exponential`: all information decays (can wind up when inputs do "
-            "not move); `random_walk`: the weights drift with variance `q` per second; "
-            "`none`: no forgetting.", learning=True),
+            "not move); `random_walk`: every weight drifts with variance `q` per second; "
+            "`offset`: the constant term (the offset: feed composition, analyzer zero, "
+            "fouling) drifts at `offset_drift` while the whole model is also flattened toward "
+            "the prior with `half_life`, so the sensitivities change slowly and the offset "
+            "follows fast; `term_drift`: each group of terms drifts at its own rate "
+            "(`offset_drift`, `linear_drift`, `higher_drift`), with stabilized forgetting "
+            "only if `half_life` is set; `none`: no forgetting.", learning=True),
     Setting("model.forgetting", "half_life", "half_life", DURATION, 5 * _day,
             "Time after which a lab result counts half. With `random_walk` it is optional and "
-            "applies to the noise estimate only; not allowed with `none`.", GT0,
-            learning=True, default_doc='`"5d"` (not set for `random_walk` and `none`)'),
+            "applies to the noise estimate only; with `term_drift` it is optional (not set: "
+            "only the drift); not allowed with `none`.", GT0,
+            learning=True,
+            default_doc='`"5d"` (not set for `random_walk`, `term_drift` and `none`)'),
     Setting("model.forgetting", "q", "q", NUMBER, None,
             "Random-walk variance added to each weight per second, in the weights' units "
             "squared; required with `random_walk`, not allowed otherwise.", GT0,
+            learning=True),
+    Setting("model.forgetting", "offset_drift", "offset_drift", DRIFT, None,
+            'How fast the offset (the constant term) wanders, as `"<s> per <T>"`: over a '
+            "time T its change has a standard deviation of about s target units (a random "
+            "walk, so over 4T about 2s). It is read as the variance rate q = s^2 / T per "
+            'second: `"0.5 per 1h"` is q = 0.25 / 3600 per second. With learned noise the '
+            "rate holds at the noise guess and scales with the learned noise variance. "
+            "Required with `offset`; with `term_drift` optional (not set: 0).", learning=True),
+    Setting("model.forgetting", "linear_drift", "linear_drift", DRIFT, None,
+            'Drift of each linear term\'s weight (degree 1), as `"<s> per <T>"` in the '
+            "weight's units (target units per unit of the scaled input for a polynomial "
+            "basis, per engineering unit for identity), q = s^2 / T; only with `term_drift` "
+            "(not set: 0).", learning=True),
+    Setting("model.forgetting", "higher_drift", "higher_drift", DRIFT, None,
+            "Drift of each weight of degree 2 or more (squares and cross terms), as "
+            '`"<s> per <T>"`, q = s^2 / T; only with `term_drift` (not set: 0).',
             learning=True),
     # [model.gate]
     Setting("model.gate", "k", "gate", NUMBER, 4.0,
@@ -390,6 +415,9 @@ RULES: tuple[str, ...] = (
     "`noise.std` excludes `noise.guess` and `noise.strength`.",
     "`forgetting.q` is required with `policy = \"random_walk\"` and not allowed otherwise; "
     "`forgetting.half_life` is not allowed with `policy = \"none\"`.",
+    "`forgetting.offset_drift` is required with `policy = \"offset\"`; the drift keys are only "
+    "allowed with `offset` (`offset_drift`) and `term_drift` (all three, at least one rate "
+    "above 0).",
     "`gate.release` is not allowed with `gate.k = 0`.",
     "`alerts.head_start` < `alerts.cusum_h`.",
 )

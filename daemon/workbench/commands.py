@@ -264,7 +264,7 @@ def cmd_tune(args) -> int:
           + (f"; {late} drawn after --until not used" if late else ""), file=sys.stderr)
     try:
         res = tune.tune(history, base, until=until, burn_in=args.burn_in, policy=args.policy,
-                        keep_outliers=args.keep_outliers)
+                        keep_outliers=args.keep_outliers, lab_delay=args.lab_delay)
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
     print(tune.table_text(res, top=args.top, unit=_unit(args, history),
@@ -470,8 +470,12 @@ def add_work_commands(sub) -> None:
                                                    "long of the start (e.g. 28d)")
     t.add_argument("--burn-in", type=int, default=20,
                    help="lab results learned but not scored at the start (default 20)")
-    t.add_argument("--policy", choices=("stabilized", "exponential"),
-                   help="forgetting policy of the candidates (default: the model's)")
+    t.add_argument("--policy", choices=("none", "stabilized", "exponential", "random_walk",
+                                        "offset"),
+                   help="compare only this forgetting policy (default: compare them all)")
+    t.add_argument("--lab-delay", type=_duration, default=7200.0,
+                   help="time from drawing a lab sample to its result; each result is "
+                        "predicted from those known when its sample was drawn (default 2h)")
     t.add_argument("--keep-outliers", action="store_true",
                    help="score the lab results the gate rejects too")
     t.add_argument("--top", type=int, default=12, help="candidates listed (default 12)")
