@@ -122,3 +122,15 @@ async def until(condition, timeout: float = 10.0, what: str = "condition"):
         if loop.time() > deadline:
             raise AssertionError(f"{what} not reached within {timeout} s")
         await asyncio.sleep(0.01)
+
+
+async def make_cert(folder, name: str, uri: str, *, server: bool = False):
+    """A fresh self-signed application certificate (DER) and its key (PEM) in ``folder``."""
+    from asyncua.crypto.cert_gen import setup_self_signed_certificate
+    from cryptography.x509.oid import ExtendedKeyUsageOID
+
+    key, cert = folder / f"{name}.pem", folder / f"{name}.der"
+    use = ExtendedKeyUsageOID.SERVER_AUTH if server else ExtendedKeyUsageOID.CLIENT_AUTH
+    await setup_self_signed_certificate(key, cert, uri, "localhost", [use],
+                                        {"commonName": name})
+    return cert, key

@@ -109,3 +109,106 @@ def test_opcua_in_feeds_the_daemon(sock_dir):
     asyncio.run(scenario())
     status = svc.ctl("status")
     assert svc.alive(), status
+
+
+def _out_toml(endpoint: str, publish: str, **extra) -> str:
+    lines = ["[opcua_out]", f'endpoint = "{endpoint}"', f'subscribe = "{publish}"']
+    lines += [f"{k} = {v}" for k, v in extra.items()]
+    lines += ["[[opcua_out.model]]", 'name = "two"', 'unit = "%wt"']
+    return "\n".join(lines) + "\n"
+
+
+async def _read(client, name: str):
+    from asyncua import ua
+
+    idx = await client.get_namespace_index("urn:posteriord:predictions")
+    out = {}
+    for var in ("Mean", "Std", "Lo", "Hi", "Status", "Trust", "LabValue", "LabTime"):
+        node = client.get_node(ua.NodeId(f"{name}.{var}", idx))
+        try:
+            out[var] = await node.read_data_value(raise_on_bad_status=False)
+        except TypeError:  # asyncua 1.1 returns bad values without raising
+            out[var] = await node.read_data_value()
+    return out
+
+
+def _code(dv) -> int:
+    code = getattr(dv, "StatusCode", None) or getattr(dv, "StatusCode_", None)
+    return code.value
+
+
+def test_opcua_out_serves_the_predictions(sock_dir):
+    from asyncua import Client, ua
+
+    from daemon.bridges.common import epoch
+    from daemon.bridges.opcua_out import OpcUaOut
+
+    svc = BridgedService(sock_dir, [TWO], [])
+    url = f"opc.tcp://127.0.0.1:{free_port()}/posteriord"
+    cfg = loads_bridge(svc.toml + _out_toml(url, svc.publish, anonymous="true"), "opcua_out")
+    bridge = OpcUaOut(cfg)
+
+    async def scenario():
+        await bridge.open()
+        task = asyncio.create_task(bridge.run())
+        try:
+            async with Client(url, timeout=5) as client:
+                before = await _read(client, "two")
+                # OPC UA Part 6 StatusCode.csv: Bad_WaitingForInitialData (from memory)
+                assert _code(before["Mean"]) == 0x80320000
+                # the daemon's SUB may not have reached the bridge yet: probe until it has
+                t = T0
+                while True:
+                    t += 1.0
+                    svc.feed.send("two", {"t": t, "x": [1.0, 2.0]})
+                    await asyncio.to_thread(svc.barrier)
+                    await asyncio.sleep(0.05)
+                    if bridge.written:
+                        break
+                preds = []
+                rng = [(3.0, 1.0, 7.5), (2.0, 5.0, 12.0), (6.0, 1.0, 15.0)]
+                for a, b, y in rng:
+                    t += 10.0
+                    svc.feed.send("two", {"t": t, "x": [a, b]})
+                    svc.feed.send("two", {"t": t, "y": y})
+                    got = await asyncio.to_thread(svc.barrier)
+                    preds += [body for topic, body in got if topic == "pred/two"]
+                last = preds[-1]
+                fits = [b for topic, b in got if topic == "fit/two"]
+                assert fits and fits[-1]["t"] == t
+
+                async def written():
+                    now = await _read(client, "two")
+                    done = (epoch(now["Mean"].SourceTimestamp) == last["t"]
+                            and now["LabValue"].Value.Value == 15.0)
+                    return now if done else None
+
+                deadline = asyncio.get_running_loop().time() + 10
+                while (now := await written()) is None:
+                    assert asyncio.get_running_loop().time() < deadline, "values not served"
+                for var in ("Mean", "Std", "Lo", "Hi"):
+                    dv = now[var]
+                    assert dv.Value.Value == last[var.lower()], var
+                    assert epoch(dv.SourceTimestamp) == last["t"], var
+                assert now["Status"].Value.Value == last["status"]
+                assert now["Trust"].Value.Value == last["trust"]
+                # the mapping of docs/connecting-a-plant.md: learning and normal is Good
+                expected = {("learning", "normal"): 0, ("learning", "caution"): 0x40000000,
+                            ("stale", "normal"): 0x40900000, ("stale", "caution"): 0x40000000,
+                            ("learning", "untrusted"): 0x80000000,
+                            ("stale", "untrusted"): 0x80000000,
+                            }[(last["status"], last["trust"])]
+                assert _code(now["Mean"]) == expected
+                assert now["LabValue"].Value.Value == 15.0
+                assert epoch(now["LabTime"].Value.Value) == t
+                # engineering units on the mean (OPC UA Part 8 EUInformation)
+                idx = await client.get_namespace_index("urn:posteriord:predictions")
+                mean = client.get_node(ua.NodeId("two.Mean", idx))
+                eu = await mean.get_child(["0:EngineeringUnits"])
+                assert (await eu.read_value()).DisplayName.Text == "%wt"
+        finally:
+            bridge.stop()
+            await asyncio.wait_for(task, 10)
+            await bridge.aclose()
+
+    asyncio.run(scenario())

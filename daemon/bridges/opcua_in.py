@@ -122,7 +122,7 @@ class OpcUaIn:
 
         c = self.cfg
         client = Client(c.server, timeout=c.timeout)
-        client.application_uri = f"urn:posteriord:{self.name}"
+        client.application_uri = certificate_uri(c.certificate) or f"urn:posteriord:{self.name}"
         if c.security_policy == "Basic256Sha256":
             mode = (ua.MessageSecurityMode.SignAndEncrypt if c.security_mode == "sign_and_encrypt"
                     else ua.MessageSecurityMode.Sign)
@@ -320,6 +320,24 @@ class OpcUaIn:
             self.feed.close()
         if self._own_ctx and self._ctx is not None:
             self._ctx.term()
+
+
+def certificate_uri(path: str) -> str | None:
+    """The application URI in a certificate's subject alternative names (OPC UA Part 6
+    wants the session's application URI to be that one), or None."""
+    if not path:
+        return None
+    from cryptography import x509
+
+    data = Path(path).read_bytes()
+    cert = (x509.load_pem_x509_certificate(data) if b"-----BEGIN" in data
+            else x509.load_der_x509_certificate(data))
+    try:
+        san = cert.extensions.get_extension_for_class(x509.SubjectAlternativeName).value
+    except x509.ExtensionNotFound:
+        return None
+    uris = san.get_values_for_type(x509.UniformResourceIdentifier)
+    return uris[0] if uris else None
 
 
 def _drawn(v) -> float | None:
