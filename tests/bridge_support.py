@@ -65,6 +65,9 @@ class Plant:
     async def start(self) -> None:
         from asyncua import Server, ua
 
+        if self.server is not None:  # stopped before: the same address space comes back
+            await self.server.start()
+            return
         s = Server()
         await s.init()
         s.set_endpoint(self.url)
@@ -108,7 +111,6 @@ class Plant:
     async def stop(self) -> None:
         if self.server is not None:
             await self.server.stop()
-            self.server = None
 
 
 async def until(condition, timeout: float = 10.0, what: str = "condition"):

@@ -9,7 +9,7 @@ import pytest
 
 pytest.importorskip("asyncua", reason="the opcua extra (asyncua) is not installed")
 
-from bridge_support import T0, TWO, BridgedService, Plant, stamp, until  # noqa: E402
+from bridge_support import T0, TWO, BridgedService, Plant, make_cert, stamp, until  # noqa: E402
 from conftest import free_port, ipc, recv_until  # noqa: E402
 
 from daemon.bridges.opcua_in import OpcUaIn, severity  # noqa: E402
@@ -92,7 +92,6 @@ def test_opcua_in_feeds_the_daemon(sock_dir):
             # the plant's server goes away and comes back on the same port
             await plant.stop()
             await until(lambda: not bridge.connected.is_set(), what="loss noticed")
-            plant.vars.clear()
             await plant.start()
             await asyncio.wait_for(bridge.connected.wait(), 10)
             assert value("posteriord_bridge_reconnects_total") == 1
@@ -206,6 +205,78 @@ def test_opcua_out_serves_the_predictions(sock_dir):
                 mean = client.get_node(ua.NodeId("two.Mean", idx))
                 eu = await mean.get_child(["0:EngineeringUnits"])
                 assert (await eu.read_value()).DisplayName.Text == "%wt"
+        finally:
+            bridge.stop()
+            await asyncio.wait_for(task, 10)
+            await bridge.aclose()
+
+    asyncio.run(scenario())
+
+
+def test_opcua_out_security(sock_dir, tmp_path):
+    from asyncua import Client
+    from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
+
+    from daemon.bridges.opcua_out import OpcUaOut, hash_password
+
+    svc = BridgedService(sock_dir, [TWO], [])
+    url = f"opc.tcp://127.0.0.1:{free_port()}/posteriord"
+
+    async def certs():
+        trusted = tmp_path / "trusted"
+        trusted.mkdir()
+        server = await make_cert(tmp_path, "server", "urn:test:posteriord", server=True)
+        good = await make_cert(tmp_path, "screen", "urn:test:screen")
+        stranger = await make_cert(tmp_path, "stranger", "urn:test:stranger")
+        (trusted / "screen.der").write_bytes(good[0].read_bytes())
+        return trusted, server, good, stranger
+
+    trusted, server_cert, good, stranger = asyncio.run(certs())
+    users = tmp_path / "users"
+    users.write_text("# operator screens\nscreen:" + hash_password("s3cret") + "\n")
+    extra = {"security_policy": '"Basic256Sha256"', "certificate": f'"{server_cert[0]}"',
+             "private_key": f'"{server_cert[1]}"', "trusted_clients": f'"{trusted}"',
+             "users": f'"{users}"'}
+    cfg = loads_bridge(svc.toml + _out_toml(url, svc.publish, **extra), "opcua_out")
+    bridge = OpcUaOut(cfg)
+
+    async def connect(cert_key, user=None, password=None, policy=True):
+        client = Client(url, timeout=3)
+        client.application_uri = {good: "urn:test:screen",
+                                  stranger: "urn:test:stranger"}[cert_key]
+        if policy:
+            await client.set_security(SecurityPolicyBasic256Sha256, certificate=str(cert_key[0]),
+                                      private_key=str(cert_key[1]),
+                                      server_certificate=str(server_cert[0]))
+        if user is not None:
+            client.set_user(user)
+            client.set_password(password)
+        try:
+            await client.connect()
+        except Exception as exc:  # noqa: BLE001 - whatever the refusal is called
+            return exc
+        try:
+            await _read(client, "two")
+            return "ok"
+        finally:
+            await client.disconnect()
+
+    async def scenario():
+        await bridge.open()
+        task = asyncio.create_task(bridge.run())
+        try:
+            assert await connect(good, "screen", "s3cret") == "ok"
+            # a certificate the server does not trust, with the right password
+            # (the refusals are the OPC UA status codes of Part 4, named as asyncua names them)
+            refused = await connect(stranger, "screen", "s3cret")
+            assert type(refused).__name__ == "BadCertificateUntrusted", refused
+            # the trusted certificate with a wrong password, and anonymously
+            refused = await connect(good, "screen", "guess")
+            assert type(refused).__name__ == "BadUserAccessDenied", refused
+            refused = await connect(good)
+            assert type(refused).__name__ == "BadIdentityTokenRejected", refused
+            # no security at all: the server offers no such endpoint
+            assert await connect(good, "screen", "s3cret", policy=False) != "ok"
         finally:
             bridge.stop()
             await asyncio.wait_for(task, 10)
