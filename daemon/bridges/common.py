@@ -161,7 +161,11 @@ class FeedEnd:
         self.sock.setsockopt(zmq.LINGER, 2000)
         self.sock.setsockopt(zmq.SNDHWM, 0)
         self.sock.setsockopt(zmq.XPUB_VERBOSE, 1)
-        self.sock.bind(endpoint)
+        try:
+            self.sock.bind(endpoint)
+        except zmq.ZMQError:
+            self.sock.close(linger=0)  # an open socket would hang the context's term()
+            raise
         self.endpoint = self.sock.getsockopt_string(zmq.LAST_ENDPOINT)
         self.name = name
         self.metrics = metrics
@@ -170,7 +174,6 @@ class FeedEnd:
         self.subscribed: set[str] = set()
         self.held: dict[str, collections.deque] = {}
         self.seq: collections.Counter = collections.Counter()
-        self._changed = asyncio.Event()
 
     def _is_subscribed(self, model: str) -> bool:
         return model in self.subscribed or any(model.startswith(s) for s in self.subscribed)
@@ -183,17 +186,16 @@ class FeedEnd:
                 self.subscribed.add(raw[1:].decode("utf-8", "replace"))
             elif raw[:1] == b"\x00":
                 self.subscribed.discard(raw[1:].decode("utf-8", "replace"))
-            self._changed.set()
         for model, queue in self.held.items():
             if queue and self._is_subscribed(model):
                 while queue:
                     self._send(model, queue.popleft())
 
-    async def watch(self) -> None:
-        """Follow the subscriptions for as long as the bridge runs.
+    async def _readable(self, timeout: float = 0.5) -> None:
+        """Return when the socket may have news, or after ``timeout`` s.
 
-        The socket's file descriptor only tells that its state may have changed (it is edge
-        triggered), so every wake-up drains what is there, and a slow timer covers an edge
+        Its file descriptor only tells that the state may have changed (it is edge
+        triggered), so every caller drains what is there, and the timeout covers an edge
         taken by a send.
         """
         loop = asyncio.get_running_loop()
@@ -201,13 +203,16 @@ class FeedEnd:
         fd = self.sock.getsockopt(zmq.FD)
         loop.add_reader(fd, ready.set)
         try:
-            while True:
-                self.take_events()
-                with contextlib.suppress(asyncio.TimeoutError):
-                    await asyncio.wait_for(ready.wait(), 0.5)
-                ready.clear()
+            with contextlib.suppress(asyncio.TimeoutError):
+                await asyncio.wait_for(ready.wait(), timeout)
         finally:
             loop.remove_reader(fd)
+
+    async def watch(self) -> None:
+        """Follow the subscriptions for as long as the bridge runs."""
+        while True:
+            self.take_events()
+            await self._readable()
 
     async def wait_subscribed(self, models, timeout: float | None = None) -> None:
         async def wait():
@@ -215,8 +220,7 @@ class FeedEnd:
                 self.take_events()
                 if all(self._is_subscribed(m) for m in models):
                     return
-                self._changed.clear()
-                await self._changed.wait()
+                await self._readable(0.1)
 
         await asyncio.wait_for(wait(), timeout)
 
