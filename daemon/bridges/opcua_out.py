@@ -207,6 +207,10 @@ class OpcUaOut:
         self._stop = asyncio.Event()
         self.ready = asyncio.Event()
         self.written = 0
+        # time of the last prediction served per model, and a signal at each write (the
+        # bench and the tests wait on it)
+        self.last_t: dict[str, float] = {}
+        self.changed = asyncio.Event()
 
     def stop(self) -> None:
         self._stop.set()
@@ -327,6 +331,7 @@ class OpcUaOut:
                 for var in ("Status", "Trust"):
                     await write(nodes[var].nodeid, _datavalue(
                         str(row[var.lower()]), ua.VariantType.String, GOOD, row["t"]))
+                self.last_t[model] = row["t"]
             elif kind == "fit":
                 t, y = float(body["t"]), float(body["y"])
                 await write(nodes["LabValue"].nodeid, _datavalue(
@@ -335,6 +340,7 @@ class OpcUaOut:
                     _dt.datetime.fromtimestamp(t, _dt.UTC), ua.VariantType.DateTime, GOOD, t))
             self.written += 1
             self.metrics.published.labels(self.name, model).inc()
+            self.changed.set()
         except (ValueError, KeyError, TypeError, UnicodeDecodeError) as exc:
             self.metrics.drop("?", "bad_message")
             self.rlog.warn("daemon output", "bad_message", f"{type(exc).__name__}: {exc}"[:200])
