@@ -228,6 +228,7 @@ def main(argv=None) -> int:
     add_client_key_options(k)
     k.set_defaults(func=cmd_ctl)
     # imported here: these modules import the service, which imports this module's exit codes
+    from daemon.bridges.commands import add_bridge_commands
     from daemon.runtime.relay import add_relay_command
     from daemon.runtime.state_commands import add_state_commands
     from daemon.workbench.commands import add_work_commands
@@ -235,6 +236,7 @@ def main(argv=None) -> int:
     add_work_commands(sub)
     add_state_commands(sub)
     add_relay_command(sub)
+    add_bridge_commands(sub)
     keys = sub.add_parser("keys", help="CURVE key pairs")
     ksub = keys.add_subparsers(dest="keys_what", required=True)
     kn = ksub.add_parser("new", help="write NAME.key (public) and NAME.key_secret (0600)")

@@ -12,6 +12,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from daemon.config.bridges import BRIDGE_SECTIONS
 from daemon.config.durations import format_duration
 from daemon.config.errors import REQUIRED, ConfigError, _Bad, _show
 from daemon.config.kinds import _write_number
@@ -247,7 +248,7 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
 
 def _parse_document(doc: dict, source: str) -> Config:
     file = source
-    top = [s.name for s in SECTIONS if not s.parent]
+    top = [s.name for s in (*SECTIONS, *BRIDGE_SECTIONS) if not s.parent]  # bridges' own
     for key in doc:
         if key not in top:
             close = difflib.get_close_matches(key, top, n=1, cutoff=0.6)

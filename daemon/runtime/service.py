@@ -43,6 +43,7 @@ from daemon.exitcodes import EXIT_DURABILITY, EXIT_OK
 from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
+from daemon.runtime.notify import Notifier
 from daemon.runtime.runner import ModelRunner, PredBatch, Rejected
 from daemon.runtime.security import (
     DOMAIN_CONTROL,
@@ -445,9 +446,15 @@ class Service:
         # start-up objects never become garbage: keep them out of every later collection
         gc.freeze()
         self.ready.set()
+        # the service manager (systemd Type=notify) starts dependants only now
+        self._notify = Notifier.from_environment()
+        self._notify.ready(f"{len(self.runners)} model(s)")
+        wd_ms = self._notify.poll_ms
         try:
             while not self._stop:
-                socks = dict(self.poller.poll(self._poll_ms()))
+                self._notify.tick()
+                wait = self._poll_ms()
+                socks = dict(self.poller.poll(wait if wd_ms is None else min(wait, wd_ms)))
                 if self._wake_r.fileno() in socks:  # the poller reports plain sockets by fd
                     # empty the wake-up pipe; the events themselves are in the queue
                     with contextlib.suppress(BlockingIOError):
@@ -877,6 +884,10 @@ class Service:
     # ------------------------------------------------------------------ shutdown
     def close(self) -> None:
         """Close everything in the documented order (idempotent)."""
+        if getattr(self, "_notify", None) is not None:
+            self._notify.stopping()
+            self._notify.close()
+            self._notify = None
         if self.sub is not None:
             self._feed_link.close()
             self._feed_link = self._feed_monitor = None

@@ -1,0 +1,297 @@
+"""What every bridge shares: the feed end that waits for the daemon's subscriptions, the
+reading of the daemon's outputs, metrics and counted rejections.
+
+The feed end is an XPUB: unlike a PUB it sees the subscriptions of the daemon's SUB, so a
+bridge holds the samples of a model until the daemon has subscribed to it (a PUB would drop
+them silently: the slow-joiner loss). Held samples sit in a bounded queue per model; what
+overflows is counted as dropped, never lost without a sign.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import contextlib
+import datetime as _dt
+import logging
+import math
+import time
+
+import numpy as np
+import zmq
+from prometheus_client import CollectorRegistry, Counter, Gauge, start_http_server
+
+from daemon.runtime import wire
+
+# Why a bridge did not pass something on: a bounded set, so they can be metric labels.
+REASONS = (
+    "bad_value",      # a reading that is not a finite number (or not a number at all)
+    "bad_quality",    # the OPC UA status of a reading is Bad: the reading is missing
+    "no_time",        # neither a source nor a server timestamp
+    "not_newer",      # a row no later than the last one published for the model
+    "incomplete",     # some input of the model has no usable reading yet
+    "no_subscriber",  # the daemon was not subscribed and the hold queue was full
+    "bad_message",    # an MQTT payload or daemon output that cannot be read
+    "unknown_model",  # a topic or file naming no configured model
+    "bad_lab",        # a lab result without a usable value or drawn time
+    "bad_file",       # a lab CSV file that cannot be read as a whole
+)
+
+HOLD = 10000  # samples held per model while the daemon is not subscribed
+
+
+def epoch(ts: _dt.datetime | None) -> float | None:
+    """Seconds since 1970 of an OPC UA timestamp (naive ones are UTC), or None."""
+    if ts is None:
+        return None
+    if ts.tzinfo is None:
+        ts = ts.replace(tzinfo=_dt.UTC)
+    t = ts.timestamp()
+    # OPC UA's "no time" is the minimum DateTime (year 1601), before 1970
+    return t if t > 0 else None
+
+
+def number(v) -> float | None:
+    """A reading as a finite float, or None (booleans count as 0 and 1, like a digital tag)."""
+    if isinstance(v, bool):
+        return float(v)
+    if isinstance(v, int | float | np.integer | np.floating):
+        f = float(v)
+        return f if math.isfinite(f) else None
+    return None
+
+
+class RateLimitedLog:
+    """Logs one line per (key, reason) at most every ``interval`` seconds, with the count."""
+
+    def __init__(self, logger: logging.Logger, interval: float = 10.0):
+        self.log = logger
+        self.interval = interval
+        self._last: dict = {}
+        self._count: collections.Counter = collections.Counter()
+
+    def warn(self, key: str, reason: str, detail: str) -> None:
+        k = (key, reason)
+        self._count[k] += 1
+        now = time.monotonic()
+        if now - self._last.get(k, -math.inf) >= self.interval:
+            n = self._count.pop(k)
+            self._last[k] = now
+            self.log.warning("%s: %s (%s)%s", key, reason, detail,
+                             f" [{n} since the last report]" if n > 1 else "")
+
+
+class Metrics:
+    """The Prometheus series of one bridge, in its own registry, known at zero from the start."""
+
+    def __init__(self, bridge: str, models=(), registry: CollectorRegistry | None = None):
+        self.bridge = bridge
+        self.registry = registry or CollectorRegistry()
+        r = self.registry
+        self.received = Counter("posteriord_bridge_received_total",
+                                "Readings, lab results or outputs received by the bridge",
+                                ["bridge", "model"], registry=r)
+        self.published = Counter("posteriord_bridge_published_total",
+                                 "Messages passed on by the bridge", ["bridge", "model"],
+                                 registry=r)
+        self.dropped = Counter("posteriord_bridge_dropped_total",
+                               "What the bridge did not pass on, by reason",
+                               ["bridge", "model", "reason"], registry=r)
+        self.uncertain = Counter("posteriord_bridge_uncertain_total",
+                                 "Readings used although their status was Uncertain",
+                                 ["bridge", "model"], registry=r)
+        self.reconnects = Counter("posteriord_bridge_reconnects_total",
+                                  "Connections to the plant side lost and made again",
+                                  ["bridge"], registry=r)
+        self.gaps = Counter("posteriord_bridge_gaps_total",
+                            "Interruptions of the readings (a lost connection or subscription)",
+                            ["bridge"], registry=r)
+        self.connected = Gauge("posteriord_bridge_connected",
+                               "1 while the bridge is connected to the plant side",
+                               ["bridge"], registry=r)
+        self.reconnects.labels(bridge)
+        self.gaps.labels(bridge)
+        self.connected.labels(bridge).set(0)
+        for m in models:
+            self.known(m)
+        self._http = None
+
+    def known(self, model: str) -> None:
+        b = self.bridge
+        self.received.labels(b, model)
+        self.published.labels(b, model)
+        self.uncertain.labels(b, model)
+
+    def drop(self, model: str, reason: str, n: int = 1) -> None:
+        self.dropped.labels(self.bridge, model, reason).inc(n)
+
+    def value(self, family: str, **labels) -> float:
+        """One sample of the registry (for the bench and the tests)."""
+        v = self.registry.get_sample_value(family, {"bridge": self.bridge, **labels})
+        return 0.0 if v is None else v
+
+    def serve(self, address: str) -> tuple[str, int] | None:
+        """Serve /metrics on ``host:port`` (port 0: any free port); "" serves nothing."""
+        if not address:
+            return None
+        host, _, port = address.rpartition(":")
+        self._http, _ = start_http_server(int(port), addr=host.strip("[]"),
+                                          registry=self.registry)
+        return self._http.server_address[:2]
+
+    def close(self) -> None:
+        if self._http is not None:
+            self._http.shutdown()
+            self._http.server_close()
+            self._http = None
+
+
+class FeedEnd:
+    """The bridge's end of the daemon's feed: an XPUB bound on ``endpoint``.
+
+    :meth:`send` passes a sample on at once when the daemon is subscribed to its model, and
+    holds it otherwise (at most :data:`HOLD` per model, the oldest dropped and counted). Each
+    message carries ``src`` (the bridge's name) and ``seq`` (per model), so the daemon counts
+    what is lost on the way.
+    """
+
+    def __init__(self, ctx: zmq.Context, endpoint: str, name: str, metrics: Metrics,
+                 log: RateLimitedLog, hold: int = HOLD):
+        self.sock = ctx.socket(zmq.XPUB)
+        self.sock.setsockopt(zmq.LINGER, 2000)
+        self.sock.setsockopt(zmq.SNDHWM, 0)
+        self.sock.setsockopt(zmq.XPUB_VERBOSE, 1)
+        try:
+            self.sock.bind(endpoint)
+        except zmq.ZMQError:
+            self.sock.close(linger=0)  # an open socket would hang the context's term()
+            raise
+        self.endpoint = self.sock.getsockopt_string(zmq.LAST_ENDPOINT)
+        self.name = name
+        self.metrics = metrics
+        self.log = log
+        self.hold = hold
+        self.subscribed: set[str] = set()
+        self.held: dict[str, collections.deque] = {}
+        self.seq: collections.Counter = collections.Counter()
+
+    def _is_subscribed(self, model: str) -> bool:
+        return model in self.subscribed or any(model.startswith(s) for s in self.subscribed)
+
+    def take_events(self) -> None:
+        """Read the subscription changes that have arrived, and flush what they unblock."""
+        while self.sock.poll(0):
+            raw = self.sock.recv(zmq.NOBLOCK)
+            if raw[:1] == b"\x01":
+                self.subscribed.add(raw[1:].decode("utf-8", "replace"))
+            elif raw[:1] == b"\x00":
+                self.subscribed.discard(raw[1:].decode("utf-8", "replace"))
+        for model, queue in self.held.items():
+            if queue and self._is_subscribed(model):
+                while queue:
+                    self._send(model, queue.popleft())
+
+    async def _readable(self, timeout: float = 0.5) -> None:
+        """Return when the socket may have news, or after ``timeout`` s.
+
+        Its file descriptor only tells that the state may have changed (it is edge
+        triggered), so every caller drains what is there, and the timeout covers an edge
+        taken by a send.
+        """
+        loop = asyncio.get_running_loop()
+        ready = asyncio.Event()
+        fd = self.sock.getsockopt(zmq.FD)
+        loop.add_reader(fd, ready.set)
+        try:
+            with contextlib.suppress(asyncio.TimeoutError):
+                await asyncio.wait_for(ready.wait(), timeout)
+        finally:
+            loop.remove_reader(fd)
+
+    async def watch(self) -> None:
+        """Follow the subscriptions for as long as the bridge runs."""
+        while True:
+            self.take_events()
+            await self._readable()
+
+    async def wait_subscribed(self, models, timeout: float | None = None) -> None:
+        async def wait():
+            while True:
+                self.take_events()
+                if all(self._is_subscribed(m) for m in models):
+                    return
+                await self._readable(0.1)
+
+        await asyncio.wait_for(wait(), timeout)
+
+    def _send(self, model: str, body: dict) -> None:
+        self.seq[model] += 1
+        body["seq"] = self.seq[model]
+        body["src"] = self.name
+        self.sock.send_multipart([model.encode(), wire.pack(body)])
+        self.metrics.published.labels(self.name, model).inc()
+
+    def send(self, model: str, body: dict) -> None:
+        self.take_events()
+        if self._is_subscribed(model):
+            self._send(model, body)
+            return
+        queue = self.held.get(model)
+        if queue is None:
+            queue = self.held[model] = collections.deque()
+        if len(queue) >= self.hold:
+            queue.popleft()
+            self.metrics.drop(model, "no_subscriber")
+            self.log.warn(model, "no_subscriber", f"the daemon is not subscribed; holding "
+                          f"the newest {self.hold} samples")
+        queue.append(body)
+
+    def close(self) -> None:
+        self.sock.close()
+
+
+# ------------------------------------------------------------------ the daemon's outputs
+def prediction_rows(body: dict) -> list[dict]:
+    """The rows of a ``pred/`` message (single, block or packed) as plain dicts.
+
+    Raises :class:`ValueError` for a body that does not have the published form.
+    """
+    t = body.get("t")
+    keys = ("mean", "std", "lo", "hi")
+    if isinstance(t, int | float) and not isinstance(t, bool):
+        row = {k: float(body[k]) for k in keys}
+        row.update(t=float(t), status=str(body["status"]), trust=body.get("trust"))
+        return [row]
+    if body.get("packed"):
+        cols = {k: np.frombuffer(body[k], dtype="<f8") for k in ("t", *keys)}
+    elif isinstance(t, list):
+        cols = {k: np.asarray(body[k], dtype=float) for k in ("t", *keys)}
+    else:
+        raise ValueError("t is neither a number nor a list")
+    n = len(cols["t"])
+    status = body["status"]
+    if isinstance(status, str):
+        status = [status] * n
+    trust = body.get("trust")
+    if not isinstance(trust, list):
+        trust = [trust] * n
+    if any(len(c) != n for c in cols.values()) or len(status) != n or len(trust) != n:
+        raise ValueError("columns of different lengths")
+    return [{"t": float(cols["t"][i]), **{k: float(cols[k][i]) for k in keys},
+             "status": str(status[i]), "trust": trust[i]} for i in range(n)]
+
+
+def read_output(frames, max_bytes: int = 1 << 24) -> tuple[str, str, dict]:
+    """(kind, model, body) of a daemon output message; raises ValueError if unreadable."""
+    if len(frames) != 2:
+        raise ValueError(f"{len(frames)} frames")
+    kind, _, model = bytes(frames[0]).decode("utf-8").partition("/")
+    body = wire.unpack(bytes(frames[1]), max_bytes)
+    if not isinstance(body, dict):
+        raise ValueError("the payload is not a map")
+    return kind, model, body
+
+
+async def backoff_sleep(attempt: int, first: float, most: float) -> None:
+    """Wait before reconnection ``attempt`` (0, 1, ...): doubling from ``first`` to ``most``."""
+    await asyncio.sleep(min(most, first * 2.0 ** min(attempt, 30)))

@@ -1,0 +1,138 @@
+"""Shared parts of the bridge tests: an in-process daemon whose feed list also names the
+bridge's feed, and an OPC UA server playing the plant."""
+
+from __future__ import annotations
+
+import asyncio
+import datetime as dt
+import threading
+from dataclasses import replace
+
+import zmq
+from conftest import PROBE_MODEL, FeedPublisher, ServiceHarness, ipc, toml_config
+
+from daemon.config import loads
+
+T0 = 1_767_225_600.0  # 2026-01-01 00:00 UTC: in the past, so never refused as future
+
+TWO = {"name": "two", "inputs": [{"tag": "A", "lo": 0, "hi": 10}, {"tag": "B", "lo": 0, "hi": 10}],
+       "basis": {"kind": "identity"}, "noise": {"std": 0.1}}
+
+
+class BridgedService(ServiceHarness):
+    """:class:`ServiceHarness` whose daemon also subscribes to the bridges' feeds."""
+
+    def __init__(self, folder, models, feeds, extra_toml: str = "", **daemon):
+        from daemon.runtime.service import Service
+
+        ctx = zmq.Context()
+        # Link.__init__ only (the parent's __init__ would build its own config)
+        super(ServiceHarness, self).__init__(ctx, FeedPublisher(ctx))
+        settings = {"feeds": [self.feed.endpoint, *feeds], "publish": ipc(folder, "pub"),
+                    "control": ipc(folder, "ctl"), "metrics": "",
+                    "state_dir": str(folder / "state"), "log_level": "warning", **daemon}
+        self.toml = toml_config(settings, [*models, PROBE_MODEL]) + extra_toml
+        config = loads(self.toml, "<test>")
+        config = replace(config, daemon=replace(config.daemon, metrics="127.0.0.1:0"))
+        self.config = config
+        self.svc = Service(config)
+        self.svc.open()
+        publish, control = self.svc.publish_endpoint, self.svc.control_endpoint
+        self.publish = publish
+        self.metrics_address = self.svc.metrics_address
+        self.error = None
+        self.thread = threading.Thread(target=self._run, name="posteriord", daemon=True)
+        self.thread.start()
+        self.stopped = False
+        self.connect(publish, control, [m["name"] for m in models])
+
+
+def stamp(t: float) -> dt.datetime:
+    return dt.datetime.fromtimestamp(t, dt.UTC)
+
+
+class Plant:
+    """An asyncua server with one variable per tag name (ns=2;s=<tag>)."""
+
+    def __init__(self, port: int, tags, *, security=None):
+        self.port = port
+        self.tags = list(tags)
+        self.url = f"opc.tcp://127.0.0.1:{port}/plant"
+        self.security = security or {}
+        self.server = None
+        self.vars = {}
+
+    async def start(self) -> None:
+        from asyncua import Server, ua
+
+        if self.server is not None:  # stopped before: the same address space comes back
+            await self.server.start()
+            return
+        s = Server()
+        await s.init()
+        s.set_endpoint(self.url)
+        s.set_server_name("test plant")
+        sec = self.security
+        if sec:
+            await s.load_certificate(sec["certificate"])
+            await s.load_private_key(sec["private_key"])
+            s.set_security_policy([ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt])
+        idx = await s.register_namespace("urn:test:plant")
+        obj = await s.nodes.objects.add_object(idx, "unit")
+        for tag in self.tags:
+            if tag.endswith("drawn"):
+                v = await obj.add_variable(ua.NodeId(tag, idx), tag, ua.Variant(
+                    dt.datetime(1601, 1, 1), ua.VariantType.DateTime))
+            else:
+                v = await obj.add_variable(ua.NodeId(tag, idx), tag, 0.0)
+            self.vars[tag] = v
+        self.server = s
+        for tag in self.tags:
+            # Bad_WaitingForInitialData (OPC UA Part 6 StatusCode.csv, from memory): what a
+            # server reports before its first reading
+            value = dt.datetime(1601, 1, 1) if tag.endswith("drawn") else 0.0
+            await self.write(tag, value, T0 - 1000, 0x80320000)
+        await s.start()
+
+    async def write(self, tag: str, value, t: float, status: int = 0) -> None:
+        from asyncua import ua
+
+        kind = ua.VariantType.DateTime if isinstance(value, dt.datetime) else \
+            ua.VariantType.Double
+        code = ua.StatusCode(status)
+        try:
+            dv = ua.DataValue(ua.Variant(value, kind), StatusCode=code,
+                              SourceTimestamp=stamp(t), ServerTimestamp=stamp(t))
+        except TypeError:  # asyncua before 1.1 names the field StatusCode_
+            dv = ua.DataValue(ua.Variant(value, kind), StatusCode_=code,
+                              SourceTimestamp=stamp(t), ServerTimestamp=stamp(t))
+        await self.server.write_attribute_value(self.vars[tag].nodeid, dv)
+
+    async def stop(self) -> None:
+        if self.server is not None:
+            await self.server.stop()
+
+
+async def until(condition, timeout: float = 10.0, what: str = "condition"):
+    """Poll ``condition()`` on the loop (each poll yields) until truthy; fail at the deadline."""
+    loop = asyncio.get_running_loop()
+    deadline = loop.time() + timeout
+    while True:
+        v = condition()
+        if v:
+            return v
+        if loop.time() > deadline:
+            raise AssertionError(f"{what} not reached within {timeout} s")
+        await asyncio.sleep(0.01)
+
+
+async def make_cert(folder, name: str, uri: str, *, server: bool = False):
+    """A fresh self-signed application certificate (DER) and its key (PEM) in ``folder``."""
+    from asyncua.crypto.cert_gen import setup_self_signed_certificate
+    from cryptography.x509.oid import ExtendedKeyUsageOID
+
+    key, cert = folder / f"{name}.pem", folder / f"{name}.der"
+    use = ExtendedKeyUsageOID.SERVER_AUTH if server else ExtendedKeyUsageOID.CLIENT_AUTH
+    await setup_self_signed_certificate(key, cert, uri, "localhost", [use],
+                                        {"commonName": name})
+    return cert, key
