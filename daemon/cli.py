@@ -15,26 +15,7 @@ from daemon.exitcodes import (
     EXIT_RUNTIME,
     EXIT_USAGE,
 )
-
-
-class _JsonFormatter(logging.Formatter):
-    def format(self, record):
-        out = {"ts": round(record.created, 3), "level": record.levelname.lower(),
-               "logger": record.name, "msg": record.getMessage()}
-        if record.exc_info:
-            out["exc"] = self.formatException(record.exc_info)
-        return json.dumps(out)
-
-
-def setup_logging(level: str, fmt: str) -> None:
-    handler = logging.StreamHandler(sys.stderr)
-    if fmt == "json":
-        handler.setFormatter(_JsonFormatter())
-    else:
-        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
-    root = logging.getLogger()
-    root.handlers[:] = [handler]
-    root.setLevel(level.upper())
+from daemon.logsetup import setup_logging  # noqa: E402
 
 
 def _load(path):

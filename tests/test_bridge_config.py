@@ -9,7 +9,8 @@ import pytest
 from conftest import _toml_value
 
 from daemon.config import ConfigError, loads
-from daemon.config.bridges import BRIDGE_SETTINGS, bridges_markdown, loads_bridge
+from daemon.config.bridges import BRIDGE_SETTINGS, bridges_markdown
+from daemon.config.loader import loads_bridge
 
 ROOT = Path(__file__).resolve().parent.parent
 

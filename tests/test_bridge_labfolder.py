@@ -10,7 +10,7 @@ from bridge_support import T0, TWO, BridgedService
 from conftest import ipc, recv_until
 
 from daemon.bridges.labfolder import BadFile, LabFolder, read_lab_file
-from daemon.config.bridges import loads_bridge
+from daemon.config.loader import loads_bridge
 
 
 def test_read_lab_file_rows_and_refusals():

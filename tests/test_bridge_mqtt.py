@@ -18,7 +18,7 @@ from bridge_support import T0, TWO, BridgedService  # noqa: E402
 from conftest import free_port, ipc  # noqa: E402
 
 from daemon.bridges.mqtt import BadPayload, MqttBridge, parse_payload  # noqa: E402
-from daemon.config.bridges import loads_bridge  # noqa: E402
+from daemon.config.loader import loads_bridge  # noqa: E402
 
 MOSQUITTO = shutil.which("mosquitto") or (
     "/usr/sbin/mosquitto" if shutil.which("mosquitto", path="/usr/sbin") else None)

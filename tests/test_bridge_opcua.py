@@ -13,7 +13,7 @@ from bridge_support import T0, TWO, BridgedService, Plant, make_cert, stamp, unt
 from conftest import free_port, ipc, recv_until  # noqa: E402
 
 from daemon.bridges.opcua_in import OpcUaIn, severity  # noqa: E402
-from daemon.config.bridges import loads_bridge  # noqa: E402
+from daemon.config.loader import loads_bridge  # noqa: E402
 
 GOOD, UNCERTAIN, BAD = 0x00000000, 0x40000000, 0x80000000  # OPC UA Part 4, the severity bits
 BAD_SENSOR = 0x808C0000  # Bad_SensorFailure, OPC UA Part 4 / Part 6 StatusCode.csv (from memory)

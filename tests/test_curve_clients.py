@@ -283,7 +283,7 @@ def test_record_refused_exits_non_zero_and_says_why(curve_daemon, keyring, tmp_p
                                                     who, says):
     d = curve_daemon()
     out = tmp_path / "r.rec"
-    argv = ["record", str(out), "--endpoint", d.pub_ep, "--duration", PATIENCE]
+    argv = ["record", str(out), "--endpoint", d.pub_ep, "--duration", PATIENCE + "s"]
     th, rc = _in_thread(argv + (_keys(keyring, who) if who else []))
     _record_until_done(d, th)
     assert rc == [EXIT_RUNTIME]
@@ -294,7 +294,7 @@ def test_record_refused_exits_non_zero_and_says_why(curve_daemon, keyring, tmp_p
 
 def test_watch_refused_exits_non_zero(curve_daemon, keyring, capsys):
     d = curve_daemon()
-    argv = ["watch", "--endpoint", d.pub_ep, "--duration", PATIENCE,
+    argv = ["watch", "--endpoint", d.pub_ep, "--duration", PATIENCE + "s",
             *_keys(keyring, "stranger")]
     assert main(argv) == EXIT_RUNTIME
     assert "refused this client's key" in capsys.readouterr().err
@@ -327,7 +327,7 @@ def test_record_function_raises_handshake_error(curve_daemon, keyring, tmp_path)
     d = curve_daemon()
     keys = client_keys(keyring["stranger_secret"], keyring["server"])
     with pytest.raises(HandshakeError, match="refused this client's key"):
-        live.record(d.pub_ep, tmp_path / "r.rec", duration=float(PATIENCE), curve=keys)
+        live.record(d.pub_ep, tmp_path / "r.rec", duration=60.0, curve=keys)
 
 
 # ---------------------------------------------------------------------------------- relay

@@ -20,8 +20,8 @@ _LIBRARY = {"opcua": "asyncua", "mqtt": "aiomqtt"}
 
 
 def cmd_bridge(args) -> int:
-    from daemon.cli import setup_logging
     from daemon.config import ConfigError
+    from daemon.logsetup import setup_logging
 
     module, extra = BRIDGES[args.bridge]
     if extra is not None:

@@ -203,7 +203,7 @@ class LabFolder:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.bridges import load_bridge
+    from daemon.config.loader import load_bridge
 
     cfg = load_bridge(config_path, "lab_folder")
     bridge = LabFolder(cfg)

@@ -289,7 +289,7 @@ class MqttBridge:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.bridges import load_bridge
+    from daemon.config.loader import load_bridge
 
     cfg = load_bridge(config_path, "mqtt")
     bridge = MqttBridge(cfg)

@@ -350,7 +350,7 @@ def _drawn(v) -> float | None:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.bridges import load_bridge
+    from daemon.config.loader import load_bridge
 
     cfg = load_bridge(config_path, "opcua_in")
     bridge = OpcUaIn(cfg)

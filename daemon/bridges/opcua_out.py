@@ -358,7 +358,7 @@ class OpcUaOut:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.bridges import load_bridge
+    from daemon.config.loader import load_bridge
 
     cfg = load_bridge(config_path, "opcua_out")
     bridge = OpcUaOut(cfg)

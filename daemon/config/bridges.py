@@ -3,7 +3,8 @@
 help), parsed with the same errors (file, key, expected, got).
 
 The daemon accepts these tables and leaves them alone; each bridge reads its own with
-:func:`load_bridge` (which also reads the models, to check the tags the bridge names).
+:func:`daemon.config.loader.load_bridge` (which also reads the models, to check the tags
+the bridge names).
 ``docs/bridges.md`` is generated from this table by :func:`bridges_markdown`.
 """
 
@@ -11,12 +12,10 @@ from __future__ import annotations
 
 import difflib
 import json
-import tomllib
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
-from daemon.config.errors import REQUIRED, ConfigError, _Bad, _show
+from daemon.config.errors import REQUIRED, _Bad, _Ctx, _show
 from daemon.config.kinds import (
     BOOLEAN,
     DURATION,
@@ -228,8 +227,6 @@ class BridgeConfig:
 
 
 def _table(section: str, raw: Any, file: str, prefix: str) -> dict:
-    from daemon.config.loader import _Ctx
-
     ctx = _Ctx(file)
     if not isinstance(raw, dict):
         raise ctx.error(prefix, f"a table ({_SEC[section].noun})", _show(raw))
@@ -260,8 +257,6 @@ def _table(section: str, raw: Any, file: str, prefix: str) -> dict:
 
 def parse_bridge(doc: dict, section: str, file: str, models: tuple) -> BridgeConfig:
     """The checked ``[section]`` table of a parsed TOML document (raises ConfigError)."""
-    from daemon.config.loader import _Ctx
-
     ctx = _Ctx(file)
     if section not in doc:
         raise ctx.error(section, f"a {_SEC[section].noun} table", "nothing (no such table)")
@@ -338,25 +333,6 @@ def _rules(cfg: BridgeConfig, raw: dict, ctx) -> None:
                                 _show(m["name"]))
     if s == "mqtt" and v["user"] is not None and not v["password_file"]:
         raise ctx.error(f"{s}.password_file", "a file (required with user)", _show(REQUIRED))
-
-
-def loads_bridge(text: str, section: str, source: str = "<string>") -> BridgeConfig:
-    """The ``[section]`` bridge table of a configuration text, checked against its models."""
-    from daemon.config.loader import loads
-
-    config = loads(text, source)  # the daemon's own checks first (and its models)
-    doc = tomllib.loads(text)
-    return parse_bridge(doc, section, source, config.models)
-
-
-def load_bridge(path: str | Path, section: str) -> BridgeConfig:
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(str(path), None, "a readable file", exc.strerror or str(exc)) from None
-    except UnicodeDecodeError as exc:
-        raise ConfigError(str(path), None, "UTF-8 text", str(exc)) from None
-    return loads_bridge(text, section, str(path))
 
 
 def bridges_markdown() -> str:

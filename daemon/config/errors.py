@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+from dataclasses import dataclass
 from typing import Any
 
 
@@ -91,3 +92,17 @@ def _show(value: Any, limit: int = 120) -> str:
     else:
         text = repr(value)
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+@dataclass(frozen=True)
+class _Ctx:
+    """Where the keys being parsed live: ``prefix`` starts the full key path."""
+
+    file: str | None
+    where: str = ""
+    prefix: str = ""
+
+    def error(self, local: str, expected: str, got: str, hint: str = "") -> ConfigError:
+        key = f"{self.prefix}.{local}" if self.prefix else local
+        return ConfigError(self.file, key, expected, got, where=self.where, local_key=local,
+                           hint=hint)

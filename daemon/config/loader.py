@@ -7,33 +7,18 @@ import contextlib
 import difflib
 import json
 import tomllib
-from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
-from daemon.config.bridges import BRIDGE_SECTIONS
+from daemon.config.bridges import BRIDGE_SECTIONS, BridgeConfig, parse_bridge
 from daemon.config.durations import format_duration
-from daemon.config.errors import REQUIRED, ConfigError, _Bad, _show
+from daemon.config.errors import REQUIRED, ConfigError, _Bad, _Ctx, _show
 from daemon.config.kinds import _write_number
 from daemon.config.model import Config, DaemonConfig, InputConfig, ModelConfig
 from daemon.config.settings import _BY_SECTION, _SECTION, SECTIONS, SETTINGS, _children
 from daemon.endpoints import is_loopback
 from recursive.basis import MAX_TERMS
-
-
-@dataclass(frozen=True)
-class _Ctx:
-    """Where the keys being parsed live: ``prefix`` starts the full key path."""
-
-    file: str | None
-    where: str = ""
-    prefix: str = ""
-
-    def error(self, local: str, expected: str, got: str, hint: str = "") -> ConfigError:
-        key = f"{self.prefix}.{local}" if self.prefix else local
-        return ConfigError(self.file, key, expected, got, where=self.where, local_key=local,
-                           hint=hint)
 
 
 def _unknown(ctx: _Ctx, local: str, key: str, allowed: list[str], noun: str) -> ConfigError:
@@ -306,3 +291,20 @@ def demo_config() -> Config:
     """The built-in demo configuration (the packaged ``daemon/config/demo.toml``)."""
     text = resources.files("daemon.config").joinpath("demo.toml").read_text(encoding="utf-8")
     return loads(text, "<demo>")
+
+
+def loads_bridge(text: str, section: str, source: str = "<string>") -> BridgeConfig:
+    """The ``[section]`` bridge table of a configuration text, checked against its models."""
+    config = loads(text, source)  # the daemon's own checks first (and its models)
+    doc = tomllib.loads(text)
+    return parse_bridge(doc, section, source, config.models)
+
+
+def load_bridge(path: str | Path, section: str) -> BridgeConfig:
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(str(path), None, "a readable file", exc.strerror or str(exc)) from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError(str(path), None, "UTF-8 text", str(exc)) from None
+    return loads_bridge(text, section, str(path))
