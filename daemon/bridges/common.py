@@ -295,3 +295,30 @@ def read_output(frames, max_bytes: int = 1 << 24) -> tuple[str, str, dict]:
 async def backoff_sleep(attempt: int, first: float, most: float) -> None:
     """Wait before reconnection ``attempt`` (0, 1, ...): doubling from ``first`` to ``most``."""
     await asyncio.sleep(min(most, first * 2.0 ** min(attempt, 30)))
+
+
+def run_bridge(factory, config_path: str, section: str) -> int:
+    """Run one bridge process: its ``[section]`` of the config, SIGTERM/SIGINT to stop.
+
+    ``factory`` builds the bridge from its config; the bridge has ``run()`` and ``aclose()``
+    coroutines and a ``stop()`` that the signal handlers call (they only ask; the bridge's
+    own loop decides when it has stopped).
+    """
+    import asyncio
+    import signal
+
+    from daemon.config.loader import load_bridge
+
+    bridge = factory(load_bridge(config_path, section))
+
+    async def go():
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            loop.add_signal_handler(sig, bridge.stop)
+        try:
+            await bridge.run()
+        finally:
+            await bridge.aclose()
+
+    asyncio.run(go())
+    return 0

@@ -37,7 +37,7 @@ MAX_ROWS = 100_000
 
 
 class BadFile(ValueError):
-    pass
+    """A lab file that cannot be used; its message is the reason written beside it."""
 
 
 def _drawn(text: str) -> float:
@@ -203,21 +203,6 @@ class LabFolder:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.loader import load_bridge
+    from daemon.bridges.common import run_bridge
 
-    cfg = load_bridge(config_path, "lab_folder")
-    bridge = LabFolder(cfg)
-
-    async def go():
-        import signal
-
-        loop = asyncio.get_running_loop()
-        for sig in (signal.SIGTERM, signal.SIGINT):
-            loop.add_signal_handler(sig, bridge.stop)
-        try:
-            await bridge.run()
-        finally:
-            await bridge.aclose()
-
-    asyncio.run(go())
-    return 0
+    return run_bridge(LabFolder, config_path, "lab_folder")

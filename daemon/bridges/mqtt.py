@@ -47,7 +47,7 @@ MAX_PAYLOAD = 1 << 20
 
 
 class BadPayload(ValueError):
-    pass
+    """An MQTT payload that cannot be used; counted and logged with this message."""
 
 
 def _time(v) -> float:
@@ -289,21 +289,6 @@ class MqttBridge:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.loader import load_bridge
+    from daemon.bridges.common import run_bridge
 
-    cfg = load_bridge(config_path, "mqtt")
-    bridge = MqttBridge(cfg)
-
-    async def go():
-        import signal
-
-        loop = asyncio.get_running_loop()
-        for sig in (signal.SIGTERM, signal.SIGINT):
-            loop.add_signal_handler(sig, bridge.stop)
-        try:
-            await bridge.run()
-        finally:
-            await bridge.aclose()
-
-    asyncio.run(go())
-    return 0
+    return run_bridge(MqttBridge, config_path, "mqtt")

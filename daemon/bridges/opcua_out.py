@@ -358,21 +358,6 @@ class OpcUaOut:
 
 
 def main(config_path: str) -> int:
-    from daemon.config.loader import load_bridge
+    from daemon.bridges.common import run_bridge
 
-    cfg = load_bridge(config_path, "opcua_out")
-    bridge = OpcUaOut(cfg)
-
-    async def go():
-        import signal
-
-        loop = asyncio.get_running_loop()
-        for sig in (signal.SIGTERM, signal.SIGINT):
-            loop.add_signal_handler(sig, bridge.stop)
-        try:
-            await bridge.run()
-        finally:
-            await bridge.aclose()
-
-    asyncio.run(go())
-    return 0
+    return run_bridge(OpcUaOut, config_path, "opcua_out")

@@ -325,24 +325,8 @@ class ModelRunner:
         trust, marks = None, ()
         if waiting is not None:
             pred = _blanked(pred, waiting)
-        if self.monitor is None:
-            pass
-        elif waiting is not None and singles:
-            trust, marks = self._rows_with_waiting(ts, X, pred, waiting)
-        elif waiting is not None:
-            # the detectors see the rows that have a prediction (a start-up moment only)
-            ok = np.ones(len(ts), dtype=bool)
-            ok[waiting] = False
-            if ok.any():
-                last = int(np.flatnonzero(ok)[-1])
-                self.alerts += self.monitor.on_predictions(ts[last], X[ok], pred.std[ok],
-                                                           pred.leverage[ok], self.last_lab_t)
-        elif singles:
-            trust, marks = self.monitor.on_prediction_rows(ts, X, pred.std, pred.leverage,
-                                                           self.last_lab_t)
-        else:
-            self.alerts += self.monitor.on_predictions(ts[-1], X, pred.std, pred.leverage,
-                                                       self.last_lab_t)
+        if self.monitor is not None:
+            trust, marks = self._detect(ts, X, pred, singles, waiting)
         lo, hi = pred.interval(self.cfg.level)
         if not self.post.identified or self.frozen or self.last_lab_t is None:
             status = [self.status_at(ts[0])] * len(ts)
@@ -362,6 +346,30 @@ class ModelRunner:
         self.last_std = float(pred.std[-1])
         return PredBatch(t, ids, pred.mean, pred.std, pred.var, lo, hi, pred.dof, status,
                          trust, marks)
+
+    def _detect(self, ts, X, pred, singles: bool, waiting) -> tuple[list | None, list]:
+        """The detector steps of a batch: per sample for single samples, one per block.
+
+        Returns the per-row trust and events as :meth:`Monitor.on_prediction_rows` does
+        (``None, ()`` for a block, whose events go to :attr:`alerts`).
+        """
+        if singles:
+            if waiting is not None:
+                return self._rows_with_waiting(ts, X, pred, waiting)
+            return self.monitor.on_prediction_rows(ts, X, pred.std, pred.leverage,
+                                                   self.last_lab_t)
+        if waiting is None:
+            self.alerts += self.monitor.on_predictions(ts[-1], X, pred.std, pred.leverage,
+                                                       self.last_lab_t)
+            return None, ()
+        # the detectors see the rows that have a prediction (a start-up moment only)
+        ok = np.ones(len(ts), dtype=bool)
+        ok[waiting] = False
+        if ok.any():
+            last = int(np.flatnonzero(ok)[-1])
+            self.alerts += self.monitor.on_predictions(ts[last], X[ok], pred.std[ok],
+                                                       pred.leverage[ok], self.last_lab_t)
+        return None, ()
 
     def _rows_with_waiting(self, ts, X, pred, waiting) -> tuple[list, list]:
         """Per-sample detector steps of the rows that have a prediction; a waiting row
