@@ -449,3 +449,20 @@ def test_backtest_scenario_on_the_real_drift_preset():
     assert res.n_scored > 20
     assert [r["name"] for r in res.table()] == list(backtest.REFERENCES)
     assert all(math.isfinite(r["rmse"]) for r in res.table())
+
+
+@pytest.mark.parametrize("forgetting", [
+    {"forgetting": "offset", "half_life": None, "offset_drift": 2.0 ** 2 / 3600.0},
+    {"forgetting": "term_drift", "half_life": None, "offset_drift": 1e-3,
+     "linear_drift": 1e-6},
+])
+def test_summary_names_drift_policies_without_a_half_life(forgetting):
+    """tune may choose a drift policy with no half-life; the summary must still print it
+    (it once failed on the missing half-life and stopped the demo)."""
+    from daemon.config import demo_config
+    from daemon.workbench import plant
+
+    model = replace(demo_config().models[0], **forgetting)
+    res = backtest.backtest_scenario(plant.Scenario.stationary(days=6.0, seed=3), model)
+    text = backtest.summary_text(res, "ppm")
+    assert "recursive, offset drift" in text

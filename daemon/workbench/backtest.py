@@ -64,6 +64,7 @@ import numpy as np
 from scipy import special
 
 from daemon.config import Config, DaemonConfig, ModelConfig, format_duration
+from daemon.config.durations import format_drift
 from daemon.runtime import wire
 from daemon.runtime.alignment import apply_dead_time
 from daemon.workbench.historian import read_csv
@@ -871,7 +872,17 @@ def _policy(m: ModelConfig) -> str:
         return "no forgetting"
     if m.forgetting == "random_walk":
         return f"random walk q={m.q:g}"
-    return f"{m.forgetting}, half-life {format_duration(m.half_life)}"
+    parts = []
+    if m.forgetting in ("offset", "term_drift"):
+        for label, q in (("offset", m.offset_drift), ("linear terms", m.linear_drift),
+                         ("higher terms", m.higher_drift)):
+            if q:
+                parts.append(f"{label} drift {format_drift(q)}")
+    else:
+        parts.append(m.forgetting)
+    if m.half_life is not None:
+        parts.append(f"half-life {format_duration(m.half_life)}")
+    return ", ".join(parts) or m.forgetting
 
 
 def _ratio(scores: dict) -> float:
