@@ -383,6 +383,17 @@ class Posterior:
         return ri @ ri.T
 
     @property
+    def sqrt_information(self) -> np.ndarray:
+        """The upper-triangular ``R`` with ``R^T R = V^{-1}`` (read-only view).
+
+        ``scale_matrix = noise_var * (R^T R)^{-1}``. The posterior replaces this array on
+        each change of its state and never writes into it, so a caller may keep it.
+        """
+        v = self._R.view()
+        v.flags.writeable = False
+        return v
+
+    @property
     def scale_matrix(self) -> np.ndarray:
         """``noise_var * V``: the covariance (known noise) or the Student-t scale matrix."""
         return self.noise_var * self.unit_cov
