@@ -245,6 +245,17 @@ class Basis(ABC):
         flags = (A < self._lo) | (A > self._hi)
         return flags[0] if single else flags
 
+    def row_out_of_range(self, x: list) -> bool:
+        """``out_of_range(x).any()`` for one row given as a list of floats, without arrays."""
+        lim = self.__dict__.get("_limits")
+        if lim is None:
+            lim = self.__dict__["_limits"] = tuple(zip(self._lo.tolist(), self._hi.tolist(),
+                                                       strict=True))
+        for v, (lo, hi) in zip(x, lim, strict=True):
+            if v < lo or v > hi:
+                return True
+        return False
+
     def rows_out_of_range(self, X: Any) -> int:
         """Number of rows of ``X`` (k, d) with at least one reading :meth:`out_of_range`.
 

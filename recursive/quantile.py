@@ -12,7 +12,7 @@ import math
 import numpy as np
 from scipy import special
 
-__all__ = ["t_quantile"]
+__all__ = ["t_quantile", "t_quantile_scalar"]
 
 # Grid in x = 1/dof for dof >= 2 (x <= 1/2). Above X0 the cells are H wide; below it (dof
 # above 1/X0, about 833) they are log-uniform with ratio exp(LOG_STEP). With these widths the
@@ -101,6 +101,23 @@ def t_quantile(dof, p: float) -> np.ndarray:
     if grid.any():
         out[grid] = _interpolate(d[grid], p)
     return out.reshape(shape)
+
+
+# the last (dof, p, quantile) asked of t_quantile_scalar: between two lab results a
+# model's dof stays put (known noise, or no forgetting of the noise statistics), and the
+# quantile is a pure function of (dof, p), so reusing it changes no bit
+_last = (math.nan, math.nan, math.nan)
+
+
+def t_quantile_scalar(d: float, p: float) -> float:
+    """:func:`t_quantile` of one float ``dof`` (same bits), for a single prediction."""
+    global _last
+    ld, lp, lq = _last
+    if d == ld and p == lp:
+        return lq
+    q = _scalar(d, p)
+    _last = (d, p, q)
+    return q
 
 
 def _scalar(d: float, p: float) -> float:

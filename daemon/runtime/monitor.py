@@ -244,6 +244,18 @@ class Monitor:
             trust.append(self.trust.state)
         return trust, marks
 
+    def on_prediction_row(self, t: float, x: list, std: float, leverage: float,
+                          last_lab_t: float | None) -> tuple[list, list]:
+        """:meth:`on_prediction_rows` of one row (``x`` the raw inputs as floats), in plain
+        float arithmetic: the same values, bit for bit, and the same step."""
+        cfg = self.cfg
+        dist = None
+        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+            dist = self.region.distance_row(x)
+        ev = self._pred_step(t, std, leverage, dist, int(self.basis.row_out_of_range(x)),
+                             last_lab_t)
+        return [self.trust.state], [(0, ev)] if ev else []
+
     def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
         """True if no row would make a reason active and none is active or held now."""
         if self.lab_active or self.trust.level or self.trust.reasons:

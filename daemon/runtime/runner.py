@@ -259,6 +259,10 @@ class ModelRunner:
         posterior cannot promise that for a batch (`Posterior.rowwise`), rows are predicted
         one at a time.
         """
+        if singles and len(ts) == 1 and not self.delayed:
+            batch = self._predict_one(ts, rows, ids)
+            if batch is not None:
+                return batch
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
         waiting = None
@@ -272,6 +276,33 @@ class ModelRunner:
         else:
             pred = self.post.predict(self.basis(X), t=t)
         return self._finish(ts, t, X, ids, pred, singles, waiting)
+
+    def _predict_one(self, ts: list, rows, ids: list) -> PredBatch | None:
+        """:meth:`predict` of a single sample, the most common visit: one kernel call
+        (`Posterior.predict_rows`) and plain float arithmetic for the distribution, the
+        interval, the detectors and the status, with the same bits as the general path
+        (tested against it). None where that path does not apply (the general one then
+        runs): a posterior that is not row by row, or not identified yet."""
+        X = np.array(rows, dtype=float)
+        P = self.basis(X)
+        out = self.post.predict_rows(P, ts, self.cfg.level)
+        if out is None:
+            return None
+        mean, std, var, lo, hi, dof, lev = out
+        t0 = ts[0]
+        trust, marks = None, ()
+        if self.monitor is not None:
+            trust, marks = self.monitor.on_prediction_row(t0, X[0].tolist(), std[0], lev[0],
+                                                          self.last_lab_t)
+        last = self.last_lab_t
+        if not self.post.identified or self.frozen or last is None:
+            status = [self.status_at(t0)]
+        else:
+            status = ["stale" if t0 - last > self.cfg.stale_after else "learning"]
+        self.n_predictions += 1
+        self.last_mean, self.last_std = mean[0], std[0]
+        a = np.array((ts, mean, std, var, lo, hi, dof), dtype=float)
+        return PredBatch(a[0], ids, a[1], a[2], a[3], a[4], a[5], a[6], status, trust, marks)
 
     def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
         """The rows the predictions at ``ts`` use: each input at t - its dead time, looked

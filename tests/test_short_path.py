@@ -1,0 +1,192 @@
+"""The short-batch path (a model visit with a single sample) against the general path.
+
+`Posterior.predict_rows`, `ModelRunner._predict_one`, `Monitor.on_prediction_row`,
+`InputRegion.distance_row`, `Basis.row_out_of_range` and `t_quantile_scalar` promise the
+same bits as the array code they stand in for; the reference here is that array code (the
+general path), compared through MessagePack (the published encoding, nan bits included).
+The general path itself is checked against outside references in test_posterior_*.py,
+test_detect.py and test_monitor.py.
+"""
+
+from __future__ import annotations
+
+import math
+
+import msgpack
+import numpy as np
+import pytest
+
+from daemon.config import loads
+from daemon.runtime.runner import ModelRunner
+from recursive import Posterior, Stabilized, TermDrift
+from recursive.basis import Input, Polynomial
+from recursive.detect import InputRegion
+from recursive.quantile import t_quantile, t_quantile_scalar
+
+
+def packed(*values) -> bytes:
+    return msgpack.packb([np.asarray(v, dtype=float).tolist() for v in values])
+
+
+def general(post: Posterior, P: np.ndarray, ts: list, level: float):
+    pred = post.predict(P, t=np.asarray(ts, dtype=float))
+    lo, hi = pred.interval(level)
+    return pred.mean, pred.std, pred.var, lo, hi, pred.dof, pred.leverage
+
+
+POSTERIORS = {
+    "learned": dict(noise_prior=(0.5, 2.0), forgetting=Stabilized(30.0)),
+    "known": dict(noise_std=0.4, forgetting=Stabilized(30.0)),
+    "flat constant": dict(alpha=np.r_[0.0, np.ones(4)], noise_prior=(0.5, 0.0),
+                          forgetting=Stabilized(30.0)),
+    "term drift": dict(noise_prior=(0.5, 2.0),
+                       forgetting=TermDrift([1e-3, 0, 0, 0, 0], half_life=30.0)),
+}
+
+
+@pytest.mark.parametrize("kind", sorted(POSTERIORS))
+def test_predict_rows_has_the_bits_of_predict_and_interval(kind):
+    rng = np.random.default_rng(5)
+    post = Posterior(5, **POSTERIORS[kind])
+    assert post.rowwise
+    level = 0.9
+    checked = 0
+    for i in range(60):
+        phi = np.r_[1.0, rng.standard_normal(4)]
+        t = float(i * 3)
+        if i % 3:
+            post.update(phi, float(phi.sum() + 0.3 * rng.standard_normal()), t)
+        if not post.identified:
+            assert post.predict_rows(phi[None, :], [t + 1.0], level) is None
+            continue
+        # before, at and after the last update; far after it (most of it forgotten); and
+        # rows of one to four samples
+        for ts in ([t - 1.0], [t], [t + 0.5], [t + 400.0], [t + 1e5], [t, t + 2.0, t + 9.0],
+                   [t + 1.0, t + 1.0, t + 3.0, t + 50.0]):
+            P = np.r_[1.0, rng.standard_normal(4)] * np.ones((len(ts), 1))
+            P[:, 1:] += rng.standard_normal((len(ts), 4))
+            fast = post.predict_rows(P, ts, level)
+            assert packed(*fast) == packed(*general(post, P, ts, level)), (kind, i, ts)
+            checked += 1
+    assert checked > 100
+
+
+def test_predict_rows_declines_where_the_general_path_must_run():
+    from recursive import Exponential
+
+    rng = np.random.default_rng(6)
+    P = rng.standard_normal((1, 3))
+    assert Posterior(3, forgetting=Exponential(10.0)).predict_rows(P, [1.0], 0.95) is None
+    post = Posterior(3, forgetting=Stabilized(10.0))
+    for _ in range(5):
+        post.update(rng.standard_normal(3), 1.0)  # counts samples: no times
+    assert post.predict_rows(P, [1.0], 0.95) is None
+    timed = Posterior(3, forgetting=Stabilized(10.0))
+    timed.update(rng.standard_normal(3), 1.0, 0.0)
+    assert timed.predict_rows(P, [math.inf], 0.95) is None  # predict raises the error
+    with pytest.raises(ValueError):
+        timed.predict_rows(P, [1.0], 1.5)
+
+
+def test_quantile_scalar_and_its_memo_equal_the_array_function():
+    rng = np.random.default_rng(7)
+    dofs = np.r_[rng.uniform(0.5, 3000.0, 200), [math.inf, 2.0, 1.0, 0.0, -1.0, math.nan]]
+    for p in (0.975, 0.95, 0.5 + 0.99 / 2):
+        for d in dofs.tolist():
+            for _ in range(2):  # the second call is answered from the memo
+                assert packed(t_quantile_scalar(d, p)) == packed(t_quantile(np.array(d), p))
+
+
+def test_region_distance_row_equals_the_rowwise_distances():
+    rng = np.random.default_rng(8)
+    reg = InputRegion(4, 50.0, 3.0)
+    assert math.isnan(reg.distance_row([0.0] * 4))
+    for i in range(80):
+        reg.update(rng.standard_normal(4) * [1.0, 2.0, 0.1, 5.0])
+        x = (rng.standard_normal(4) * 3).tolist()
+        want = reg.distances(np.array([x]), rowwise=True)[0]
+        assert packed(reg.distance_row(x)) == packed(want), i
+    # a degenerate region (one input never moves): 0 at its mean, inf elsewhere
+    flat = InputRegion(2, 50.0, 3.0)
+    for _ in range(5):
+        flat.update([1.0, 2.0])
+    assert flat.distance_row([1.0, 2.0]) == 0.0 and flat.distance_row([1.0, 2.5]) == math.inf
+    assert packed(flat.distance_row([1.0, 2.5])) == packed(
+        flat.distances(np.array([[1.0, 2.5]]), rowwise=True)[0])
+
+
+def test_row_out_of_range_equals_out_of_range():
+    basis = Polynomial([Input("a", -1.0, 1.0), Input("b", 0.0, 10.0)], degree=2)
+    for x in ([0.0, 5.0], [-1.0, 10.0], [-1.5, 5.0], [0.0, 10.5], [math.nan, 5.0],
+              [2.0, -3.0]):
+        assert basis.row_out_of_range(x) == bool(basis.out_of_range(np.array(x)).any())
+
+
+MODEL_TOML = """
+[daemon]
+feeds = ["tcp://127.0.0.1:1"]
+publish = "tcp://127.0.0.1:2"
+control = "tcp://127.0.0.1:3"
+metrics = ""
+
+[[model]]
+name = "m"
+inputs = [{ tag = "a", lo = -3, hi = 3 }, { tag = "b", lo = -3, hi = 3 },
+          { tag = "c", lo = -3, hi = 3 }]
+[model.basis]
+kind = "polynomial"
+degree = %(degree)d
+[model.prior]
+alpha = 1.0
+[model.noise]
+guess = 0.5
+strength = 2.0
+[model.forgetting]
+policy = "stabilized"
+half_life = "1h"
+[model.lab]
+stale_after = "20m"
+[model.alerts]
+leverage_limit = 5.0
+region_limit = 2.5
+clear_count = 3
+clear_time = "5m"
+"""
+
+
+@pytest.mark.parametrize("degree", [1, 2])
+def test_a_single_sample_visit_gives_the_general_paths_batch_and_detector_state(degree):
+    cfg = loads(MODEL_TOML % {"degree": degree}).models[0]
+    fast, ref = ModelRunner(cfg), ModelRunner(cfg)
+    rng = np.random.default_rng(9)
+    w = rng.standard_normal(3)
+    seen = set()
+    for i in range(400):
+        t = 10.0 * i
+        # excursions out of the range and far from the learned region, a lab outage
+        x = rng.standard_normal(3) * (4.0 if i % 97 == 0 else 1.0)
+        if 150 < i < 260:
+            x[0] += 2.0
+        for r in (fast, ref):
+            r.add_features(t, x.tolist(), None)
+        if i % 5 == 0 and not 180 < i < 340:
+            y = float(x @ w + 0.2 * rng.standard_normal())
+            for r in (fast, ref):
+                r.learn(t, y, None)
+            continue
+        a = fast.predict([t], [x.tolist()], [None], singles=True)
+        # the general path, as predict runs it for rows that take no short path
+        X = np.array([x])
+        pred = ref.post.predict(ref.basis(X), t=np.array([t]))
+        b = ref._finish([t], np.array([t]), X, [None], pred, True, None)
+        assert packed(a.t, a.mean, a.std, a.var, a.lo, a.hi, a.dof) == packed(
+            b.t, b.mean, b.std, b.var, b.lo, b.hi, b.dof), i
+        assert (a.status, a.trust, list(a.marks)) == (b.status, b.trust, list(b.marks)), i
+        assert msgpack.packb(fast.monitor.to_state()) == msgpack.packb(ref.monitor.to_state())
+        assert (fast.last_mean, fast.last_std, fast.n_predictions) == (
+            ref.last_mean, ref.last_std, ref.n_predictions)
+        seen.update(a.status)
+        seen.add(a.trust[0])
+        seen.update(r["name"] for r in fast.monitor.reasons())
+    # the run went through the cases it was built for
+    assert {"learning", "stale", "caution", "normal"} <= seen
