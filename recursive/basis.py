@@ -37,9 +37,10 @@ SCHEMA_VERSION = 1
 #: One-dimensional polynomial families accepted by :class:`Polynomial`.
 FAMILIES = ("legendre", "chebyshev", "monomial")
 
-# The most terms a model may have: the C kernel works in fixed arrays of this size (its
-# MAX_N), and a soft sensor with more terms than lab results in months is not identifiable.
-MAX_TERMS = 256
+# The most terms a model may have: the C kernel's MAX_N (its R is then 8 MiB, and a lab
+# result costs an eigendecomposition of that size), and a soft sensor with more terms than
+# lab results in months is not identifiable.
+MAX_TERMS = 1024
 
 # Prefix used in term names for a factor of degree >= 2 (None: written as "tag^k").
 _NAME_PREFIX = {"legendre": "P", "chebyshev": "T", "monomial": None}
