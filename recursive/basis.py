@@ -246,6 +246,14 @@ class Basis(ABC):
         flags = (A < self._lo) | (A > self._hi)
         return flags[0] if single else flags
 
+    def row_terms(self, x: list) -> np.ndarray:
+        """``self(np.array([x]))`` for one row given as a list of floats: shape (1, n).
+
+        The affine bases (identity, degree 1) compute it in plain float arithmetic, the
+        same operations as the array path (same bits); the others take the array path.
+        """
+        return self._evaluate(np.array([x], dtype=np.float64))
+
     def row_out_of_range(self, x: list) -> bool:
         """``out_of_range(x).any()`` for one row given as a list of floats, without arrays."""
         lim = self.__dict__.get("_limits")
@@ -373,6 +381,9 @@ class Identity(Basis):
         out[:, 0] = 1.0
         out[:, 1:] = X
         return out
+
+    def row_terms(self, x: list) -> np.ndarray:
+        return np.array([[1.0, *x]], dtype=np.float64)
 
 
 def _graded_exponents(d: int, degree: int, interactions: bool) -> np.ndarray:
@@ -541,6 +552,20 @@ class Polynomial(Basis):
         for i, cols, powers in self._plan:
             out[:, cols] *= tab[powers, :, i].T
         return out
+
+    def row_terms(self, x: list) -> np.ndarray:
+        if self.degree != 1:
+            return super().row_terms(x)
+        if not self.scale:
+            return np.array([[1.0, *x]], dtype=np.float64)
+        lim = self.__dict__.get("_row_scale")
+        if lim is None:
+            lim = self.__dict__["_row_scale"] = tuple(zip(
+                self._lo.tolist(), self._hi.tolist(), self._width.tolist(), strict=True))
+        # _evaluate's ((X - lo) - (hi - X)) / width, elementwise
+        return np.array([[1.0, *[((v - lo) - (hi - v)) / w
+                                 for v, (lo, hi, w) in zip(x, lim, strict=True)]]],
+                        dtype=np.float64)
 
     def _spec(self) -> dict[str, Any]:
         return {

@@ -115,6 +115,31 @@ def test_region_distance_row_equals_the_rowwise_distances():
         flat.distances(np.array([[1.0, 2.5]]), rowwise=True)[0])
 
 
+def test_row_terms_equal_the_basis_of_the_row():
+    from recursive.basis import Identity
+
+    rng = np.random.default_rng(10)
+    inputs = [Input("a", -1.0, 1.0), Input("b", 0.0, 10.0), Input("c", 250.0, 400.0)]
+    bases = [Identity(inputs), Polynomial(inputs, degree=1),
+             Polynomial(inputs, degree=1, family="monomial", scale=False), Polynomial(inputs, degree=2),
+             Polynomial(inputs, degree=3, family="chebyshev")]
+    for basis in bases:
+        for _ in range(50):
+            x = (rng.standard_normal(3) * [1.0, 5.0, 100.0] + [0.0, 5.0, 300.0]).tolist()
+            assert packed(basis.row_terms(x)) == packed(basis(np.array([x]))), basis
+
+
+def test_region_distance_row_with_non_finite_readings():
+    rng = np.random.default_rng(11)
+    reg = InputRegion(3, 50.0, 3.0)
+    for _ in range(20):
+        reg.update(rng.standard_normal(3))
+    for x in ([math.inf, 0.0, 0.0], [0.0, 0.0, -math.inf], [math.nan, 1.0, 0.0],
+              [1e308, 1e308, 0.0]):
+        assert packed(reg.distance_row(x)) == packed(
+            reg.distances(np.array([x]), rowwise=True)[0]), x
+
+
 def test_row_out_of_range_equals_out_of_range():
     basis = Polynomial([Input("a", -1.0, 1.0), Input("b", 0.0, 10.0)], degree=2)
     for x in ([0.0, 5.0], [-1.0, 10.0], [-1.5, 5.0], [0.0, 10.5], [math.nan, 5.0],

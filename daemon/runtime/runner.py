@@ -283,16 +283,15 @@ class ModelRunner:
         interval, the detectors and the status, with the same bits as the general path
         (tested against it). None where that path does not apply (the general one then
         runs): a posterior that is not row by row, or not identified yet."""
-        X = np.array(rows, dtype=float)
-        P = self.basis(X)
-        out = self.post.predict_rows(P, ts, self.cfg.level)
+        x = np.array(rows[0], dtype=float).tolist()
+        out = self.post.predict_rows(self.basis.row_terms(x), ts, self.cfg.level)
         if out is None:
             return None
         mean, std, var, lo, hi, dof, lev = out
         t0 = ts[0]
         trust, marks = None, ()
         if self.monitor is not None:
-            trust, marks = self.monitor.on_prediction_row(t0, X[0].tolist(), std[0], lev[0],
+            trust, marks = self.monitor.on_prediction_row(t0, x, std[0], lev[0],
                                                           self.last_lab_t)
         last = self.last_lab_t
         if not self.post.identified or self.frozen or last is None:

@@ -242,19 +242,31 @@ class InputRegion:
         if cached is None:
             chol = self._factor()
             if isinstance(chol, str):
-                cached = (self._mean.tolist(), None)
+                cached = (self._mean.tolist(), None, None)
             else:
                 if self._chol_inv is None:
                     inv, info = _dtrtri(chol, lower=1)
                     if info != 0:  # pragma: no cover - a Cholesky factor is non-singular
                         raise np.linalg.LinAlgError(f"singular region factor (info={info})")
                     self._chol_inv = inv
-                cached = (self._mean.tolist(), self._chol_inv.tolist())
+                Ml = self._chol_inv.tolist()
+                # each row of the (lower-triangular) inverse without its trailing zeros
+                cut = []
+                for m in Ml:
+                    k = len(m)
+                    while k > 1 and m[k - 1] == 0.0:
+                        k -= 1
+                    cut.append(m[:k])
+                cached = (self._mean.tolist(), Ml, cut)
             self._row_cache = cached
-        mean, Ml = cached
+        mean, Ml, cut = cached
         d = [a - b for a, b in zip(x, mean, strict=True)]
         if Ml is None:
             return math.inf if any(v != 0 for v in d) else 0.0
+        if math.isfinite(sum(d)):
+            # a finite d_j times a zero adds a zero, which changes no sum (y + 0.0 == y,
+            # a -0.0 only where y is 0 and then squared): the trailing terms are skipped
+            return math.sqrt(_row_sq_cut(d, cut))
         return math.sqrt(_row_sq(d, Ml))
 
     def step(self, x: Any, learn: bool = False) -> RegionStep:
@@ -301,5 +313,16 @@ def _row_sq(d: list, Ml: list) -> float:
         y = d[0] * m[0]
         for dj, mj in zip(d[1:], m[1:], strict=True):
             y = y + dj * mj
+        acc = y * y if acc is None else acc + y * y
+    return acc
+
+
+def _row_sq_cut(d: list, cut: list) -> float:
+    """:func:`_row_sq` with row ``i`` of the matrix cut after its last nonzero entry."""
+    acc = None
+    for m in cut:
+        y = d[0] * m[0]
+        for j in range(1, len(m)):
+            y = y + d[j] * m[j]
         acc = y * y if acc is None else acc + y * y
     return acc
