@@ -121,8 +121,8 @@ def test_row_terms_equal_the_basis_of_the_row():
     rng = np.random.default_rng(10)
     inputs = [Input("a", -1.0, 1.0), Input("b", 0.0, 10.0), Input("c", 250.0, 400.0)]
     bases = [Identity(inputs), Polynomial(inputs, degree=1),
-             Polynomial(inputs, degree=1, family="monomial", scale=False), Polynomial(inputs, degree=2),
-             Polynomial(inputs, degree=3, family="chebyshev")]
+             Polynomial(inputs, degree=1, family="monomial", scale=False),
+             Polynomial(inputs, degree=2), Polynomial(inputs, degree=3, family="chebyshev")]
     for basis in bases:
         for _ in range(50):
             x = (rng.standard_normal(3) * [1.0, 5.0, 100.0] + [0.0, 5.0, 300.0]).tolist()
