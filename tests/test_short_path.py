@@ -215,3 +215,17 @@ def test_a_single_sample_visit_gives_the_general_paths_batch_and_detector_state(
         seen.update(r["name"] for r in fast.monitor.reasons())
     # the run went through the cases it was built for
     assert {"learning", "stale", "caution", "normal"} <= seen
+
+
+def test_quantile_cells_of_a_batch_equal_those_of_its_rows_alone():
+    # the batch path takes the uniform cells (dof up to 833) of all rows at once; rows alone
+    # take t_quantile_scalar. Dofs on both sides of that bound, and on cell boundaries.
+    rng = np.random.default_rng(12)
+    x0, h = 1.2e-3, 1.2e-5
+    edges = 1.0 / (x0 + h * rng.integers(0, 41000, 200))
+    for dof in (rng.uniform(2.0, 800.0, 500), np.exp(rng.uniform(np.log(2.0), 14.0, 500)),
+                np.r_[edges, np.nextafter(edges, 0), np.nextafter(edges, np.inf)]):
+        for p in (0.975, 0.9995):
+            whole = t_quantile(dof, p)
+            alone = [t_quantile_scalar(d, p) for d in dof.tolist()]
+            assert packed(whole) == packed(alone)
