@@ -1,6 +1,6 @@
 """The short-batch path (a model visit with a single sample) against the general path.
 
-`Posterior.predict_rows`, `ModelRunner._predict_one`, `Monitor.on_prediction_row`,
+`Posterior.predict_rows`, `ModelRunner._predict_few`, `Monitor.on_prediction_row`,
 `InputRegion.distance_row`, `Basis.row_out_of_range` and `t_quantile_scalar` promise the
 same bits as the array code they stand in for; the reference here is that array code (the
 general path), compared through MessagePack (the published encoding, nan bits included).
@@ -180,41 +180,52 @@ clear_time = "5m"
 
 
 @pytest.mark.parametrize("degree", [1, 2])
-def test_a_single_sample_visit_gives_the_general_paths_batch_and_detector_state(degree):
+def test_a_visit_of_a_few_samples_gives_the_general_paths_batch_and_detector_state(degree):
     cfg = loads(MODEL_TOML % {"degree": degree}).models[0]
     fast, ref = ModelRunner(cfg), ModelRunner(cfg)
     rng = np.random.default_rng(9)
     w = rng.standard_normal(3)
     seen = set()
-    for i in range(400):
-        t = 10.0 * i
-        # excursions out of the range and far from the learned region, a lab outage
-        x = rng.standard_normal(3) * (4.0 if i % 97 == 0 else 1.0)
-        if 150 < i < 260:
-            x[0] += 2.0
-        for r in (fast, ref):
-            r.add_features(t, x.tolist(), None)
-        if i % 5 == 0 and not 180 < i < 340:
-            y = float(x @ w + 0.2 * rng.standard_normal())
+    t = 0.0
+    for i in range(300):
+        k = int(rng.choice([1, 1, 1, 2, 3, 4]))  # samples in this visit
+        ts, xs = [], []
+        for _ in range(k):
+            t += 10.0
+            # excursions out of the range and far from the learned region, a lab outage
+            x = rng.standard_normal(3) * (4.0 if rng.random() < 0.01 else 1.0)
+            if 100 < i < 170:
+                x[0] += 2.0
             for r in (fast, ref):
-                r.learn(t, y, None)
+                r.add_features(t, x.tolist(), None)
+            ts.append(t)
+            xs.append(x.tolist())
+        if i % 4 == 0 and not 120 < i < 230:
+            y = float(np.array(xs[-1]) @ w + 0.2 * rng.standard_normal())
+            for r in (fast, ref):
+                r.learn(ts[-1], y, None)
             continue
-        a = fast.predict([t], [x.tolist()], [None], singles=True)
+        a = fast.predict(ts, xs, [None] * k, singles=True)
         # the general path, as predict runs it for rows that take no short path
-        X = np.array([x])
-        pred = ref.post.predict(ref.basis(X), t=np.array([t]))
-        b = ref._finish([t], np.array([t]), X, [None], pred, True, None)
+        X = np.array(xs)
+        pred = ref.post.predict(ref.basis(X), t=np.array(ts))
+        b = ref._finish(ts, np.array(ts), X, [None] * k, pred, True, None)
         assert packed(a.t, a.mean, a.std, a.var, a.lo, a.hi, a.dof) == packed(
             b.t, b.mean, b.std, b.var, b.lo, b.hi, b.dof), i
-        assert (a.status, a.trust, list(a.marks)) == (b.status, b.trust, list(b.marks)), i
+        # the trust published with each row (None: the state after the visit, for all)
+        published = [ref.trust] * k if b.trust is None else b.trust
+        assert (a.status, a.trust, list(a.marks)) == (b.status, published, list(b.marks)), i
         assert msgpack.packb(fast.monitor.to_state()) == msgpack.packb(ref.monitor.to_state())
         assert (fast.last_mean, fast.last_std, fast.n_predictions) == (
             ref.last_mean, ref.last_std, ref.n_predictions)
         seen.update(a.status)
-        seen.add(a.trust[0])
+        seen.update(a.trust)
         seen.update(r["name"] for r in fast.monitor.reasons())
-    # the run went through the cases it was built for
-    assert {"learning", "stale", "caution", "normal"} <= seen
+        seen.add(("marks", bool(a.marks)))
+        seen.add(("quiet", b.trust is None and k > 1))
+    # the run went through the cases it was built for (quiet: visits of several samples
+    # that the general path steps once)
+    assert {"learning", "stale", "caution", "normal", ("marks", True), ("quiet", True)} <= seen
 
 
 def test_quantile_cells_of_a_batch_equal_those_of_its_rows_alone():
