@@ -37,9 +37,10 @@ SCHEMA_VERSION = 1
 #: One-dimensional polynomial families accepted by :class:`Polynomial`.
 FAMILIES = ("legendre", "chebyshev", "monomial")
 
-# The most terms a model may have: the C kernel works in fixed arrays of this size (its
-# MAX_N), and a soft sensor with more terms than lab results in months is not identifiable.
-MAX_TERMS = 256
+# The most terms a model may have: the C kernel's MAX_N (its R is then 8 MiB, and a lab
+# result costs an eigendecomposition of that size), and a soft sensor with more terms than
+# lab results in months is not identifiable.
+MAX_TERMS = 1024
 
 # Prefix used in term names for a factor of degree >= 2 (None: written as "tag^k").
 _NAME_PREFIX = {"legendre": "P", "chebyshev": "T", "monomial": None}
@@ -245,6 +246,25 @@ class Basis(ABC):
         flags = (A < self._lo) | (A > self._hi)
         return flags[0] if single else flags
 
+    def row_terms(self, x: list) -> np.ndarray:
+        """``self(np.array([x]))`` for one row given as a list of floats: shape (1, n).
+
+        The affine bases (identity, degree 1) compute it in plain float arithmetic, the
+        same operations as the array path (same bits); the others take the array path.
+        """
+        return self._evaluate(np.array([x], dtype=np.float64))
+
+    def row_out_of_range(self, x: list) -> bool:
+        """``out_of_range(x).any()`` for one row given as a list of floats, without arrays."""
+        lim = self.__dict__.get("_limits")
+        if lim is None:
+            lim = self.__dict__["_limits"] = tuple(zip(self._lo.tolist(), self._hi.tolist(),
+                                                       strict=True))
+        for v, (lo, hi) in zip(x, lim, strict=True):
+            if v < lo or v > hi:
+                return True
+        return False
+
     def rows_out_of_range(self, X: Any) -> int:
         """Number of rows of ``X`` (k, d) with at least one reading :meth:`out_of_range`.
 
@@ -361,6 +381,9 @@ class Identity(Basis):
         out[:, 0] = 1.0
         out[:, 1:] = X
         return out
+
+    def row_terms(self, x: list) -> np.ndarray:
+        return np.array([[1.0, *x]], dtype=np.float64)
 
 
 def _graded_exponents(d: int, degree: int, interactions: bool) -> np.ndarray:
@@ -529,6 +552,20 @@ class Polynomial(Basis):
         for i, cols, powers in self._plan:
             out[:, cols] *= tab[powers, :, i].T
         return out
+
+    def row_terms(self, x: list) -> np.ndarray:
+        if self.degree != 1:
+            return super().row_terms(x)
+        if not self.scale:
+            return np.array([[1.0, *x]], dtype=np.float64)
+        lim = self.__dict__.get("_row_scale")
+        if lim is None:
+            lim = self.__dict__["_row_scale"] = tuple(zip(
+                self._lo.tolist(), self._hi.tolist(), self._width.tolist(), strict=True))
+        # _evaluate's ((X - lo) - (hi - X)) / width, elementwise
+        return np.array([[1.0, *[((v - lo) - (hi - v)) / w
+                                 for v, (lo, hi, w) in zip(x, lim, strict=True)]]],
+                        dtype=np.float64)
 
     def _spec(self) -> dict[str, Any]:
         return {

@@ -41,6 +41,8 @@ _COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_l
 # lab results remembered for learning a late one in drawn-time order (besides the feature
 # buffer's span): each holds a snapshot, and a late result re-applies those drawn after it
 MAX_REWIND = 64
+# a visit with at most this many single samples takes the short path (_predict_few)
+_FEW = 4
 
 
 class _Offered:
@@ -259,6 +261,10 @@ class ModelRunner:
         posterior cannot promise that for a batch (`Posterior.rowwise`), rows are predicted
         one at a time.
         """
+        if singles and 0 < len(ts) <= _FEW and not self.delayed:
+            batch = self._predict_few(ts, rows, ids)
+            if batch is not None:
+                return batch
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
         waiting = None
@@ -272,6 +278,43 @@ class ModelRunner:
         else:
             pred = self.post.predict(self.basis(X), t=t)
         return self._finish(ts, t, X, ids, pred, singles, waiting)
+
+    def _predict_few(self, ts: list, rows, ids: list) -> PredBatch | None:
+        """:meth:`predict` of a few single samples (most visits have one): one kernel call
+        (`Posterior.predict_rows`) and plain float arithmetic for the distribution, the
+        interval, the detectors and the status, with the same bits as the general path
+        (tested against it). None where that path does not apply (the general one then
+        runs): a posterior that is not row by row, or not identified yet."""
+        xs = [np.array(r, dtype=float).tolist() for r in rows]
+        basis = self.basis
+        P = basis.row_terms(xs[0]) if len(xs) == 1 else np.concatenate(
+            [basis.row_terms(x) for x in xs])
+        out = self.post.predict_rows(P, ts, self.cfg.level)
+        if out is None:
+            return None
+        mean, std, var, lo, hi, dof, lev = out
+        k = len(ts)
+        trust, marks = None, ()
+        last = self.last_lab_t
+        if self.monitor is not None:
+            # each row stepped as if it had come alone: what on_prediction_rows publishes
+            # (its shortcut for quiet rows steps only the last one, to the same effect)
+            step = self.monitor.on_prediction_row
+            trust, marks = [], []
+            for j in range(k):
+                tr, mk = step(ts[j], xs[j], std[j], lev[j], last)
+                trust += tr
+                if mk:
+                    marks.append((j, mk[0][1]))
+        if not self.post.identified or self.frozen or last is None:
+            status = [self.status_at(ts[0])] * k
+        else:
+            sa = self.cfg.stale_after
+            status = ["stale" if t - last > sa else "learning" for t in ts]
+        self.n_predictions += k
+        self.last_mean, self.last_std = mean[-1], std[-1]
+        a = np.array((ts, mean, std, var, lo, hi, dof), dtype=float)
+        return PredBatch(a[0], ids, a[1], a[2], a[3], a[4], a[5], a[6], status, trust, marks)
 
     def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
         """The rows the predictions at ``ts`` use: each input at t - its dead time, looked

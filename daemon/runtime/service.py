@@ -524,7 +524,8 @@ class Service:
         publisher that records what would have been sent.
         """
         max_bytes = self.config.daemon.max_message_bytes
-        specs = {name: r.spec for name, r in self.runners.items()}
+        # a view of the runners' specs, not a copy: nothing per model on each wake-up
+        specs = _Specs(self.runners)
         pending: dict[str, _Pending] = {}
         if not batch:
             return
@@ -983,6 +984,23 @@ def _future_detail(ts, now: float) -> str:
                     f"epoch {unit} (t / {factor:g} is within a year of now): send seconds")
     return (f"t={t!r} is {ahead:.3g} s ahead of this host's clock (more than "
             "daemon.future_tolerance); check the publisher's clock and time unit")
+
+
+class _Specs:
+    """What `wire.decode_feed` asks of the models: ``get(name)`` -> ``(tags, index)``.
+
+    Looks the runner up when asked, so the service builds nothing per model on a wake-up
+    and always sees its current runners.
+    """
+
+    __slots__ = ("_runners",)
+
+    def __init__(self, runners: dict):
+        self._runners = runners
+
+    def get(self, name):
+        r = self._runners.get(name)
+        return None if r is None else r.spec
 
 
 def _topic(frames) -> str:
