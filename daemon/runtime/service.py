@@ -66,8 +66,8 @@ class StateError(StoreError):
     """The state folder is intact but its content cannot be used (schema, bad record)."""
 
 PUB_LINGER_MS = 2000
-COMMANDS = ("ping", "status", "posterior", "detectors", "acknowledge", "freeze", "resume",
-            "reset", "checkpoint", "reload")
+COMMANDS = ("ping", "status", "posterior", "sensitivities", "detectors", "acknowledge",
+            "freeze", "resume", "reset", "checkpoint", "reload")
 
 
 # most single samples of a model with dead times predicted together (see _feed)
@@ -282,7 +282,8 @@ class Service:
         if runner is None:
             raise StateError(f"record for model {name!r}, which the state does not hold")
         if kind == "ctl":
-            runner.control(record["cmd"])
+            # "note": the reason, who and when of a freeze or resume (absent in older logs)
+            runner.control(record["cmd"], record.get("note"))
             return
         try:
             runner.replay(record)
@@ -738,6 +739,8 @@ class Service:
             if event["kind"] == "state":
                 log.warning("trust %s: %s -> %s (%s)", runner.name, event["old"], event["new"],
                             ", ".join(r["name"] for r in event["reasons"]) or "no reasons")
+            elif event["kind"] == "action" and event["action"] in ("freeze", "resume"):
+                pass  # logged by the control command, with who and why
             elif event["kind"] == "action":
                 log.warning("%s: %s after %s", runner.name, event["action"], event["reason"])
             self.pub.send_multipart([topic, wire.packb(event)])
@@ -804,31 +807,58 @@ class Service:
         name = msg.get("model")
         runner = self.runners.get(name) if isinstance(name, str) else None
         if runner is None:
-            return {"ok": False, "error": f"{cmd} needs \"model\": one of "
-                                          f"{', '.join(sorted(self.runners))}; "
-                                          f"got {wire.show(name)}"}
-        if cmd == "posterior":
-            return {"ok": True, "model": name, **runner.posterior()}
+            models = sorted(self.runners)
+            what = ("no model given" if name is None
+                    else f"no model {wire.show(name)} in this daemon")
+            return {"ok": False, "error": f"{cmd} needs a model ({what}); models: "
+                                          f"{', '.join(models) or 'none'}",
+                    "needs": "model", "models": models}
+        if cmd in ("posterior", "sensitivities"):
+            at = msg.get("at")
+            if at is not None and not isinstance(at, dict):
+                return {"ok": False, "error": f"\"at\" must be a map {{tag: value}}, got "
+                                              f"{wire.show(at)}"}
+            try:
+                sens = runner.sensitivities(at)
+            except (ValueError, TypeError) as exc:
+                return {"ok": False, "error": str(exc)[:300]}
+            if cmd == "sensitivities":
+                return {"ok": True, "model": name, **sens}
+            return {"ok": True, "model": name, **runner.posterior(), "sensitivities": sens}
         if cmd in ("detectors", "acknowledge"):
             if runner.monitor is None:
                 return {"ok": False, "error": f"alerts are disabled for {name} "
                                               "([model.alerts] enabled = false)"}
             if cmd == "detectors":
                 return {"ok": True, "model": name, **runner.monitor.view()}
-        self._control_action(runner, cmd)
+        note = None
+        if cmd in ("freeze", "resume"):
+            note, error = _control_note(msg)
+            if error:
+                return {"ok": False, "error": error}
+        self._control_action(runner, cmd, note)
         reply = {"ok": True, "model": name, "command": cmd}
+        if note is not None:
+            reply["note"] = runner.learning_note
         if cmd == "acknowledge":
             reply["state"] = runner.monitor.state
         return reply
 
-    def _control_action(self, runner: ModelRunner, cmd: str) -> None:
-        runner.control(cmd)
-        self._log({"k": "ctl", "m": runner.name, "cmd": cmd})
+    def _control_action(self, runner: ModelRunner, cmd: str, note: dict | None = None) -> None:
+        runner.control(cmd, note)
+        record = {"k": "ctl", "m": runner.name, "cmd": cmd}
+        if note is not None:
+            record["note"] = note
+        self._log(record)
         if self.store is not None:
             self.store.sync()  # acknowledged actions are durable in either fsync mode
         if self.pub is not None and runner.alerts:
             self._alerts(runner)
-        log.info("control: %s %s", cmd, runner.name)
+        if note is not None:
+            log.info("control: %s %s by %s: %s", cmd, runner.name, note["by"] or "(unnamed)",
+                     note["reason"] or "(no reason given)")
+        else:
+            log.info("control: %s %s", cmd, runner.name)
 
     def state_status(self) -> dict | None:
         """The state folder's part of the ``status`` reply (None in memory)."""
@@ -990,6 +1020,25 @@ def _topic(frames) -> str:
         return bytes(frames[0]).decode("utf-8") if frames else ""
     except UnicodeDecodeError:
         return ""
+
+
+def _control_note(msg: dict) -> tuple[dict | None, str | None]:
+    """The reason and who of a freeze or resume request, and the wall-clock time it came.
+
+    Both are optional strings (``reason`` up to 500 characters, ``by`` up to 100); the time
+    is only an audit stamp, never used for learning.
+    """
+    note = {}
+    for key, limit in (("reason", 500), ("by", 100)):
+        value = msg.get(key, "")
+        if value is None:
+            value = ""
+        if not isinstance(value, str) or len(value) > limit:
+            return None, (f"{key} must be a text of at most {limit} characters, got "
+                          f"{wire.show(value)}")
+        note[key] = value
+    note["at"] = time.time()
+    return note, None
 
 
 def _plain(obj):

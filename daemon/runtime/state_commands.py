@@ -136,7 +136,11 @@ def _summarize_records(info: dict, first_after: int, models: dict) -> None:
                 m["lab_records_after"] += 1
                 m["last_lab_record_t"] = rec.get("t")
             elif kind == "ctl":
-                m["actions_after"].append(rec.get("cmd"))
+                note = rec.get("note") or {}
+                why = " ".join(part for part in (
+                    f"by {note['by']}" if note.get("by") else "",
+                    f"({note['reason']})" if note.get("reason") else "") if part)
+                m["actions_after"].append(f"{rec.get('cmd')} {why}".strip())
 
 
 def _new_entry(rec: dict) -> dict:

@@ -39,6 +39,7 @@ from daemon.runtime.security import ClientKeys, CurveServer, Handshake, apply_cl
 
 __all__ = [
     "FORMAT",
+    "Counter",
     "RecordReader",
     "RecordWriter",
     "Screen",
@@ -63,7 +64,7 @@ MAX_FRAME = 1 << 28
 class RecordWriter:
     """Append messages to a record file, writing the header line if the file is new."""
 
-    def __init__(self, path, *, endpoint: str = "", topics=TOPICS):
+    def __init__(self, path, *, endpoint: str = "", topics=TOPICS, models: dict | None = None):
         self.path = os.fspath(path)
         exists = os.path.exists(self.path) and os.path.getsize(self.path) > 0
         if exists:
@@ -71,6 +72,9 @@ class RecordWriter:
         self._fh = open(self.path, "ab")
         if not exists:
             head = {"created": time.time(), "endpoint": endpoint, "topics": list(topics)}
+            if models:
+                # what the config says of each model: target tag, unit, level, detectors
+                head["models"] = models
             self._fh.write(f"{FORMAT} {json.dumps(head, sort_keys=True)}\n".encode("ascii"))
         self.n = 0
 
@@ -119,6 +123,9 @@ class RecordReader:
     def __init__(self, path, *, raw: bool = False):
         self.path = os.fspath(path)
         self.header, self._start = _read_header(self.path)
+        # optional: {model: {"target", "unit", ...}} when the recorder was given a config
+        self.models = self.header.get("models") if isinstance(self.header.get("models"),
+                                                              dict) else {}
         self.raw = raw
         self.truncated = False
         self.n = 0
@@ -283,17 +290,61 @@ def _wait(sock: zmq.Socket, hs: Handshake, ms: int) -> bool:
     return sock in ready
 
 
+class Counter:
+    """What a recording has taken so far, shown on ``stream`` (stderr), never in the file.
+
+    On a terminal one line is rewritten in place (at most every ``every_tty`` seconds);
+    elsewhere a line is printed every ``every`` seconds. `done` prints the final count.
+    """
+
+    def __init__(self, stream=None, *, every: float = 10.0, every_tty: float = 0.5):
+        self.stream = stream if stream is not None else sys.stderr
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.every = every_tty if self.tty else every
+        self.kinds = {"pred": 0, "fit": 0, "alert": 0}
+        self.n = 0
+        self.start = time.monotonic()
+        self._shown = self.start
+
+    def add(self, topic: bytes) -> None:
+        self.n += 1
+        kind = topic.partition(b"/")[0].decode("ascii", "replace")
+        if kind in self.kinds:
+            self.kinds[kind] += 1
+
+    def text(self) -> str:
+        kinds = ", ".join(f"{v} {k}" for k, v in self.kinds.items())
+        return (f"record: {self.n} message{'s' if self.n != 1 else ''} ({kinds}) in "
+                f"{_age(time.monotonic() - self.start)}")
+
+    def tick(self) -> None:
+        now = time.monotonic()
+        if now - self._shown < self.every:
+            return
+        self._shown = now
+        self.stream.write(("\r\x1b[K" if self.tty else "") + self.text()
+                          + ("" if self.tty else "\n"))
+        self.stream.flush()
+
+    def done(self, path) -> None:
+        self.stream.write(("\r\x1b[K" if self.tty else "") + self.text()
+                          + f", appended to {os.fspath(path)}\n")
+        self.stream.flush()
+
+
 def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Event | None = None,
            duration: float | None = None, count: int | None = None,
-           ctx: zmq.Context | None = None, curve: ClientKeys | None = None) -> int:
+           ctx: zmq.Context | None = None, curve: ClientKeys | None = None,
+           described: dict | None = None, counter: Counter | None = None) -> int:
     """Subscribe to ``endpoint`` and append every message to the record file ``path``.
 
     Runs until ``stop`` is set, ``duration`` seconds have passed or ``count`` messages were
     written; returns the number written. ``models`` restricts the topics to those models.
     The file is flushed whenever the stream pauses and at least every quarter second.
-    ``curve`` makes the subscriber a CURVE client. Raises
-    :class:`~daemon.runtime.security.HandshakeError` when the daemon refuses the connection
-    (what was written until then stays in the file).
+    ``curve`` makes the subscriber a CURVE client. ``described`` ({model: {"target",
+    "unit", ...}}, from the config) goes into the header of a new file; ``counter`` shows
+    the count while it runs. Raises :class:`~daemon.runtime.security.HandshakeError` when
+    the daemon refuses the connection (what was written until then stays in the file).
     """
     own = ctx is None
     ctx = ctx or zmq.Context()
@@ -301,13 +352,15 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
     deadline = None if duration is None else time.monotonic() + duration
     n = 0
     try:
-        with RecordWriter(path, endpoint=endpoint, topics=topics) as out:
+        with RecordWriter(path, endpoint=endpoint, topics=topics, models=described) as out:
             last_flush = time.monotonic()
             while (stop is None or not stop.is_set()) and (count is None or n < count):
                 now = time.monotonic()
                 if deadline is not None and now >= deadline:
                     break
                 wait = 100 if deadline is None else max(0, min(100, int((deadline - now) * 1e3)))
+                if counter is not None:
+                    counter.tick()
                 if not _wait(sock, hs, wait):
                     out.flush()
                     last_flush = time.monotonic()
@@ -321,6 +374,8 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
                         continue
                     out.write(time.time(), topic, payload)
                     n += 1
+                    if counter is not None:
+                        counter.add(topic)
                 if time.monotonic() - last_flush > 0.25:
                     out.flush()
                     last_flush = time.monotonic()
