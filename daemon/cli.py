@@ -103,6 +103,8 @@ def _ctl_request(args) -> tuple[dict | None, str | None]:
     msg = {"cmd": args.command}
     if args.model:
         msg["model"] = args.model
+    if args.command == "posterior":
+        msg["sensitivities"] = True
     if args.command in ("freeze", "resume"):
         if args.command == "freeze" and not args.reason:
             return None, ('freeze needs a reason: add --reason "WHY" (e.g. --reason "analyzer '

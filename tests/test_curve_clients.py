@@ -144,7 +144,8 @@ def _ask(ctx, endpoint, keyring, name, msg):
 # ---------------------------------------------------------------------------------- ctl
 def test_ctl_with_the_admin_key_gets_the_reply(curve_daemon, keyring, capsys):
     d = curve_daemon()
-    assert main(["ctl", "ping", "--endpoint", d.ctl_ep, *_keys(keyring, "operator")]) == EXIT_OK
+    assert main(["ctl", "ping", "--endpoint", d.ctl_ep, "--json",
+                 *_keys(keyring, "operator")]) == EXIT_OK
     assert '"ok": true' in capsys.readouterr().out
 
 
@@ -226,7 +227,8 @@ def test_ctl_refuses_an_oversized_request_before_sending(start_service, capsys):
     assert f"at most {CONTROL_MAX_BYTES}" in err and "no reply" not in err
     # the limit is the daemon's: the largest allowed request is answered...
     top = _request_of(CONTROL_MAX_BYTES)
-    assert main(["ctl", top["cmd"], "--model", top["model"], "--endpoint", ep]) == EXIT_RUNTIME
+    assert main(["ctl", top["cmd"], "--model", top["model"], "--endpoint", ep,
+                 "--json"]) == EXIT_RUNTIME
     assert '"ok": false' in capsys.readouterr().out
     # ...and one byte more is dropped unanswered by libzmq (ZMQ_MAXMSGSIZE), as ctl warns
     req = h.ctx.socket(zmq.REQ)

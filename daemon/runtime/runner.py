@@ -709,16 +709,18 @@ class ModelRunner:
         (it matters only for bases of degree 2 or more).
         """
         x0, source, t = self.operating_point(at)
-        J = self.basis.jacobian(x0)
-        w = self.post.mean
-        cov = self.post.cov
         sens, std = [], []
-        for i in range(len(self.tags)):
-            g = J[:, i]
-            used = np.flatnonzero(g)
-            sens.append(float(w[used] @ g[used]))
-            var = float(g[used] @ cov[np.ix_(used, used)] @ g[used]) if used.size else 0.0
-            std.append(math.sqrt(var) if var >= 0 else math.nan)
+        # nan or inf where the posterior is not identified yet, or a reading overflows
+        with np.errstate(invalid="ignore", over="ignore"):
+            J = self.basis.jacobian(x0)
+            w = self.post.mean
+            cov = self.post.cov
+            for i in range(len(self.tags)):
+                g = J[:, i]
+                used = np.flatnonzero(g)
+                sens.append(float(w[used] @ g[used]))
+                var = float(g[used] @ cov[np.ix_(used, used)] @ g[used]) if used.size else 0.0
+                std.append(math.sqrt(var) if var >= 0 else math.nan)
         degree = int(self.basis.exponents.sum(axis=1).max())
         return {"unit": self.cfg.unit, "inputs": list(self.tags), "sensitivity": sens,
                 "std": std,

@@ -434,13 +434,19 @@ def describe_model(m) -> dict:
 def cmd_watch(args) -> int:
     from daemon.workbench import live
 
-    endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
-                                 else _PUBLISH)
+    config = _config(args.config) if args.config else None
+    endpoint = args.endpoint or (config.daemon.publish if config else _PUBLISH)
     keys = _client_keys(args)
+    known, units = (), {}
+    if config is not None:
+        watched = _models(config, args.model)
+        known = [m.name for m in watched]
+        units = {m.name: m.unit for m in watched if m.unit and not args.unit}
     stop = _stop_on_signals()
     try:
         live.watch(endpoint, models=args.model or (), unit=args.unit, duration=args.duration,
-                   count=args.count, refresh=args.refresh, stop=stop, curve=keys)
+                   count=args.count, refresh=args.refresh, stop=stop, curve=keys,
+                   known=known, units=units, events=args.events)
     except HandshakeError as exc:
         raise _Fail(EXIT_RUNTIME, str(exc)) from None
     return EXIT_OK
@@ -590,7 +596,11 @@ def add_work_commands(sub) -> None:
                                       f"{_PUBLISH})")
     w.add_argument("--config", help="TOML config to take the publish endpoint from")
     w.add_argument("--model", action="append", help="only this model (repeatable)")
-    w.add_argument("--unit", default="", help="unit of the targets, for the display")
+    w.add_argument("--unit", default="", help="unit of the targets, for the display "
+                                              "(default: each model's configured unit)")
+    w.add_argument("--events", type=int, default=8,
+                   help="event lines (lab results, trust changes) shown below the table on "
+                        "a terminal (default 8); elsewhere every event is printed")
     w.add_argument("--refresh", type=float, default=0.5, help="seconds between redraws")
     w.add_argument("--duration", type=_duration, help="stop after this long")
     w.add_argument("--count", type=int, help="stop after this many messages")
