@@ -265,9 +265,9 @@ def _version() -> str:
 
 
 START_HERE = """
-Start here: ./tools/demo runs the whole story on a simulated unit; the README's "Your own
-data in five minutes" takes a historian export through tune, backtest, report and run.
-`posteriord COMMAND --help` tells more about each command."""
+Start here: ./tools/demo runs the whole story on a simulated unit; the README's
+"Your own data in five minutes" takes a historian export through tune, backtest,
+report and run. `posteriord COMMAND --help` tells more about each command."""
 
 
 def main(argv=None) -> int:

@@ -479,6 +479,8 @@ def watch_update(state: dict, topic: str, body: dict, received: float) -> str | 
             if action in ("freeze", "resume"):
                 who = f" by {body['by']}" if body.get("by") else ""
                 what = "learning frozen" if action == "freeze" else "learning resumed"
+                if action == "freeze" and m["pred"]:
+                    m["pred"]["status"] = "frozen"  # as the next prediction will say
                 event = (f"{_stamp(body.get('t'))}  {name}  {what}{who}: "
                          f"{body.get('reason') or '(no reason given)'}")
             else:
@@ -572,11 +574,17 @@ def render(state: dict, *, width: int | None = None, color: bool = False,
     models = state["models"]
     feed_t = max((m["pred"]["t"] for m in models.values()
                   if m["pred"] and isinstance(m["pred"].get("t"), int | float)), default=None)
-    title = f"posteriord watch  {state.get('endpoint', '')}".rstrip()
-    if feed_t is not None:
-        title += f"  feed {datetime.fromtimestamp(feed_t, UTC):%Y-%m-%d %H:%M} UTC"
     n = len(models)
-    title += f"  {n} model{'s' if n != 1 else ''}"
+    tail = f"  {n} model{'s' if n != 1 else ''}"
+    if feed_t is not None:
+        tail = f"  feed {datetime.fromtimestamp(feed_t, UTC):%Y-%m-%d %H:%M} UTC" + tail
+    endpoint = state.get("endpoint", "")
+    room = WIDTH - len("posteriord watch  ") - len(tail)
+    if len(endpoint) > room:
+        # a long ipc path: its start and end (the socket's name) within 80 columns
+        keep = max(8, room - 1)
+        endpoint = endpoint[:keep // 2] + "~" + endpoint[len(endpoint) - (keep - keep // 2):]
+    title = f"posteriord watch  {endpoint}".rstrip() + tail
     levels = {m["pred"].get("level") for m in models.values() if m["pred"]}
     level = levels.pop() if len(levels) == 1 else None
     pct = f" ({100 * level:.0f}%)" if isinstance(level, int | float) else ""
