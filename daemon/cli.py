@@ -343,7 +343,7 @@ def _main(argv) -> int:
     add_relay_command(sub)
     add_bridge_commands(sub)
     keys = sub.add_parser("keys", help="CURVE key pairs")
-    ksub = keys.add_subparsers(dest="keys_what", required=True)
+    ksub = keys.add_subparsers(dest="keys_what", metavar="SUBCOMMAND")
     kn = ksub.add_parser("new", help="write NAME.key (public) and NAME.key_secret (0600)")
     kn.add_argument("name", help="key name, e.g. the host or the client")
     kn.add_argument("--dir", default="keys", help="folder for the key files (default keys/)")

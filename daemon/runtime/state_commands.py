@@ -50,7 +50,7 @@ def start_failure(exc: BaseException) -> tuple[int, str]:
 def add_state_commands(sub) -> None:
     """Add ``state inspect|export|import`` to the ``posteriord`` sub-command parsers."""
     p = sub.add_parser("state", help="inspect a state folder; export or import a model")
-    ss = p.add_subparsers(dest="state_what", required=True)
+    ss = p.add_subparsers(dest="state_what", metavar="SUBCOMMAND")
     i = ss.add_parser("inspect", help="what a state folder holds (read-only, works while a "
                                       "daemon runs)")
     i.add_argument("dir", help="the state folder (daemon.state_dir)")
