@@ -224,6 +224,35 @@ class Basis(ABC):
         out = self._evaluate(A)
         return out[0] if single else out
 
+    def jacobian(self, x: Any) -> np.ndarray:
+        """Derivatives of every term with respect to every input at one point.
+
+        Parameters
+        ----------
+        x : array_like, shape (d,)
+            One feature vector in engineering units, in the order of :attr:`inputs`.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_features, d)
+            ``J[k, i] = d phi_k / d x_i`` at ``x``, per engineering unit of input ``i``.
+
+        Notes
+        -----
+        For weights ``w`` the model's sensitivity to input ``i`` at ``x`` is
+        :math:`\\partial y / \\partial x_i = \\sum_k w_k J_{ki}` (``w @ J``), in target
+        units per input unit; for a basis of degree 1 it does not depend on ``x``.
+        """
+        A, single = self._as_rows(x)
+        if not single:
+            raise ValueError(f"jacobian takes one point of shape ({self.n_inputs},), got "
+                             f"shape {np.shape(x)}")
+        return self._jacobian(A[0])
+
+    @abstractmethod
+    def _jacobian(self, x: np.ndarray) -> np.ndarray:
+        """``jacobian`` for a validated float64 point of shape (d,)."""
+
     def out_of_range(self, X: Any) -> np.ndarray:
         """Flag readings outside the declared instrument ranges.
 
@@ -384,6 +413,9 @@ class Identity(Basis):
 
     def row_terms(self, x: list) -> np.ndarray:
         return np.array([[1.0, *x]], dtype=np.float64)
+
+    def _jacobian(self, x: np.ndarray) -> np.ndarray:
+        return self.exponents.astype(np.float64)  # row 0 zeros, then the identity
 
 
 def _graded_exponents(d: int, degree: int, interactions: bool) -> np.ndarray:
@@ -566,6 +598,39 @@ class Polynomial(Basis):
         return np.array([[1.0, *[((v - lo) - (hi - v)) / w
                                  for v, (lo, hi, w) in zip(x, lim, strict=True)]]],
                         dtype=np.float64)
+
+    def _jacobian(self, x: np.ndarray) -> np.ndarray:
+        """Product rule over the factors; 1-D derivatives by their recurrences.
+
+        Legendre :math:`P'_{n+1} = P'_{n-1} + (2n + 1) P_n`, Chebyshev
+        :math:`T'_{n+1} = 2 T_n + 2 u T'_n - T'_{n-1}`, monomial :math:`(u^{n+1})' =
+        (n + 1) u^n`; times :math:`du/dx = 2 / (hi - lo)` when scaled.
+        """
+        if self.scale:
+            u = ((x - self._lo) - (self._hi - x)) / self._width
+            du = 2.0 / self._width
+        else:
+            u, du = x, np.ones_like(x)
+        tab = self._tables(u.reshape(1, -1))[:, 0, :]          # (degree + 1, d)
+        der = np.zeros_like(tab)
+        if self.degree >= 1:
+            der[1] = 1.0
+        for n in range(1, self.degree):
+            if self.family == "legendre":
+                der[n + 1] = der[n - 1] + (2 * n + 1) * tab[n]
+            elif self.family == "chebyshev":
+                der[n + 1] = 2.0 * tab[n] + 2.0 * u * der[n] - der[n - 1]
+            else:
+                der[n + 1] = (n + 1) * tab[n]
+        exps = self.exponents
+        d = self.n_inputs
+        cols = np.arange(d)
+        factors = tab[exps, cols]                                # (p, d): p_{e_i}(u_i)
+        out = np.empty((self.n_features, d), dtype=np.float64)
+        for i in range(d):
+            others = np.prod(np.delete(factors, i, axis=1), axis=1)
+            out[:, i] = der[exps[:, i], i] * others * du[i]
+        return out
 
     def _spec(self) -> dict[str, Any]:
         return {

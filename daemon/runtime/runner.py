@@ -98,6 +98,14 @@ def _blanked(pred: Prediction, rows: list) -> Prediction:
     return Prediction(**out)
 
 
+def _note(note: dict | None) -> dict:
+    """The audit fields of a freeze or resume: reason and who (strings), at (a time or None)."""
+    note = note or {}
+    at = note.get("at")
+    return {"reason": str(note.get("reason") or "")[:500], "by": str(note.get("by") or "")[:100],
+            "at": float(at) if isinstance(at, int | float) and math.isfinite(at) else None}
+
+
 def _drawn(entry: _Offered) -> float:
     return entry.t
 
@@ -127,6 +135,8 @@ class ModelRunner:
         # alert events waiting to be published by the service
         self.alerts: list[dict] = []
         self.frozen = False
+        # the last freeze or resume with its reason, who and when (see control)
+        self.learning_note: dict | None = None
         self.last_x_t: float | None = None
         # last sequence number per publisher (``src``; None for messages that name none)
         self.last_seq: dict = {}
@@ -629,16 +639,22 @@ class ModelRunner:
             del offered[:n]
 
     # ------------------------------------------------------------------ control
-    def control(self, cmd: str) -> None:
+    def control(self, cmd: str, note: dict | None = None) -> None:
         """Apply a control action (:data:`CONTROLS`), live and in replay.
 
         Alert events it causes are queued on :attr:`alerts`. ``acknowledge`` needs the
-        monitor (raises ValueError without one).
+        monitor (raises ValueError without one). ``note`` (``freeze`` and ``resume``) is
+        the audit trail of the action, ``{"reason", "by", "at"}`` (``at``: wall-clock time
+        of the request); it is kept as :attr:`learning_note`, shown by ``status`` and
+        published as an ``action`` alert.
         """
-        if cmd == "freeze":
-            self.frozen = True
-        elif cmd == "resume":
-            self.frozen = False
+        if cmd in ("freeze", "resume"):
+            self.frozen = cmd == "freeze"
+            note = _note(note)
+            self.learning_note = {"action": cmd, **note}
+            if self.monitor is not None:
+                self.alerts.append({"t": self.last_x_t, "kind": "action", "action": cmd,
+                                    "reason": note["reason"], "by": note["by"]})
         elif cmd == "reset":
             self.reset()
             if self.monitor is not None:
@@ -658,9 +674,12 @@ class ModelRunner:
     def status(self) -> dict:
         p = self.post
         return {
+            "target": self.cfg.target,
+            "unit": self.cfg.unit,
             "updates": p.n_updates,
             "identified": p.identified,
             "frozen": self.frozen,
+            "learning_note": self.learning_note,
             "last_lab_t": self.last_lab_t,
             "last_sample_t": self.last_x_t,
             "std": self.last_std,
@@ -688,6 +707,8 @@ class ModelRunner:
     def posterior(self) -> dict:
         p = self.post
         return {
+            "target": self.cfg.target,
+            "unit": self.cfg.unit,
             "terms": list(self.basis.names),
             "mean": p.mean.tolist(),
             "cov": p.cov.tolist(),
@@ -696,6 +717,58 @@ class ModelRunner:
             "updates": p.n_updates,
             "t_last": p.t_last,
         }
+
+    def operating_point(self, at: dict | None = None) -> tuple[np.ndarray, str, float | None]:
+        """The input point sensitivities are taken at: ``(x, source, t)``.
+
+        ``at`` ({tag: value}, each tag of the model) gives it; else the readings a lab sample
+        drawn at the last sample time would be learned with (each input at ``t - dead
+        time``), as the last prediction used them; else the centre of the instrument ranges.
+        """
+        if at is not None:
+            missing = [tag for tag in self.tags if tag not in at]
+            unknown = [tag for tag in at if tag not in self.index]
+            if missing or unknown:
+                raise ValueError(f"\"at\" must give every input of {self.name} "
+                                 f"({', '.join(self.tags)}): missing {missing}, "
+                                 f"unknown {unknown}")
+            x = np.array([float(at[tag]) for tag in self.tags])
+            if not np.isfinite(x).all():
+                raise ValueError(f"\"at\" values must be finite numbers, got {at!r}")
+            return x, "given", None
+        t = self.last_x_t
+        row = None if t is None else self.aligner.lookup(t)
+        if row is not None and all(math.isfinite(v) for v in row):
+            return np.array(row, dtype=float), "last sample", t
+        centre = [(float(i.lo) + float(i.hi)) / 2.0 for i in self.cfg.inputs]
+        return np.array(centre), "range centre", None
+
+    def sensitivities(self, at: dict | None = None) -> dict:
+        """dy/dx of the posterior mean model in engineering units, with its std.
+
+        ``sensitivity[i] = w @ J[:, i]`` with ``J = basis.jacobian(x0)`` (target units per
+        unit of input ``i``) and ``std[i] = sqrt(J[:, i]' C J[:, i])`` with the weights'
+        posterior covariance ``C``; at the operating point of :meth:`operating_point`
+        (it matters only for bases of degree 2 or more).
+        """
+        x0, source, t = self.operating_point(at)
+        sens, std = [], []
+        # nan or inf where the posterior is not identified yet, or a reading overflows
+        with np.errstate(invalid="ignore", over="ignore"):
+            J = self.basis.jacobian(x0)
+            w = self.post.mean
+            cov = self.post.cov
+            for i in range(len(self.tags)):
+                g = J[:, i]
+                used = np.flatnonzero(g)
+                sens.append(float(w[used] @ g[used]))
+                var = float(g[used] @ cov[np.ix_(used, used)] @ g[used]) if used.size else 0.0
+                std.append(math.sqrt(var) if var >= 0 else math.nan)
+        degree = int(self.basis.exponents.sum(axis=1).max())
+        return {"unit": self.cfg.unit, "inputs": list(self.tags), "sensitivity": sens,
+                "std": std,
+                "at": {"source": source, "t": t, "x": x0.tolist()},
+                "depends_on_point": degree > 1}
 
     # ------------------------------------------------------------------ persistence
     def to_state(self) -> dict:
@@ -710,6 +783,7 @@ class ModelRunner:
             "aligner": al,
             "ids": [[k, float(t)] for k, t in self.ids.items()],
             "frozen": self.frozen,
+            "learning_note": self.learning_note,
             "last_x_t": self.last_x_t,
             "last_seq": self.last_seq.get(None),
             "last_seqs": [[k, v] for k, v in self.last_seq.items() if k is not None],
@@ -787,6 +861,10 @@ class ModelRunner:
                 r.monitor.load_state(state["monitor"])
             r.ids = OrderedDict((k, float(t)) for k, t in state["ids"])
             r.frozen = bool(state["frozen"])
+            # absent from states written before freeze took a reason
+            note = state.get("learning_note")
+            r.learning_note = None if note is None else {"action": str(note["action"]),
+                                                         **_note(note)}
             r.last_x_t = state["last_x_t"]
             r.last_seq = {} if state["last_seq"] is None else {None: int(state["last_seq"])}
             for k, v in state.get("last_seqs", ()):
