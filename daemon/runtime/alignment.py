@@ -8,7 +8,6 @@ batch twin for whole histories (the backtest and tune use it, and must agree wit
 from __future__ import annotations
 
 import math
-from bisect import bisect_left, bisect_right
 from collections.abc import Mapping, Sequence
 
 import numpy as np
@@ -84,9 +83,16 @@ class Aligner:
     or not yet pushed). Rows older than ``history_s`` before the newest row are forgotten, and
     at most ``max_rows`` rows are kept, so memory is bounded. Lookups are O(log n) by bisection.
     Blank inputs (nan) are returned as nan.
+
+    The rows live in a ring buffer: the times in one float64 array, the readings in one
+    float64 array of ``len(tags)`` columns, no Python object per row. The arrays start small
+    and double when full, up to ``max_rows`` rows; then the newest row overwrites the oldest.
+    A full buffer holds :meth:`estimate_bytes` bytes (8 per time and 8 per reading).
     """
 
     SCHEMA = "historian.aligner/1"
+    # rows allocated by the first push; then doubled up to max_rows
+    FIRST_CAPACITY = 64
 
     def __init__(
         self,
@@ -114,29 +120,55 @@ class Aligner:
         self.history_s = float(history_s)
         self.tolerance_s = float(tolerance_s)
         self.max_rows = max_rows
-        self._t: list[float] = []
-        # _x[j] is row j itself (_r[j] < 0) or, for rows pushed as a block, the block's 2-D
-        # array with the row at index _r[j]: a block costs two list extends, not one Python
-        # object per row to create now and free when it is forgotten
-        self._x: list = []
-        self._r: list[int] = []
-        self._head = 0  # rows before _head are forgotten; the lists are compacted now and then
+        n = len(self.tags)
+        self._dead = np.array(self.dead_times_s, dtype=float)
+        self._cols = np.arange(n)
+        # ring: row k (0 = oldest) of the _len remembered is in slot (_start + k) % _cap
+        self._cap = 0
+        self._t = np.empty(0)
+        self._x = np.empty((0, n))
+        self._start = 0
+        self._len = 0
+        # the oldest and newest remembered times as Python floats (None when empty)
+        self._first: float | None = None
+        self._last: float | None = None
+
+    @staticmethod
+    def estimate_bytes(n_inputs: int, max_rows: int) -> int:
+        """Bytes of the arrays of a full buffer: ``8 * (n_inputs + 1) * max_rows``.
+
+        A time and ``n_inputs`` readings per row, float64 each. This is what `nbytes` reaches
+        once ``max_rows`` rows have been held; a buffer bounded by its time span first
+        holds fewer rows, in arrays of up to twice the rows held (they grow by doubling).
+        While the arrays double, the old and the new arrays exist together for a moment.
+        """
+        return 8 * (int(n_inputs) + 1) * int(max_rows)
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes of the arrays allocated now (times and readings)."""
+        return self._t.nbytes + self._x.nbytes
+
+    @property
+    def capacity(self) -> int:
+        """Rows the arrays hold before they grow (or, at ``max_rows``, wrap around)."""
+        return self._cap
 
     def __len__(self) -> int:
-        return len(self._t) - self._head
+        return self._len
 
     @property
     def n_stored(self) -> int:
-        """Rows held in memory, including forgotten ones not compacted away yet."""
-        return len(self._t)
+        """Rows held in memory (the remembered ones: a ring buffer keeps nothing else)."""
+        return self._len
 
     @property
     def oldest(self) -> float | None:
-        return self._t[self._head] if len(self) else None
+        return self._first
 
     @property
     def newest(self) -> float | None:
-        return self._t[-1] if len(self) else None
+        return self._last
 
     def push(self, t: float, x: Sequence[float]) -> None:
         """Add an input row at time ``t`` (strictly after the previous one), `tags` order."""
@@ -145,73 +177,145 @@ class Aligner:
             raise ValueError(f"t={t!r}: must be finite")
         if len(x) != len(self.tags):
             raise ValueError(f"row {x!r} has {len(x)} values, expected {len(self.tags)}")
-        if self._t and t <= self._t[-1]:
-            raise ValueError(f"t={t!r} is not after the previous row at {self._t[-1]!r}")
-        self._t.append(t)
-        self._x.append(tuple(float(v) for v in x))
-        self._r.append(-1)
-        self._trim()
+        if self._last is not None and t <= self._last:
+            raise ValueError(f"t={t!r} is not after the previous row at {self._last!r}")
+        self.push_trusted(t, [float(v) for v in x])
 
-    def push_trusted(self, t: float, x: list) -> None:
+    def push_trusted(self, t: float, x) -> None:
         """`push` without the checks, for callers that validated ``t`` and ``x`` already.
 
         ``t`` must be a finite float after the newest row and ``x`` a sequence of floats in
-        `tags` order that the caller will not modify.
+        `tags` order (copied into the buffer).
         """
-        self._t.append(t)
-        self._x.append(x)
-        self._r.append(-1)
-        self._trim()
+        n = self._len
+        if n == self._cap:
+            self._make_room(1)
+            n = self._len
+        p = self._start + n
+        if p >= self._cap:
+            p -= self._cap
+        self._t[p] = t
+        self._x[p] = x
+        self._len = n + 1
+        self._last = t
+        first = self._first
+        if first is None:
+            self._first = t
+        elif first < t - self.history_s:
+            self._forget_before(t - self.history_s)
 
     def push_many_trusted(self, ts: list, xs: list) -> None:
         """Several `push_trusted` rows at once (times increasing)."""
-        self._t.extend(ts)
-        self._x.extend(xs)
-        self._r.extend([-1] * len(xs))
-        self._trim()
+        if len(ts):
+            self.push_block_trusted(ts, np.asarray(xs, dtype=float).reshape(len(ts),
+                                                                             len(self.tags)))
 
     def push_block_trusted(self, ts: list, X: np.ndarray) -> None:
-        """`push_many_trusted` of the rows of a 2-D float array, kept by reference.
-
-        The caller must not modify ``X`` afterwards.
-        """
+        """`push_many_trusted` of the rows of a 2-D float array (copied into the buffer)."""
         k = len(ts)
-        self._t.extend(ts)
-        self._x.extend([X] * k)
-        self._r.extend(range(k))
-        self._trim()
+        if not k:
+            return
+        if k > self.max_rows:  # only the newest max_rows can be kept
+            ts, X, k = ts[k - self.max_rows:], X[k - self.max_rows:], self.max_rows
+        if self._len + k > self._cap:
+            self._make_room(k)
+        cap, n = self._cap, self._len
+        p = self._start + n
+        if p >= cap:
+            p -= cap
+        a = min(k, cap - p)  # rows up to the end of the arrays, then from slot 0
+        self._t[p:p + a] = ts[:a]
+        self._x[p:p + a] = X[:a]
+        if a < k:
+            self._t[:k - a] = ts[a:]
+            self._x[:k - a] = X[a:]
+        self._len = n + k
+        last = float(ts[-1])
+        self._last = last
+        if self._first is None:
+            self._first = float(ts[0])
+        if self._first < last - self.history_s:
+            self._forget_before(last - self.history_s)
 
-    def _trim(self) -> None:
-        times = self._t
-        cutoff = times[-1] - self.history_s
-        head = self._head
-        if times[head] >= cutoff and len(times) - head <= self.max_rows:
-            return  # nothing to forget (the common case between compactions)
-        if times[head] < cutoff:
-            head = bisect_left(times, cutoff, head)
-        head = max(head, len(times) - self.max_rows)
-        if head >= 256 and 2 * head >= len(times):
-            del self._t[:head]
-            del self._x[:head]
-            del self._r[:head]
-            head = 0
-        self._head = head
+    def _make_room(self, k: int) -> None:
+        """Room for ``k`` more rows (k <= max_rows): grow the arrays, else forget the oldest."""
+        cap, n = self._cap, self._len
+        if cap < self.max_rows:
+            new = max(cap, self.FIRST_CAPACITY)
+            while new < n + k:
+                new *= 2
+            new = min(new, self.max_rows)
+            t, x = np.empty(new), np.empty((new, len(self.tags)))
+            if n:
+                t[:n] = self._ordered(self._t, 0, n)
+                x[:n] = self._ordered(self._x, 0, n)
+            self._t, self._x, self._cap, self._start = t, x, new, 0
+            cap = new
+        drop = n + k - cap
+        if drop > 0:
+            self._drop(drop)
+
+    def _drop(self, m: int) -> None:
+        """Forget the ``m`` oldest rows (m <= len)."""
+        n = self._len - m
+        self._len = n
+        if not n:
+            self._start = 0
+            self._first = self._last = None
+            return
+        p = self._start + m
+        if p >= self._cap:
+            p -= self._cap
+        self._start = p
+        self._first = float(self._t[p])
+
+    def _forget_before(self, cutoff: float) -> None:
+        """Forget the rows older than ``cutoff`` (never the newest)."""
+        self._drop(int(self._count(cutoff, "left")))
+
+    def _segments(self) -> tuple[np.ndarray, np.ndarray | None]:
+        """The remembered times in order, as one or two views of the ring."""
+        st, end, cap = self._start, self._start + self._len, self._cap
+        if end <= cap:
+            return self._t[st:end], None
+        return self._t[st:], self._t[:end - cap]
+
+    def _count(self, s, side: str = "right"):
+        """How many remembered times are <= s (side "right") or < s ("left"); s may be an
+        array. The two segments are each sorted and all of the first come before the
+        second, so the counts add up."""
+        a, b = self._segments()
+        c = a.searchsorted(s, side)
+        if b is not None:
+            c = c + b.searchsorted(s, side)
+        return c
+
+    def _ordered(self, arr: np.ndarray, i: int, j: int) -> np.ndarray:
+        """Rows i..j-1 (0 = oldest) of a ring array, in order (a view when contiguous)."""
+        cap = self._cap
+        a, b = self._start + i, self._start + j
+        if b <= cap:
+            return arr[a:b]
+        if a >= cap:
+            return arr[a - cap:b - cap]
+        return np.concatenate((arr[a:], arr[:b - cap]))
 
     def lookup(self, t_lab: float) -> tuple[float, ...] | None:
         """Inputs reflected by a lab sample drawn at ``t_lab``, or None if not available."""
         t_lab = float(t_lab)
         if not math.isfinite(t_lab):
             raise ValueError(f"t_lab={t_lab!r}: must be finite")
-        times = self._t
-        out = []
-        for i, d in enumerate(self.dead_times_s):
-            s = t_lab - d
-            j = bisect_right(times, s, self._head) - 1
-            if j < self._head or s - times[j] > self.tolerance_s:
-                return None
-            r = self._r[j]
-            out.append(self._x[j][i] if r < 0 else float(self._x[j][r, i]))
-        return tuple(out)
+        if not self._len:
+            return None
+        s = t_lab - self._dead
+        j = self._count(s) - 1
+        if j.min() < 0:
+            return None
+        p = j + self._start
+        p[p >= self._cap] -= self._cap
+        if ((s - self._t[p]) > self.tolerance_s).any():
+            return None
+        return tuple(self._x[p, self._cols].tolist())
 
     def lookup_many(self, ts: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
         """`lookup` of several times at once: ``(values, available)``.
@@ -221,61 +325,25 @@ class Aligner:
         """
         ts = np.asarray(ts, dtype=float)
         m, n = ts.size, len(self.tags)
-        values = np.full((m, n), np.nan)
-        ok = np.zeros(m, dtype=bool)
-        if m == 0 or not len(self):
-            return values, ok
-        times_all = self._t
-        dead = self.dead_times_s
-        # only the rows any of the looked-up instants can fall on
-        a = max(self._head, bisect_right(times_all, float(ts.min()) - max(dead),
-                                         self._head) - 1)
-        b = bisect_right(times_all, float(ts.max()) - min(dead), self._head)
-        if b <= a:
-            return values, ok
-        times = np.asarray(times_all[a:b], dtype=float)
-        rows = self._rows(a, b)
-        ok[:] = True
-        for i, d in enumerate(dead):
-            s = ts - d
-            j = np.searchsorted(times, s, side="right") - 1
-            good = j >= 0
-            jj = np.where(good, j, 0)
-            good &= s - times[jj] <= self.tolerance_s
-            values[:, i] = rows[jj, i]
-            ok &= good
+        if m == 0 or not self._len:
+            return np.full((m, n), np.nan), np.zeros(m, dtype=bool)
+        s = ts.reshape(m, 1) - self._dead  # (m, n): the instant each input is read at
+        j = self._count(s) - 1
+        found = j >= 0
+        p = np.where(found, j, 0) + self._start
+        p[p >= self._cap] -= self._cap
+        ok = (found & (s - self._t[p] <= self.tolerance_s)).all(axis=1)
+        values = self._x[p, self._cols]
         values[~ok] = np.nan
         return values, ok
 
     def rows(self) -> np.ndarray:
         """The remembered rows as one float array of shape (len(self), len(tags))."""
-        return self._rows(self._head, len(self._x))
+        return np.array(self._ordered(self._x, 0, self._len))
 
-    def _rows(self, start: int, end: int) -> np.ndarray:
-        n = len(self.tags)
-        xs, rs = self._x, self._r
-        parts: list = []
-        plain: list = []
-        j = start
-        while j < end:
-            r = rs[j]
-            if r < 0:
-                plain.append(xs[j])
-                j += 1
-                continue
-            if plain:
-                parts.append(np.asarray(plain, dtype=float).reshape(len(plain), n))
-                plain = []
-            X = xs[j]
-            # the block's rows r, r+1, ... follow one another up to its end
-            stop = min(end, j + X.shape[0] - r)
-            parts.append(X[r:r + stop - j])
-            j = stop
-        if plain:
-            parts.append(np.asarray(plain, dtype=float).reshape(len(plain), n))
-        if not parts:
-            return np.empty((0, n))
-        return np.concatenate(parts).astype(float, copy=False)
+    def times(self) -> np.ndarray:
+        """The remembered times, oldest first (a copy)."""
+        return np.array(self._ordered(self._t, 0, self._len))
 
     def to_state(self) -> dict:
         """Plain-data state (settings and the remembered rows)."""
@@ -286,15 +354,15 @@ class Aligner:
             "history_s": self.history_s,
             "tolerance_s": self.tolerance_s,
             "max_rows": self.max_rows,
-            "t": self._t[self._head :],
+            "t": self._ordered(self._t, 0, self._len).tolist(),
             # numpy converts the rows in a few calls; one by one took seconds for 200 models
             # of 5000 rows, with the service loop waiting
-            "x": self.rows().tolist(),
+            "x": self._ordered(self._x, 0, self._len).tolist(),
         }
 
     @classmethod
     def from_state(cls, state: dict) -> Aligner:
-        """Inverse of `to_state` (the rows checked by numpy and kept as one block)."""
+        """Inverse of `to_state` (the rows checked by numpy)."""
         if state.get("schema") != cls.SCHEMA:
             raise ValueError(f"unknown aligner schema {state.get('schema')!r}")
         al = cls(
@@ -314,5 +382,5 @@ class Aligner:
         if not np.isfinite(t).all() or np.any(np.diff(t) <= 0):
             raise ValueError("aligner state times must be finite and increasing")
         if len(t):
-            al.push_block_trusted(t.tolist(), np.ascontiguousarray(x))
+            al.push_block_trusted(t, x)
         return al
