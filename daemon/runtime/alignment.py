@@ -8,6 +8,7 @@ batch twin for whole histories (the backtest and tune use it, and must agree wit
 from __future__ import annotations
 
 import math
+from bisect import bisect_right
 from collections.abc import Mapping, Sequence
 
 import numpy as np
@@ -129,6 +130,11 @@ class Aligner:
         self._x = np.empty((0, n))
         self._start = 0
         self._len = 0
+        # memoryviews of the arrays (_xm flat, row-major): element access and bisection on
+        # them make Python floats without numpy's per-call overhead, for single rows
+        self._tm = memoryview(self._t)
+        self._xm = memoryview(self._x.reshape(-1))
+        self._width = n
         # the oldest and newest remembered times as Python floats (None when empty)
         self._first: float | None = None
         self._last: float | None = None
@@ -187,16 +193,28 @@ class Aligner:
         ``t`` must be a finite float after the newest row and ``x`` a sequence of floats in
         `tags` order (copied into the buffer).
         """
-        n = self._len
-        if n == self._cap:
+        n, cap = self._len, self._cap
+        if n < cap:
+            p = self._start + n
+            if p >= cap:
+                p -= cap
+            self._len = n + 1
+        elif cap == self.max_rows:
+            # full: the new row takes the oldest one's slot
+            p = self._start
+            nxt = p + 1
+            self._start = 0 if nxt == cap else nxt
+            self._first = self._tm[self._start] if n > 1 else None
+        else:
             self._make_room(1)
-            n = self._len
-        p = self._start + n
-        if p >= self._cap:
-            p -= self._cap
-        self._t[p] = t
-        self._x[p] = x
-        self._len = n + 1
+            self.push_trusted(t, x)
+            return
+        self._tm[p] = t
+        xm = self._xm
+        b = p * self._width
+        for v in x:
+            xm[b] = v
+            b += 1
         self._last = t
         first = self._first
         if first is None:
@@ -250,6 +268,7 @@ class Aligner:
                 t[:n] = self._ordered(self._t, 0, n)
                 x[:n] = self._ordered(self._x, 0, n)
             self._t, self._x, self._cap, self._start = t, x, new, 0
+            self._tm, self._xm = memoryview(t), memoryview(x.reshape(-1))
             cap = new
         drop = n + k - cap
         if drop > 0:
@@ -267,7 +286,7 @@ class Aligner:
         if p >= self._cap:
             p -= self._cap
         self._start = p
-        self._first = float(self._t[p])
+        self._first = self._tm[p]
 
     def _forget_before(self, cutoff: float) -> None:
         """Forget the rows older than ``cutoff`` (never the newest)."""
@@ -305,17 +324,27 @@ class Aligner:
         t_lab = float(t_lab)
         if not math.isfinite(t_lab):
             raise ValueError(f"t_lab={t_lab!r}: must be finite")
-        if not self._len:
+        n = self._len
+        if not n:
             return None
-        s = t_lab - self._dead
-        j = self._count(s) - 1
-        if j.min() < 0:
-            return None
-        p = j + self._start
-        p[p >= self._cap] -= self._cap
-        if ((s - self._t[p]) > self.tolerance_s).any():
-            return None
-        return tuple(self._x[p, self._cols].tolist())
+        # bisection in the one or two runs of slots that hold the rows in order
+        tm, xm, w, tol = self._tm, self._xm, self._width, self.tolerance_s
+        st, end, cap = self._start, self._start + n, self._cap
+        wrapped = end > cap
+        hi = cap if wrapped else end
+        out = []
+        for i, d in enumerate(self.dead_times_s):
+            s = t_lab - d
+            if wrapped and s >= tm[0]:
+                p = bisect_right(tm, s, 0, end - cap) - 1
+            else:
+                p = bisect_right(tm, s, st, hi) - 1
+                if p < st:
+                    return None
+            if s - tm[p] > tol:
+                return None
+            out.append(xm[p * w + i])
+        return tuple(out)
 
     def lookup_many(self, ts: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
         """`lookup` of several times at once: ``(values, available)``.
