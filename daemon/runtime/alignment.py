@@ -75,6 +75,162 @@ def apply_dead_time(
     return values, available
 
 
+def _step(t0: float, t1: float) -> float:
+    """The period of a clock through ``t0`` and ``t1`` (0.0 if ``t0 + period != t1``).
+
+    A publisher that stamps its samples ``start + k * period`` with a decimal period (0.1 s)
+    has ``t1 - t0`` off the period in the last bits; that period rounded to a few decimals
+    (well above the rounding of ``t1``) is tried first, then the difference itself."""
+    st = t1 - t0
+    q = math.ulp(t1) * 1024.0
+    nice = round(st, max(0, -math.floor(math.log10(q)))) if q < 1.0 else st
+    if nice > 0.0 and nice != st and t0 + nice == t1:
+        return nice
+    return st if t0 + st == t1 else 0.0
+
+
+class _Clock:
+    """Times of rows on a regular clock, kept as runs instead of one float per row.
+
+    Rows are numbered by a counter that only grows. Row g of run k is at exactly
+    ``t0[k] + (g - g[k]) * step[k]`` (its first row at exactly ``t0[k]``): a run is extended
+    only by a time that this formula gives back to the last bit, so every time is the one
+    pushed (the step is set by a run's second row: `_step`). A feed sent every second (or
+    every T seconds, from a start time) is one run; each gap or irregular time starts a new
+    one. Runs before the oldest row kept are dropped.
+    """
+
+    __slots__ = ("g", "t0", "step", "head")
+
+    def __init__(self) -> None:
+        self.g: list[int] = []
+        self.t0: list[float] = []
+        self.step: list[float] = []
+        self.head = 0
+
+    def runs(self) -> int:
+        return len(self.g) - self.head
+
+    def add(self, g: int, t: float) -> None:
+        """Row ``g`` (the next counter) at time ``t`` (after the previous row)."""
+        gs = self.g
+        k = len(gs) - 1
+        if k >= self.head and (t != 0.0 or math.copysign(1.0, t) > 0):  # -0.0: its own run
+            c = g - gs[k]
+            t0 = self.t0[k]
+            if c == 1:
+                st = _step(t0, t)
+                if st:
+                    self.step[k] = st
+                    return
+            elif t0 + c * self.step[k] == t:
+                return
+        gs.append(g)
+        self.t0.append(t)
+        self.step.append(0.0)
+
+    def add_many(self, g: int, ts: np.ndarray, limit: int) -> bool:
+        """Rows ``g, g + 1, ...`` at times ``ts`` (increasing, after the previous row).
+
+        Returns False, leaving the runs of the rows before ``g`` intact, as soon as there are
+        more than ``limit`` runs (the times are not on a regular clock).
+        """
+        gs, t0s, steps = self.g, self.t0, self.step
+        m, j = len(ts), 0
+        plain = ~((ts == 0.0) & np.signbit(ts))  # -0.0 always starts its own run
+        while j < m:
+            k = len(gs) - 1
+            if k >= self.head and plain[j]:
+                c = g + j - gs[k]
+                t0 = t0s[k]
+                if c == 1:
+                    st = _step(t0, float(ts[j]))
+                    if st:
+                        steps[k] = st
+                        j += 1
+                        continue
+                else:
+                    eq = (t0 + (c + np.arange(m - j)) * steps[k] == ts[j:]) & plain[j:]
+                    run = m - j if eq.all() else int(eq.argmin())
+                    if run:
+                        j += run
+                        continue
+            gs.append(g + j)
+            t0s.append(float(ts[j]))
+            steps.append(0.0)
+            j += 1
+            if self.runs() > limit:
+                return False
+        return True
+
+    def forget(self, lo: int) -> None:
+        """Drop the runs that end before row ``lo``."""
+        gs, h = self.g, self.head
+        while h + 1 < len(gs) and gs[h + 1] <= lo:
+            h += 1
+        if h >= 64 and 2 * h >= len(gs):
+            del self.g[:h], self.t0[:h], self.step[:h]
+            h = 0
+        self.head = h
+
+    def time(self, g: int) -> float:
+        k = bisect_right(self.g, g, self.head) - 1
+        c = g - self.g[k]
+        return self.t0[k] + c * self.step[k] if c else self.t0[k]
+
+    def find(self, s: float, hi: int) -> int:
+        """The last row before ``hi`` at or before ``s`` (-1 before every run kept)."""
+        gs = self.g
+        k = bisect_right(self.t0, s, self.head) - 1
+        if k < self.head:
+            return -1
+        t0, st = self.t0[k], self.step[k]
+        if not st:
+            return gs[k]
+        last = (gs[k + 1] if k + 1 < len(gs) else hi) - gs[k] - 1
+        i = min(int((s - t0) / st), last)
+        while i < last and t0 + (i + 1) * st <= s:
+            i += 1
+        while i > 0 and t0 + i * st > s:
+            i -= 1
+        return gs[k] + i
+
+    def find_many(self, s: np.ndarray, hi: int) -> tuple[np.ndarray, np.ndarray]:
+        """`find` of an array of instants, and the times of the rows found (where >= 0)."""
+        h = self.head
+        t0s, steps = np.array(self.t0[h:]), np.array(self.step[h:])
+        gs = np.array(self.g[h:] + [hi])
+        k = np.maximum(t0s.searchsorted(s, "right") - 1, 0)
+        t0, st = t0s[k], steps[k]
+        last = gs[k + 1] - gs[k] - 1
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            i = np.where(st > 0, (s - t0) / np.where(st > 0, st, 1.0), 0.0)
+        i = np.clip(np.nan_to_num(i, nan=0.0, posinf=0.0, neginf=0.0), 0, last)
+        i = i.astype(np.int64)
+        while True:
+            up = (i < last) & (t0 + (i + 1) * st <= s)
+            if not up.any():
+                break
+            i += up
+        while True:
+            down = (i > 0) & (t0 + i * st > s)
+            if not down.any():
+                break
+            i -= down
+        g = np.where(s >= t0, gs[k] + i, -1)
+        return g, np.where(i > 0, t0 + i * st, t0)
+
+    def times(self, lo: int, hi: int) -> np.ndarray:
+        """The times of rows ``lo..hi-1``."""
+        h = self.head
+        gs = np.array(self.g[h:])
+        g = np.arange(lo, hi)
+        k = gs.searchsorted(g, "right") - 1
+        i = g - gs[k]
+        t0 = np.array(self.t0[h:])[k]
+        return np.where(i > 0, t0 + i * np.array(self.step[h:])[k], t0)
+
+
 class Aligner:
     """Bounded history of input rows, queried for the inputs a lab sample reflects.
 
@@ -85,15 +241,20 @@ class Aligner:
     at most ``max_rows`` rows are kept, so memory is bounded. Lookups are O(log n) by bisection.
     Blank inputs (nan) are returned as nan.
 
-    The rows live in a ring buffer: the times in one float64 array, the readings in one
-    float64 array of ``len(tags)`` columns, no Python object per row. The arrays start small
-    and double when full, up to ``max_rows`` rows; then the newest row overwrites the oldest.
-    A full buffer holds :meth:`estimate_bytes` bytes (8 per time and 8 per reading).
+    The rows live in a ring buffer of float64, no Python object per row: the readings in one
+    array of ``len(tags)`` columns, which starts small and doubles when full, up to
+    ``max_rows`` rows (then the newest row overwrites the oldest). The times of a feed on a
+    regular clock (every T seconds from some start, gaps allowed) are kept as a few runs of
+    start, step and count (`_Clock`); when the runs get more than one per 64 rows the times
+    go to a float64 array beside the readings, until the buffer is reset. See
+    :meth:`estimate_bytes`.
     """
 
     SCHEMA = "historian.aligner/1"
     # rows allocated by the first push; then doubled up to max_rows
     FIRST_CAPACITY = 64
+    # the times are kept as runs while there are at most max(8, rows // 64) of them
+    RUNS_PER_ROW = 64
 
     def __init__(
         self,
@@ -124,36 +285,46 @@ class Aligner:
         n = len(self.tags)
         self._dead = np.array(self.dead_times_s, dtype=float)
         self._cols = np.arange(n)
-        # ring: row k (0 = oldest) of the _len remembered is in slot (_start + k) % _cap
+        self._width = n
+        # ring: row k (0 = oldest) of the _len remembered is in slot (_start + k) % _cap;
+        # rows are also numbered by a counter, _next for the next row pushed
         self._cap = 0
-        self._t = np.empty(0)
         self._x = np.empty((0, n))
         self._start = 0
         self._len = 0
-        # memoryviews of the arrays (_xm flat, row-major): element access and bisection on
-        # them make Python floats without numpy's per-call overhead, for single rows
-        self._tm = memoryview(self._t)
+        self._next = 0
+        # the times: as runs (_clock), or in the array _t (then _clock is None)
+        self._clock: _Clock | None = _Clock()
+        self._t: np.ndarray | None = None
+        # memoryviews (_xm flat, row-major): element access and bisection on them make
+        # Python floats without numpy's per-call overhead, for single rows
         self._xm = memoryview(self._x.reshape(-1))
-        self._width = n
+        self._tm: memoryview | None = None
         # the oldest and newest remembered times as Python floats (None when empty)
         self._first: float | None = None
         self._last: float | None = None
 
     @staticmethod
-    def estimate_bytes(n_inputs: int, max_rows: int) -> int:
-        """Bytes of the arrays of a full buffer: ``8 * (n_inputs + 1) * max_rows``.
+    def estimate_bytes(n_inputs: int, max_rows: int, *, regular: bool = True) -> int:
+        """Bytes of the arrays of a full buffer of ``max_rows`` rows.
 
-        A time and ``n_inputs`` readings per row, float64 each. This is what `nbytes` reaches
-        once ``max_rows`` rows have been held; a buffer bounded by its time span first
-        holds fewer rows, in arrays of up to twice the rows held (they grow by doubling).
-        While the arrays double, the old and the new arrays exist together for a moment.
+        ``8 * n_inputs * max_rows`` (float64 readings) when the times are on a regular clock
+        (kept as runs, a few hundred bytes: not counted), ``8 * (n_inputs + 1) * max_rows``
+        when they are not (``regular=False``: one float64 time per row as well). A buffer
+        bounded by its time span holds fewer rows, in arrays of up to twice the rows held
+        (they grow by doubling); while they double, old and new exist together for a moment.
         """
-        return 8 * (int(n_inputs) + 1) * int(max_rows)
+        return 8 * (int(n_inputs) + (0 if regular else 1)) * int(max_rows)
 
     @property
     def nbytes(self) -> int:
-        """Bytes of the arrays allocated now (times and readings)."""
-        return self._t.nbytes + self._x.nbytes
+        """Bytes of the arrays allocated now (readings, and times when not kept as runs)."""
+        return self._x.nbytes + (0 if self._t is None else self._t.nbytes)
+
+    @property
+    def regular(self) -> bool:
+        """True while the times are kept as runs of a regular clock."""
+        return self._clock is not None
 
     @property
     def capacity(self) -> int:
@@ -194,7 +365,8 @@ class Aligner:
         `tags` order (copied into the buffer).
         """
         n, cap = self._len, self._cap
-        if n < cap:
+        full = n == cap
+        if not full:
             p = self._start + n
             if p >= cap:
                 p -= cap
@@ -204,18 +376,28 @@ class Aligner:
             p = self._start
             nxt = p + 1
             self._start = 0 if nxt == cap else nxt
-            self._first = self._tm[self._start] if n > 1 else None
         else:
             self._make_room(1)
             self.push_trusted(t, x)
             return
-        self._tm[p] = t
+        g = self._next
+        self._next = g + 1
+        clock = self._clock
+        if clock is None:
+            self._tm[p] = t
+        else:
+            clock.add(g, t)
+            if clock.runs() > max(8, self._len // self.RUNS_PER_ROW):
+                self._to_array(g)
+                self._tm[p] = t
         xm = self._xm
         b = p * self._width
         for v in x:
             xm[b] = v
             b += 1
         self._last = t
+        if full:
+            self._oldest_moved()
         first = self._first
         if first is None:
             self._first = t
@@ -233,27 +415,51 @@ class Aligner:
         k = len(ts)
         if not k:
             return
-        if k > self.max_rows:  # only the newest max_rows can be kept
-            ts, X, k = ts[k - self.max_rows:], X[k - self.max_rows:], self.max_rows
+        skip = k - self.max_rows
+        if skip > 0:  # only the newest max_rows can be kept
+            ts, X, k = ts[skip:], X[skip:], self.max_rows
+        ts = np.asarray(ts, dtype=float)
         if self._len + k > self._cap:
             self._make_room(k)
+        if skip > 0:
+            self._next += skip  # the rows never kept are numbered all the same
         cap, n = self._cap, self._len
         p = self._start + n
         if p >= cap:
             p -= cap
         a = min(k, cap - p)  # rows up to the end of the arrays, then from slot 0
-        self._t[p:p + a] = ts[:a]
         self._x[p:p + a] = X[:a]
         if a < k:
-            self._t[:k - a] = ts[a:]
             self._x[:k - a] = X[a:]
+        g = self._next
         self._len = n + k
+        self._next = g + k
+        clock = self._clock
+        if clock is not None and not clock.add_many(
+                g, ts, max(8, self._len // self.RUNS_PER_ROW)):
+            self._to_array(g)
+            clock = None
+        if clock is None:
+            self._t[p:p + a] = ts[:a]
+            if a < k:
+                self._t[:k - a] = ts[a:]
         last = float(ts[-1])
         self._last = last
         if self._first is None:
             self._first = float(ts[0])
         if self._first < last - self.history_s:
             self._forget_before(last - self.history_s)
+
+    def _to_array(self, upto: int) -> None:
+        """Times from runs to an array; the runs hold the rows up to (not with) ``upto``."""
+        cap, st = self._cap, self._start
+        lo = self._next - self._len
+        t = np.empty(cap)
+        have = self._clock.times(lo, upto)
+        a = min(len(have), cap - st)
+        t[st:st + a] = have[:a]
+        t[:len(have) - a] = have[a:]
+        self._t, self._tm, self._clock = t, memoryview(t), None
 
     def _make_room(self, k: int) -> None:
         """Room for ``k`` more rows (k <= max_rows): grow the arrays, else forget the oldest."""
@@ -263,12 +469,14 @@ class Aligner:
             while new < n + k:
                 new *= 2
             new = min(new, self.max_rows)
-            t, x = np.empty(new), np.empty((new, len(self.tags)))
-            if n:
+            x = np.empty((new, len(self.tags)))
+            x[:n] = self._ordered(self._x, 0, n)
+            if self._t is not None:
+                t = np.empty(new)
                 t[:n] = self._ordered(self._t, 0, n)
-                x[:n] = self._ordered(self._x, 0, n)
-            self._t, self._x, self._cap, self._start = t, x, new, 0
-            self._tm, self._xm = memoryview(t), memoryview(x.reshape(-1))
+                self._t, self._tm = t, memoryview(t)
+            self._x, self._cap, self._start = x, new, 0
+            self._xm = memoryview(x.reshape(-1))
             cap = new
         drop = n + k - cap
         if drop > 0:
@@ -281,33 +489,39 @@ class Aligner:
         if not n:
             self._start = 0
             self._first = self._last = None
+            if self._clock is not None:
+                self._clock.forget(self._next)
             return
         p = self._start + m
         if p >= self._cap:
             p -= self._cap
         self._start = p
-        self._first = self._tm[p]
+        self._oldest_moved()
+
+    def _oldest_moved(self) -> None:
+        if self._clock is None:
+            self._first = self._tm[self._start]
+        else:
+            lo = self._next - self._len
+            self._clock.forget(lo)
+            self._first = self._clock.time(lo)
 
     def _forget_before(self, cutoff: float) -> None:
         """Forget the rows older than ``cutoff`` (never the newest)."""
-        self._drop(int(self._count(cutoff, "left")))
-
-    def _segments(self) -> tuple[np.ndarray, np.ndarray | None]:
-        """The remembered times in order, as one or two views of the ring."""
-        st, end, cap = self._start, self._start + self._len, self._cap
-        if end <= cap:
-            return self._t[st:end], None
-        return self._t[st:], self._t[:end - cap]
+        if self._clock is None:
+            self._drop(int(self._count(cutoff, "left")))
+        else:
+            g = self._clock.find(math.nextafter(cutoff, -math.inf), self._next)
+            self._drop(max(0, g - (self._next - self._len) + 1))
 
     def _count(self, s, side: str = "right"):
-        """How many remembered times are <= s (side "right") or < s ("left"); s may be an
-        array. The two segments are each sorted and all of the first come before the
-        second, so the counts add up."""
-        a, b = self._segments()
-        c = a.searchsorted(s, side)
-        if b is not None:
-            c = c + b.searchsorted(s, side)
-        return c
+        """How many remembered times (in the array) are <= s (side "right") or < s
+        ("left"); s may be an array. The one or two runs of slots that hold the rows are
+        each sorted and all of the first come before the second, so the counts add up."""
+        st, end, cap, t = self._start, self._start + self._len, self._cap, self._t
+        if end <= cap:
+            return t[st:end].searchsorted(s, side)
+        return t[st:].searchsorted(s, side) + t[:end - cap].searchsorted(s, side)
 
     def _ordered(self, arr: np.ndarray, i: int, j: int) -> np.ndarray:
         """Rows i..j-1 (0 = oldest) of a ring array, in order (a view when contiguous)."""
@@ -327,12 +541,27 @@ class Aligner:
         n = self._len
         if not n:
             return None
-        # bisection in the one or two runs of slots that hold the rows in order
-        tm, xm, w, tol = self._tm, self._xm, self._width, self.tolerance_s
+        xm, w, tol = self._xm, self._width, self.tolerance_s
         st, end, cap = self._start, self._start + n, self._cap
+        out = []
+        clock = self._clock
+        if clock is not None:
+            nxt = self._next
+            lo = nxt - n
+            for i, d in enumerate(self.dead_times_s):
+                s = t_lab - d
+                g = clock.find(s, nxt)
+                if g < lo or s - clock.time(g) > tol:
+                    return None
+                p = st + g - lo
+                if p >= cap:
+                    p -= cap
+                out.append(xm[p * w + i])
+            return tuple(out)
+        # bisection in the one or two runs of slots that hold the rows in order
+        tm = self._tm
         wrapped = end > cap
         hi = cap if wrapped else end
-        out = []
         for i, d in enumerate(self.dead_times_s):
             s = t_lab - d
             if wrapped and s >= tm[0]:
@@ -357,11 +586,20 @@ class Aligner:
         if m == 0 or not self._len:
             return np.full((m, n), np.nan), np.zeros(m, dtype=bool)
         s = ts.reshape(m, 1) - self._dead  # (m, n): the instant each input is read at
-        j = self._count(s) - 1
-        found = j >= 0
-        p = np.where(found, j, 0) + self._start
-        p[p >= self._cap] -= self._cap
-        ok = (found & (s - self._t[p] <= self.tolerance_s)).all(axis=1)
+        if self._clock is not None:
+            lo = self._next - self._len
+            g, t = self._clock.find_many(s, self._next)
+            j = g - lo
+            found = j >= 0
+            p = np.where(found, j, 0) + self._start
+            p[p >= self._cap] -= self._cap
+        else:
+            j = self._count(s) - 1
+            found = j >= 0
+            p = np.where(found, j, 0) + self._start
+            p[p >= self._cap] -= self._cap
+            t = self._t[p]
+        ok = (found & (s - t <= self.tolerance_s)).all(axis=1)
         values = self._x[p, self._cols]
         values[~ok] = np.nan
         return values, ok
@@ -372,6 +610,8 @@ class Aligner:
 
     def times(self) -> np.ndarray:
         """The remembered times, oldest first (a copy)."""
+        if self._clock is not None:
+            return self._clock.times(self._next - self._len, self._next)
         return np.array(self._ordered(self._t, 0, self._len))
 
     def to_state(self) -> dict:
@@ -383,7 +623,7 @@ class Aligner:
             "history_s": self.history_s,
             "tolerance_s": self.tolerance_s,
             "max_rows": self.max_rows,
-            "t": self._ordered(self._t, 0, self._len).tolist(),
+            "t": self.times().tolist(),
             # numpy converts the rows in a few calls; one by one took seconds for 200 models
             # of 5000 rows, with the service loop waiting
             "x": self._ordered(self._x, 0, self._len).tolist(),
