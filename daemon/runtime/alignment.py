@@ -111,8 +111,9 @@ class _Clock:
     def runs(self) -> int:
         return len(self.g) - self.head
 
-    def add(self, g: int, t: float) -> None:
-        """Row ``g`` (the next counter) at time ``t`` (after the previous row)."""
+    def add(self, g: int, t: float) -> bool:
+        """Row ``g`` (the next counter) at time ``t`` (after the previous row); True when it
+        starts a new run."""
         gs = self.g
         k = len(gs) - 1
         if k >= self.head and (t != 0.0 or math.copysign(1.0, t) > 0):  # -0.0: its own run
@@ -122,12 +123,13 @@ class _Clock:
                 st = _step(t0, t)
                 if st:
                     self.step[k] = st
-                    return
+                    return False
             elif t0 + c * self.step[k] == t:
-                return
+                return False
         gs.append(g)
         self.t0.append(t)
         self.step.append(0.0)
+        return True
 
     def add_many(self, g: int, ts: np.ndarray, limit: int) -> bool:
         """Rows ``g, g + 1, ...`` at times ``ts`` (increasing, after the previous row).
@@ -386,10 +388,10 @@ class Aligner:
         if clock is None:
             self._tm[p] = t
         else:
-            clock.add(g, t)
-            if clock.runs() > max(8, self._len // self.RUNS_PER_ROW):
+            if clock.add(g, t) and clock.runs() > max(8, self._len // self.RUNS_PER_ROW):
                 self._to_array(g)
                 self._tm[p] = t
+                clock = None
         xm = self._xm
         b = p * self._width
         for v in x:
@@ -397,7 +399,16 @@ class Aligner:
             b += 1
         self._last = t
         if full:
-            self._oldest_moved()
+            if clock is None:
+                self._first = self._tm[self._start]
+            else:  # the oldest row is in the first run kept, or starts the next one
+                lo = g + 1 - n
+                h, gs = clock.head, clock.g
+                if h + 1 < len(gs) and gs[h + 1] <= lo:
+                    clock.forget(lo)
+                    h = clock.head
+                c = lo - gs[h]
+                self._first = clock.t0[h] + c * clock.step[h] if c else clock.t0[h]
         first = self._first
         if first is None:
             self._first = t
