@@ -10,6 +10,7 @@ estimate is checked against the allocation tracemalloc sees.
 from __future__ import annotations
 
 import math
+import re
 import tracemalloc
 
 import msgpack
@@ -222,3 +223,26 @@ def test_memory_estimate_matches_the_measured_allocation(n_inputs, period, hours
     if not jitter:
         assert measured <= 1.10 * 8 * n_inputs * rows  # the bar of issue 13
     assert al.lookup(ts[-1]) == xs[-1] and al.lookup(ts[0] - 1.0) is None
+
+
+def test_check_config_prints_each_models_buffer_estimate_and_the_total(tmp_path, capsys):
+    from conftest import c301_model, toml_config
+
+    from daemon.cli import main
+    from daemon.config import load
+
+    path = tmp_path / "plant.toml"
+    path.write_text(toml_config({"metrics": ""}, [
+        c301_model("a", lab={"keep": "12h", "keep_count": 43200}),
+        c301_model("b")]))
+    assert main(["check-config", str(path)]) == 0
+    out = capsys.readouterr().out
+    models = load(path).models
+    assert [len(m.inputs) for m in models] == [4, 4] and models[1].keep_count == 5000
+    # 8 B x 4 inputs x 43 200 rows = 1 382 400 B = 1.3 MiB; x 5000 rows = 156.2 KiB;
+    # off the clock 8 B x 5 per row: 1.6 MiB and 195.3 KiB; total 1 542 400 B = 1.5 MiB
+    assert re.search(r"^  a +4 inputs x 43200 rows +1\.3 MiB +\(1\.6 MiB off the clock\)$",
+                     out, re.M), out
+    assert re.search(r"^  b +4 inputs x 5000 rows +156\.2 KiB +\(195\.3 KiB off the clock\)$",
+                     out, re.M), out
+    assert re.search(r"^  total +1\.5 MiB +\(1\.8 MiB off the clock\)$", out, re.M), out

@@ -13,7 +13,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 
-__all__ = ["Aligner", "apply_dead_time"]
+__all__ = ["Aligner", "apply_dead_time", "buffer_memory"]
 
 
 def _dead_times(tags: tuple[str, ...], dead_times_s) -> tuple[float, ...]:
@@ -664,3 +664,43 @@ class Aligner:
         if len(t):
             al.push_block_trusted(t, x)
         return al
+
+
+def _size(n: float) -> str:
+    for unit in ("B", "KiB", "MiB", "GiB"):
+        if n < 1024 or unit == "GiB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1024
+
+
+# a sample id remembered for lab results that name their sample (an entry of the runner's
+# ids map: the key, its time and the map's own entry), measured with tracemalloc for
+# 10-character strings and for integers (about 150 and 130 B)
+ID_BYTES = 150
+
+
+def buffer_memory(models) -> list[str]:
+    """Lines for ``check-config``: each model's feature buffer when full, and the total.
+
+    ``models`` are model configs (``name``, ``inputs``, ``keep_count``). A buffer holds at
+    most ``keep_count`` rows (fewer when ``keep`` is shorter than keep_count sample periods):
+    `Aligner.estimate_bytes` with the times on a regular clock, and without.
+    """
+    lines = ["feature buffers when full (float64, keep_count rows; 8 B a row more when the "
+             "sample times are off a regular clock):"]
+    total = total_irregular = 0
+    width = max((len(m.name) for m in models), default=0)
+    for m in models:
+        n, rows = len(m.inputs), int(m.keep_count)
+        b = Aligner.estimate_bytes(n, rows)
+        bi = Aligner.estimate_bytes(n, rows, regular=False)
+        total += b
+        total_irregular += bi
+        what = f"{n} input{'s' if n != 1 else ''} x {rows} rows"
+        lines.append(f"  {m.name:<{width}}  {what:<22}  {_size(b):>10}  ({_size(bi)} off "
+                     f"the clock)")
+    lines.append(f"  {'total':<{width}}  {'':<22}  {_size(total):>10}  "
+                 f"({_size(total_irregular)} off the clock)")
+    lines.append(f"  feeds that name their samples by id add about {ID_BYTES} B a row for "
+                 f"the ids")
+    return lines
