@@ -180,22 +180,23 @@ class _Clock:
         c = g - self.g[k]
         return self.t0[k] + c * self.step[k] if c else self.t0[k]
 
-    def find(self, s: float, hi: int) -> int:
-        """The last row before ``hi`` at or before ``s`` (-1 before every run kept)."""
+    def find(self, s: float, hi: int) -> tuple[int, float]:
+        """The last row before ``hi`` at or before ``s`` and its time (-1 and nan before
+        every run kept)."""
         gs = self.g
         k = bisect_right(self.t0, s, self.head) - 1
         if k < self.head:
-            return -1
+            return -1, math.nan
         t0, st = self.t0[k], self.step[k]
         if not st:
-            return gs[k]
+            return gs[k], t0
         last = (gs[k + 1] if k + 1 < len(gs) else hi) - gs[k] - 1
         i = min(int((s - t0) / st), last)
         while i < last and t0 + (i + 1) * st <= s:
             i += 1
         while i > 0 and t0 + i * st > s:
             i -= 1
-        return gs[k] + i
+        return gs[k] + i, (t0 + i * st if i else t0)
 
     def find_many(self, s: np.ndarray, hi: int) -> tuple[np.ndarray, np.ndarray]:
         """`find` of an array of instants, and the times of the rows found (where >= 0)."""
@@ -522,7 +523,7 @@ class Aligner:
         if self._clock is None:
             self._drop(int(self._count(cutoff, "left")))
         else:
-            g = self._clock.find(math.nextafter(cutoff, -math.inf), self._next)
+            g, _ = self._clock.find(math.nextafter(cutoff, -math.inf), self._next)
             self._drop(max(0, g - (self._next - self._len) + 1))
 
     def _count(self, s, side: str = "right"):
@@ -561,8 +562,8 @@ class Aligner:
             lo = nxt - n
             for i, d in enumerate(self.dead_times_s):
                 s = t_lab - d
-                g = clock.find(s, nxt)
-                if g < lo or s - clock.time(g) > tol:
+                g, tg = clock.find(s, nxt)
+                if g < lo or s - tg > tol:
                     return None
                 p = st + g - lo
                 if p >= cap:
