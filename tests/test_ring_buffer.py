@@ -246,3 +246,20 @@ def test_check_config_prints_each_models_buffer_estimate_and_the_total(tmp_path,
     assert re.search(r"^  b +4 inputs x 5000 rows +156\.2 KiB +\(195\.3 KiB off the clock\)$",
                      out, re.M), out
     assert re.search(r"^  total +1\.5 MiB +\(1\.8 MiB off the clock\)$", out, re.M), out
+
+
+def test_minus_zero_times_come_back_as_pushed():
+    # -0.0 == 0.0, but a state holds the float's bytes: the time -0.0 is never computed as
+    # a run's t0 + k * step (which gives +0.0) and comes back with its sign
+    ts = [-2.0, -1.0, -0.0, 1.0, 2.0, 3.0]
+    for block in (False, True):
+        ring = Aligner(["a"], [0.0], 100.0, tolerance_s=0.5)
+        ref = ListAligner(["a"], [0.0], 100.0, tolerance_s=0.5)
+        for al in (ring, ref):
+            if block:
+                al.push_block_trusted(ts, np.arange(6.0).reshape(6, 1))
+            else:
+                for k, t in enumerate(ts):
+                    al.push_trusted(t, (float(k),))
+        assert same(ring.to_state(), ref.to_state())
+        assert math.copysign(1.0, ring.times()[2]) == -1.0 and ring.lookup(0.2) == (2.0,)
