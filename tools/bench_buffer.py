@@ -16,6 +16,7 @@ import argparse
 import statistics
 import sys
 import time
+import tracemalloc
 from pathlib import Path
 
 import numpy as np
@@ -100,7 +101,32 @@ def main(argv=None) -> int:
         ratios = [n / o for n, o in zip(new, old, strict=True)]
         print(f"{name:<20} {statistics.median(old):>12,.0f} {statistics.median(new):>12,.0f}"
               f"   {statistics.median(ratios):.2f} ({min(ratios):.2f}-{max(ratios):.2f})")
+    print(f"\nmemory, {len(TAGS)} inputs x {ROWS} rows (12 h at 1 s), measured by tracemalloc; "
+          f"bar {1.1 * 8 * len(TAGS) * ROWS:,.0f} B ({1.1 * 8 * len(TAGS):.1f} B a row)")
+    for name, cls, jitter in (("list buffer", ListAligner, False),
+                              ("ring, regular clock", Aligner, False),
+                              ("ring, 10 ms jitter", Aligner, True)):
+        b = memory(cls, X, jitter)
+        print(f"  {name:<20} {b:>12,} B  {b / ROWS:6.1f} B a row  "
+              f"{b / (8 * len(TAGS) * ROWS):.2f} x 8 B x inputs x rows")
     return 0
+
+
+def memory(cls, X, jitter: bool) -> int:
+    t = T0 + np.arange(ROWS, dtype=float)
+    if jitter:
+        t += np.random.default_rng(4).uniform(0.0, 0.01, ROWS)
+    ts = t.tolist()
+    tracemalloc.start()
+    try:
+        before = tracemalloc.get_traced_memory()[0]
+        al = make(cls)
+        for k, tk in enumerate(ts):
+            # as ModelRunner.add_features does, with floats of its own (decoded ones)
+            al.push_trusted(tk, tuple(X[k].tolist()))
+        return tracemalloc.get_traced_memory()[0] - before
+    finally:
+        tracemalloc.stop()
 
 
 if __name__ == "__main__":
