@@ -249,15 +249,18 @@ class Aligner:
     ``max_rows`` rows (then the newest row overwrites the oldest). The times of a feed on a
     regular clock (every T seconds from some start, gaps allowed) are kept as a few runs of
     start, step and count (`_Clock`); when the runs get more than one per 64 rows the times
-    go to a float64 array beside the readings, until the buffer is reset. See
-    :meth:`estimate_bytes`.
+    go to a float64 array beside the readings, until the buffer is reset or restored from its
+    state. Times ``start + k * T`` with T a whole or binary number of seconds (1, 5, 0.25)
+    stay on the clock across gaps; with a decimal T (0.1 s) a run that starts after a gap
+    rarely reproduces the publisher's rounding, and the times go to the array. Times with
+    jitter (stamped by a clock read) go to the array. See :meth:`estimate_bytes`.
     """
 
     SCHEMA = "historian.aligner/1"
     # rows allocated by the first push; then doubled up to max_rows
     FIRST_CAPACITY = 64
     # the times are kept as runs while there are at most max(8, rows // 64) of them
-    RUNS_PER_ROW = 64
+    ROWS_PER_RUN = 64
 
     def __init__(
         self,
@@ -394,7 +397,7 @@ class Aligner:
             c = g - gs[k] if gs else 0
             if c > 1 and t and clock.t0[k] + c * clock.step[k] == t:
                 pass  # on the clock (the common case; `_Clock.add` does the same)
-            elif clock.add(g, t) and clock.runs() > max(8, self._len // self.RUNS_PER_ROW):
+            elif clock.add(g, t) and clock.runs() > max(8, self._len // self.ROWS_PER_RUN):
                 self._to_array(g)
                 self._tm[p] = t
                 clock = None
@@ -455,7 +458,7 @@ class Aligner:
         self._next = g + k
         clock = self._clock
         if clock is not None and not clock.add_many(
-                g, ts, max(8, self._len // self.RUNS_PER_ROW)):
+                g, ts, max(8, self._len // self.ROWS_PER_RUN)):
             self._to_array(g)
             clock = None
         if clock is None:
