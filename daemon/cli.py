@@ -80,6 +80,9 @@ def cmd_check(args) -> int:
         print(f"posteriord: config error: {error}", file=sys.stderr)
         return EXIT_CONFIG
     print(describe(config))
+    from daemon.runtime.alignment import buffer_memory
+
+    print("\n" + "\n".join(buffer_memory(config.models)))
     from daemon.runtime.security import preflight
 
     print("\n".join(preflight(config.daemon)))
