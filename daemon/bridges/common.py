@@ -13,14 +13,13 @@ import asyncio
 import collections
 import contextlib
 import datetime as _dt
-import logging
 import math
-import time
 
 import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry, Counter, Gauge, start_http_server
 
+from daemon.logsetup import RateLimitedLog
 from daemon.runtime import wire
 
 # Why a bridge did not pass something on: a bounded set, so they can be metric labels.
@@ -59,26 +58,6 @@ def number(v) -> float | None:
         f = float(v)
         return f if math.isfinite(f) else None
     return None
-
-
-class RateLimitedLog:
-    """Logs one line per (key, reason) at most every ``interval`` seconds, with the count."""
-
-    def __init__(self, logger: logging.Logger, interval: float = 10.0):
-        self.log = logger
-        self.interval = interval
-        self._last: dict = {}
-        self._count: collections.Counter = collections.Counter()
-
-    def warn(self, key: str, reason: str, detail: str) -> None:
-        k = (key, reason)
-        self._count[k] += 1
-        now = time.monotonic()
-        if now - self._last.get(k, -math.inf) >= self.interval:
-            n = self._count.pop(k)
-            self._last[k] = now
-            self.log.warning("%s: %s (%s)%s", key, reason, detail,
-                             f" [{n} since the last report]" if n > 1 else "")
 
 
 class Metrics:

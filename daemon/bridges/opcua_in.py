@@ -25,8 +25,9 @@ from pathlib import Path
 
 import zmq
 
-from daemon.bridges.common import FeedEnd, Metrics, RateLimitedLog, backoff_sleep, epoch, number
+from daemon.bridges.common import FeedEnd, Metrics, backoff_sleep, epoch, number
 from daemon.config.bridges import BridgeConfig
+from daemon.logsetup import RateLimitedLog
 
 log = logging.getLogger("posteriord.bridge.opcua_in")
 

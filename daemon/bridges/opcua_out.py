@@ -36,8 +36,9 @@ from pathlib import Path
 
 import zmq
 
-from daemon.bridges.common import Metrics, RateLimitedLog, prediction_rows, read_output
+from daemon.bridges.common import Metrics, prediction_rows, read_output
 from daemon.config.bridges import BridgeConfig
+from daemon.logsetup import RateLimitedLog
 
 log = logging.getLogger("posteriord.bridge.opcua_out")
 

@@ -40,6 +40,7 @@ from prometheus_client import CollectorRegistry, start_http_server
 
 from daemon.config import ModelConfig
 from daemon.exitcodes import EXIT_DURABILITY, EXIT_OK
+from daemon.logsetup import RateLimitedLog
 from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
@@ -92,28 +93,6 @@ class _Pending:
         self.block = block
 
 
-class RateLimitedLog:
-    """Log a (model, reason) at most once per ``interval`` seconds, counting the rest."""
-
-    def __init__(self, logger: logging.Logger, interval: float = 10.0):
-        self._log = logger
-        self._interval = interval
-        self._last: dict = {}
-        self._suppressed: Counter = Counter()
-
-    def warn(self, model: str, reason: str, detail: str) -> None:
-        key = (model, reason)
-        now = time.monotonic()
-        last = self._last.get(key)
-        if last is not None and now - last < self._interval:
-            self._suppressed[key] += 1
-            return
-        n = self._suppressed.pop(key, 0)
-        self._last[key] = now
-        more = f" ({n} more since last report)" if n else ""
-        self._log.warning("rejected model=%s reason=%s: %s%s", model or "-", reason, detail, more)
-
-
 class Service:
     """posteriord's runner around :class:`daemon.runtime.runner.ModelRunner` objects."""
 
@@ -140,7 +119,7 @@ class Service:
         self._own_ctx = context is None
         self._events: deque = deque()
         self._stop = False
-        self._rlog = RateLimitedLog(log)
+        self._rlog = RateLimitedLog(log, template="rejected model=%s reason=%s: %s")
         self._wake_r = self._wake_w = None
         self._http = None
         self.sub = self.pub = self.rep = None
