@@ -283,3 +283,81 @@ def test_opcua_out_security(sock_dir, tmp_path):
             await bridge.aclose()
 
     asyncio.run(scenario())
+
+
+def test_opcua_in_queue_keeps_a_burst_between_publications(sock_dir):
+    """Five changes of both inputs while the server holds its publications back: with a
+    queue of 8 per node every one of them becomes a row; with a queue of 1 (what a server
+    keeps when asked for none) only the last survives."""
+    from daemon.bridges.opcua_in import OpcUaIn
+
+    port = free_port()
+    plant = Plant(port, ["A", "B", "Q", "Qdrawn"])
+    feeds = [ipc(sock_dir, "q8"), ipc(sock_dir, "q1")]
+    svc = BridgedService(sock_dir, [TWO], feeds)
+
+    def bridge_for(feed, queue):
+        cfg = loads_bridge(svc.toml + _in_toml(plant.url, feed, anonymous="true",
+                                               queue_size=queue), "opcua_in")
+        return OpcUaIn(cfg)
+
+    async def burst(bridge, t0):
+        task = asyncio.create_task(bridge.run())
+        try:
+            await asyncio.wait_for(bridge.connected.wait(), 10)
+            await bridge.feed.wait_subscribed(["two"], 10)
+            # a row the bridge has surely sent: the burst comes after it
+            await plant.write("A", 1.0, t0)
+            await plant.write("B", 1.0, t0)
+            await asyncio.to_thread(recv_until, svc.out,
+                                    lambda m: m[0] == "pred/two" and m[1]["t"] == t0)
+            subs = list(plant.server.iserver.subscription_service.subscriptions.values())
+            assert len(subs) == 1
+            # SetPublishingMode (OPC UA Part 4, 5.13.4): the server keeps queueing the
+            # monitored items' changes but sends none until publishing is enabled again
+            await subs[0].set_publishing_mode(False)
+            times = [t0 + k for k in range(1, 6)]
+            for k, t in enumerate(times):
+                await plant.write("A", 2.0 + k, t)
+                await plant.write("B", 3.0 + k, t)
+            await subs[0].set_publishing_mode(True)
+            got = await asyncio.to_thread(recv_until, svc.out,
+                                          lambda m: m[0] == "pred/two" and m[1]["t"] == times[-1])
+            return [m[1]["t"] for m in got if m[0] == "pred/two"], times
+        finally:
+            bridge.stop()
+            await asyncio.wait_for(task, 10)
+            await bridge.aclose()
+
+    async def scenario():
+        await plant.start()
+        try:
+            big = bridge_for(feeds[0], 8)
+            assert big.queue_size == 8
+            seen, times = await burst(big, T0 + 100)
+            assert seen == times
+            assert big.metrics.value("posteriord_bridge_published_total", model="two") == 6
+            one = bridge_for(feeds[1], 1)
+            seen, times = await burst(one, T0 + 200)
+            assert seen == times[-1:]
+        finally:
+            await plant.stop()
+
+    asyncio.run(scenario())
+    assert svc.alive()
+
+
+def test_opcua_in_default_queue_size():
+    from conftest import toml_config
+
+    _TWO_TOML = toml_config({}, [TWO])
+    cfg = loads_bridge(_TWO_TOML + _in_toml("opc.tcp://h:4840", "ipc:///tmp/x",
+                                            anonymous="true"), "opcua_in")
+    # 20 ms publishing / 20 ms sampling: one sampling per interval, twice that, at least 2
+    from daemon.bridges.opcua_in import OpcUaIn
+
+    assert OpcUaIn(cfg).queue_size == 2
+    cfg = loads_bridge(_TWO_TOML + _in_toml("opc.tcp://h:4840", "ipc:///tmp/x",
+                                            anonymous="true").replace(
+        'publishing_interval = "20ms"', 'publishing_interval = "1s"'), "opcua_in")
+    assert OpcUaIn(cfg).queue_size == 100

@@ -1,9 +1,11 @@
 """OPC UA in: a client of the plant's OPC UA server that puts input samples on the feed.
 
 One subscription carries every configured node (sampling and publishing intervals as set,
-no deadband). Each data change updates the model's table of last readings; the row is sent
-once the changes that arrived together have been applied, stamped with the newest source
-timestamp among them (the server's clock, never the bridge's). Status codes (OPC UA Part 4,
+no deadband, a queue per node so that a burst between two publications is not lost). The
+changes that arrive together are applied to the model's table of last readings in
+source-time order; a row is sent when an input changes a second time (the queue held
+several values of it) and after the last change, stamped with the newest source timestamp
+among the changes it holds (the server's clock, never the bridge's). Status codes (OPC UA Part 4,
 the two severity bits): Good is used; Uncertain is used and counted; Bad makes the reading
 missing, and the model gets no sample until every input is usable again (the daemon learns
 nothing from a row with a hole in it).
@@ -59,6 +61,7 @@ class _Model:
         self.bad = [False] * len(tags)
         self.last_t = -math.inf
         self.new_t: float | None = None  # newest source time among changes not yet sent
+        self.changed: set[int] = set()  # inputs changed since the last row
 
 
 class _Lab:
@@ -69,6 +72,7 @@ class _Lab:
         self.value: float | None = None
         self.drawn: float | None = None
         self.sent_drawn: float | None = None
+        self.changed: set[str] = set()  # "value", "drawn": changed since the last send
 
 
 class OpcUaIn:
@@ -101,8 +105,17 @@ class OpcUaIn:
         self._password = password
         self._stop = asyncio.Event()
         self._flush_pending = False
+        self._batch: list[tuple] = []
         self.connected = asyncio.Event()
         self.metrics_address = None
+
+    @property
+    def queue_size(self) -> int:
+        """The monitored items' queue size asked of the server ([opcua_in] queue_size)."""
+        c = self.cfg
+        if c.queue_size:
+            return c.queue_size
+        return max(2, 2 * math.ceil(c.publishing_interval / c.sampling_interval - 1e-9))
 
     # ------------------------------------------------------------------ set-up
     def open(self) -> None:
@@ -199,8 +212,8 @@ class OpcUaIn:
         ids = [*self.targets, *self.lab_nodes]
         nodes = [client.get_node(i) for i in ids]
         # deadband none: the default data change filter reports every change of value
-        handles = await sub.subscribe_data_change(nodes, sampling_interval=c.sampling_interval
-                                                  * 1000.0)
+        handles = await sub.subscribe_data_change(nodes, queuesize=self.queue_size,
+                                                  sampling_interval=c.sampling_interval * 1000.0)
         for nid, h in zip(ids, handles, strict=True):
             if isinstance(h, ua.StatusCode):
                 raise RuntimeError(f"the server refused to monitor {nid}: {h}")
@@ -223,14 +236,17 @@ class OpcUaIn:
         for m in self.models.values():
             m.values = [None] * len(m.tags)
             m.new_t = None
+            m.changed.clear()
         for lab in self.labs:
             lab.value = lab.drawn = None
+            lab.changed.clear()
+        self._batch = []
 
     # ------------------------------------------------------------------ notifications
     def datachange_notification(self, node, val, data) -> None:
         """asyncua's handler call for one monitored item; never raises."""
         try:
-            self._change(node, val, data)
+            self._batch.append(self._reading(node, val, data))
         except Exception:  # noqa: BLE001 - a bad notification must not end the subscription
             log.exception("data change of %s could not be handled", node)
         if not self._flush_pending:
@@ -241,16 +257,38 @@ class OpcUaIn:
     def status_change_notification(self, status) -> None:
         log.warning("subscription status changed: %s", status)
 
-    def _change(self, node, val, data) -> None:
+    def _reading(self, node, val, data) -> tuple:
+        """(node id, value, severity, source time or None) of one notification."""
         nid = self._node_ids.get(node.nodeid) if hasattr(self, "_node_ids") else None
         if nid is None:
             nid = node.nodeid.to_string()
         dv = data.monitored_item.Value
-        sev = severity(status_of(dv))
         t = epoch(dv.SourceTimestamp)
         if t is None:
             t = epoch(dv.ServerTimestamp)
+        return nid, val, severity(status_of(dv)), t
+
+    def _flush(self) -> None:
+        """Apply the changes delivered together in source-time order. A model's row is sent
+        when a change comes for an input that already changed since its last row (a queue
+        of several values per node: one row per value, none overwritten) and at the end."""
+        self._flush_pending = False
+        batch, self._batch = self._batch, []
+        batch.sort(key=lambda r: -math.inf if r[3] is None else r[3])  # stable: arrival order
+        try:
+            for reading in batch:
+                self._apply(*reading)
+            for m in self.models.values():
+                self._send_row(m)
+            for lab in self.labs:
+                self._send_lab(lab)
+        except Exception:  # noqa: BLE001
+            log.exception("flushing readings failed")
+
+    def _apply(self, nid: str, val, sev: str, t: float | None) -> None:
         for m, i in self.targets.get(nid, ()):
+            if i in m.changed:
+                self._send_row(m)
             self.metrics.received.labels(self.name, m.name).inc()
             if t is None:
                 self.metrics.drop(m.name, "no_time")
@@ -269,25 +307,20 @@ class OpcUaIn:
                 m.bad[i] = False
             m.uncertain[i] = sev == UNCERTAIN
             m.new_t = t if m.new_t is None else max(m.new_t, t)
+            m.changed.add(i)
         for lab, part in self.lab_nodes.get(nid, ()):
+            if part in lab.changed:
+                self._send_lab(lab)
+            lab.changed.add(part)
             self.metrics.received.labels(self.name, lab.model).inc()
             if part == "value":
                 lab.value = None if sev == BAD else number(val)
             else:
                 lab.drawn = None if sev == BAD else _drawn(val)
 
-    def _flush(self) -> None:
-        self._flush_pending = False
-        try:
-            for m in self.models.values():
-                self._send_row(m)
-            for lab in self.labs:
-                self._send_lab(lab)
-        except Exception:  # noqa: BLE001
-            log.exception("flushing readings failed")
-
     def _send_row(self, m: _Model) -> None:
         t = m.new_t
+        m.changed.clear()
         if t is None:
             return
         m.new_t = None
@@ -308,6 +341,7 @@ class OpcUaIn:
         self.feed.send(m.name, {"t": t, "x": list(m.values)})
 
     def _send_lab(self, lab: _Lab) -> None:
+        lab.changed.clear()
         if lab.drawn is None or lab.drawn == lab.sent_drawn:
             return
         if lab.value is None:

@@ -20,6 +20,7 @@ from daemon.config.kinds import (
     BOOLEAN,
     DURATION,
     ENDPOINT,
+    GE0,
     GT0,
     HOST_PORT,
     INTEGER,
@@ -100,6 +101,13 @@ BRIDGE_SETTINGS: tuple[Setting, ...] = (
             "Sampling interval asked of the server for every node (deadband none).", GT0),
     Setting("opcua_in", "publishing_interval", "publishing_interval", DURATION, 1.0,
             "Publishing interval of the subscription.", GT0),
+    Setting("opcua_in", "queue_size", "queue_size", INTEGER, 0,
+            "Values the server keeps per node between two publications (the monitored "
+            "item's queue; when it overflows the oldest is lost). A burst of changes "
+            "between two publishing intervals arrives whole, one row per value. 0: twice "
+            "the samplings in a publishing interval, so that a publication late by a whole "
+            "interval loses nothing.", GE0,
+            default_doc="0 (2 × publishing_interval / sampling_interval)"),
     Setting("opcua_in", "reconnect_ivl", "reconnect_ivl", DURATION, 1.0,
             "First wait before reconnecting; doubled on each failure.", GT0),
     Setting("opcua_in", "reconnect_ivl_max", "reconnect_ivl_max", DURATION, 60.0,
