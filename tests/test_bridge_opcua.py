@@ -361,3 +361,88 @@ def test_opcua_in_default_queue_size():
                                             anonymous="true").replace(
         'publishing_interval = "20ms"', 'publishing_interval = "1s"'), "opcua_in")
     assert OpcUaIn(cfg).queue_size == 100
+
+
+def test_opcua_in_security(sock_dir, tmp_path):
+    """The bridge as a client of a plant server that offers Basic256Sha256 with sign and
+    encrypt only, trusts one client certificate (asyncua's own trust store and validator)
+    and wants a user name: the bridge with that certificate and the right password feeds the
+    daemon; a stranger's certificate, a wrong password or no security at all are refused."""
+    from daemon.bridges.opcua_in import OpcUaIn
+
+    async def certs():
+        trusted = tmp_path / "trusted"
+        trusted.mkdir()
+        plant_cert = await make_cert(tmp_path, "plant", "urn:test:plant", server=True)
+        bridge_cert = await make_cert(tmp_path, "bridge", "urn:test:bridge")
+        stranger = await make_cert(tmp_path, "stranger", "urn:test:stranger")
+        (trusted / "bridge.der").write_bytes(bridge_cert[0].read_bytes())
+        return trusted, plant_cert, bridge_cert, stranger
+
+    trusted, plant_cert, bridge_cert, stranger = asyncio.run(certs())
+    plant = Plant(free_port(), ["A", "B", "Q", "Qdrawn"],
+                  security={"certificate": plant_cert[0], "private_key": plant_cert[1],
+                            "trusted": trusted, "users": {"bridge": "pl4nt"}})
+    feed = ipc(sock_dir, "secure-in")
+    svc = BridgedService(sock_dir, [TWO], [feed])
+    (tmp_path / "good").write_text("pl4nt\n")
+    (tmp_path / "bad").write_text("guess\n")
+
+    def bridge(cert_key, password="good", policy='"Basic256Sha256"'):
+        extra = {"security_policy": policy, "certificate": f'"{cert_key[0]}"',
+                 "private_key": f'"{cert_key[1]}"', "server_certificate": f'"{plant_cert[0]}"',
+                 "user": '"bridge"', "password_file": f'"{tmp_path / password}"'}
+        return OpcUaIn(loads_bridge(svc.toml + _in_toml(plant.url, feed, **extra), "opcua_in"))
+
+    async def refusal(b):
+        client = await b._client()
+        try:
+            await client.connect()
+        except Exception as exc:  # noqa: BLE001 - whatever the refusal is called
+            return exc
+        await client.disconnect()
+        return "connected"
+
+    async def scenario():
+        await plant.start()
+        try:
+            # the refusals are OPC UA status codes of Part 4, as asyncua names them
+            got = await refusal(bridge(stranger))
+            assert type(got).__name__ == "BadCertificateUntrusted", got
+            assert plant.refused_certificates == 1
+            got = await refusal(bridge(bridge_cert, "bad"))
+            assert type(got).__name__ == "BadUserAccessDenied", got
+            assert plant.users.refused == ["bridge"]
+            assert await refusal(bridge(bridge_cert, policy='"none"')) != "connected"
+            # the stranger's bridge keeps trying (with its back-off) and never gets in
+            loose = bridge(stranger)
+            task = asyncio.create_task(loose.run())
+            try:
+                await until(lambda: plant.refused_certificates >= 3, what="two more refusals")
+                assert not loose.connected.is_set()
+                assert loose.metrics.value("posteriord_bridge_connected") == 0
+                assert loose.metrics.value("posteriord_bridge_reconnects_total") == 0
+            finally:
+                loose.stop()
+                await asyncio.wait_for(task, 10)
+                await loose.aclose()
+            # the trusted certificate with the right password: readings reach the daemon,
+            # stamped with the plant's source time
+            good = bridge(bridge_cert)
+            task = asyncio.create_task(good.run())
+            try:
+                await asyncio.wait_for(good.connected.wait(), 10)
+                await good.feed.wait_subscribed(["two"], 10)
+                await plant.write("A", 1.0, T0 + 10)
+                await plant.write("B", 2.0, T0 + 10)
+                await asyncio.to_thread(recv_until, svc.out,
+                                        lambda m: m[0] == "pred/two" and m[1]["t"] == T0 + 10)
+            finally:
+                good.stop()
+                await asyncio.wait_for(task, 10)
+                await good.aclose()
+        finally:
+            await plant.stop()
+
+    asyncio.run(scenario())
+    assert svc.alive()
