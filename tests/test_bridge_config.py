@@ -77,6 +77,22 @@ CASES = [
     ('[opcua_out]\nendpoint = "opc.tcp://0.0.0.0:4840"\n', "opcua_out",
      "opcua_out.security_policy", '"Basic256Sha256" (the endpoint can be reached from other '
      'machines)', '"none"'),
+    ('[opcua_out]\n[[opcua_out.write]]\nmodel = "two"\nvariable = "Mean"\nnode = "ns=2;s=X"\n',
+     "opcua_out", "opcua_out.write_server",
+     "the address of the server that [[opcua_out.write]] writes to",
+     "nothing (the key is missing)"),
+    ('[opcua_out]\nwrite_server = "opc.tcp://dcs:4840"\nwrite_anonymous = true\n', "opcua_out",
+     "opcua_out.write", "at least one [[opcua_out.write]] (with write_server)", "nothing"),
+    ('[opcua_out]\nwrite_server = "opc.tcp://dcs:4840"\n[[opcua_out.write]]\nmodel = "two"\n'
+     'variable = "Mean"\nnode = "ns=2;s=X"\n', "opcua_out", "opcua_out.write_user",
+     "a user name, or write_anonymous = true", "nothing (the key is missing)"),
+    ('[opcua_out]\nwrite_server = "opc.tcp://dcs:4840"\nwrite_anonymous = true\n'
+     'write_security_policy = "Basic256Sha256"\n[[opcua_out.write]]\nmodel = "two"\n'
+     'variable = "Mean"\nnode = "ns=2;s=X"\n', "opcua_out", "opcua_out.write_certificate",
+     'a file (required with write_security_policy = "Basic256Sha256")',
+     "nothing (the key is missing)"),
+    ('[opcua_out]\n[[opcua_out.write]]\nmodel = "two"\nvariable = "Median"\nnode = "ns=2;s=X"\n',
+     "opcua_out", "opcua_out.write[0].variable", None, '"Median"'),
     ("[mqtt]\nqos = 3\n", "mqtt", "mqtt.qos", "an integer 0, 1 or 2", "3"),
     ('[mqtt]\nreconnect_ivl = "5s"\nreconnect_ivl_max = "1s"\n', "mqtt",
      "mqtt.reconnect_ivl_max", "a duration >= reconnect_ivl", '"1s"'),
@@ -105,7 +121,9 @@ VALID = {
                  "node": [{"model": "two", "tag": "A", "node": "ns=2;s=A"},
                           {"model": "two", "tag": "B", "node": "ns=2;s=B"}],
                  "lab": [{"model": "two", "value": "ns=2;s=Q", "drawn": "ns=2;s=D"}]},
-    "opcua_out": {"model": [{"name": "two", "unit": "%wt"}]},
+    "opcua_out": {"model": [{"name": "two", "unit": "%wt"}],
+                  "write_server": "opc.tcp://dcs:4840", "write_anonymous": True,
+                  "write": [{"model": "two", "variable": "Mean", "node": "ns=2;s=QI.Mean"}]},
     "mqtt": {},
     "lab_folder": {"folder": "lab"},
 }

@@ -446,3 +446,133 @@ def test_opcua_in_security(sock_dir, tmp_path):
 
     asyncio.run(scenario())
     assert svc.alive()
+
+
+class _Dcs:
+    """An asyncua server playing an existing control-system server with a few writable
+    variables of its own types, and one that is read-only."""
+
+    def __init__(self, port: int):
+        self.url = f"opc.tcp://127.0.0.1:{port}/dcs"
+        self.server = None
+        self.vars = {}
+
+    async def start(self):
+        from asyncua import Server, ua
+
+        if self.server is not None:
+            await self.server.start()
+            return
+        s = Server()
+        await s.init()
+        s.set_endpoint(self.url)
+        idx = await s.register_namespace("urn:test:dcs")
+        obj = await s.nodes.objects.add_object(idx, "C301")
+        kinds = {"QI.Mean": ua.VariantType.Double, "QI.Std": ua.VariantType.Float,
+                 "QI.Status": ua.VariantType.String, "QI.LabTime": ua.VariantType.DateTime,
+                 "QI.Locked": ua.VariantType.Double}
+        for name, kind in kinds.items():
+            start = stamp(T0 - 1e6) if kind == ua.VariantType.DateTime else (
+                "" if kind == ua.VariantType.String else 0.0)
+            v = await obj.add_variable(ua.NodeId(name, idx), name, ua.Variant(start, kind))
+            if name != "QI.Locked":
+                await v.set_writable()
+            self.vars[name] = v
+        self.server = s
+        await s.start()
+
+    def read(self, name: str):
+        from asyncua import ua
+
+        return self.server.iserver.aspace.read_attribute_value(self.vars[name].nodeid,
+                                                               ua.AttributeIds.Value)
+
+    async def stop(self):
+        if self.server is not None:
+            await self.server.stop()
+
+
+def test_opcua_out_writes_to_an_existing_server(sock_dir):
+    """The served values also go to nodes of another server, the bridge being its client:
+    values, status codes and source timestamps equal the daemon's pred/ and fit/ messages;
+    a Float node gets a Float; a read-only node is a counted refusal; after that server
+    comes back the current values are written again."""
+    from daemon.bridges.common import epoch
+    from daemon.bridges.opcua_out import OpcUaOut, quality
+
+    dcs = _Dcs(free_port())
+    svc = BridgedService(sock_dir, [TWO], [])
+    url = f"opc.tcp://127.0.0.1:{free_port()}/posteriord"
+    writes = [("Mean", "QI.Mean"), ("Std", "QI.Std"), ("Status", "QI.Status"),
+              ("LabTime", "QI.LabTime"), ("Lo", "QI.Locked")]
+    extra = {"write_server": f'"{dcs.url}"', "write_anonymous": "true",
+             "write_timeout": '"1s"', "reconnect_ivl": '"100ms"', "reconnect_ivl_max": '"200ms"'}
+    text = _out_toml(url, svc.publish, anonymous="true", **extra)
+    for var, node in writes:
+        text += f'[[opcua_out.write]]\nmodel = "two"\nvariable = "{var}"\nnode = "ns=2;s={node}"\n'
+    bridge = OpcUaOut(loads_bridge(svc.toml + text, "opcua_out"))
+    w = bridge.writer
+
+    async def scenario():
+        from asyncua import ua
+
+        await dcs.start()
+        await bridge.open()
+        task = asyncio.create_task(bridge.run())
+        try:
+            await asyncio.wait_for(w.connected.wait(), 10)
+            t = T0
+            while True:  # the daemon's SUB may not have reached the bridge yet
+                t += 1.0
+                svc.feed.send("two", {"t": t, "x": [1.0, 2.0]})
+                await asyncio.to_thread(svc.barrier)
+                await asyncio.sleep(0.05)
+                if bridge.written:
+                    break
+            preds = []
+            for a, b, y in [(3.0, 1.0, 7.5), (2.0, 5.0, 12.0)]:
+                t += 10.0
+                svc.feed.send("two", {"t": t, "x": [a, b]})
+                svc.feed.send("two", {"t": t, "y": y})
+                got = await asyncio.to_thread(svc.barrier)
+                preds += [body for topic, body in got if topic == "pred/two"]
+            last = preds[-1]
+
+            def current():
+                return epoch(dcs.read("QI.Mean").SourceTimestamp) == last["t"] \
+                    and epoch(dcs.read("QI.LabTime").Value.Value) == t
+
+            await until(current, what="values written to the DCS")
+            code = quality(last["status"], last["trust"])
+            mean, std, status = dcs.read("QI.Mean"), dcs.read("QI.Std"), dcs.read("QI.Status")
+            assert mean.Value.Value == last["mean"]
+            assert mean.StatusCode.value == code and std.StatusCode.value == code
+            # a Float node holds the IEEE single nearest the mean (numpy.float32)
+            import numpy as np
+
+            assert std.Value.VariantType == ua.VariantType.Float
+            assert std.Value.Value == float(np.float32(last["std"]))
+            assert epoch(std.SourceTimestamp) == last["t"]
+            assert status.Value.Value == last["status"]
+            await until(lambda: bridge.metrics.value("posteriord_bridge_dropped_total",
+                                                    model="two", reason="write_refused"),
+                        what="the read-only node refused")
+            assert dcs.read("QI.Locked").Value.Value == 0.0
+            # the DCS restarts and has lost the value meanwhile: it is written again
+            await dcs.stop()
+            await until(lambda: not w.connected.is_set(), what="loss noticed")
+            await dcs.server.write_attribute_value(dcs.vars["QI.Mean"].nodeid,
+                                                   ua.DataValue(ua.Variant(-1.0)))
+            await dcs.start()
+            await asyncio.wait_for(w.connected.wait(), 10)
+            await until(lambda: dcs.read("QI.Mean").Value.Value == last["mean"],
+                        what="the value written again")
+            assert epoch(dcs.read("QI.Mean").SourceTimestamp) == last["t"]
+            assert bridge.metrics.value("posteriord_bridge_reconnects_total") == 1
+        finally:
+            bridge.stop()
+            await asyncio.wait_for(task, 10)
+            await bridge.aclose()
+            await dcs.stop()
+
+    asyncio.run(scenario())

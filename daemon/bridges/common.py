@@ -14,6 +14,7 @@ import collections
 import contextlib
 import datetime as _dt
 import math
+from pathlib import Path
 
 import numpy as np
 import zmq
@@ -34,6 +35,7 @@ REASONS = (
     "unknown_model",  # a topic or file naming no configured model
     "bad_lab",        # a lab result without a usable value or drawn time
     "bad_file",       # a lab CSV file that cannot be read as a whole
+    "write_refused",  # a value an existing OPC UA server did not take (type, access, status)
 )
 
 HOLD = 10000  # samples held per model while the daemon is not subscribed
@@ -274,6 +276,48 @@ def read_output(frames, max_bytes: int = 1 << 24) -> tuple[str, str, dict]:
 async def backoff_sleep(attempt: int, first: float, most: float) -> None:
     """Wait before reconnection ``attempt`` (0, 1, ...): doubling from ``first`` to ``most``."""
     await asyncio.sleep(min(most, first * 2.0 ** min(attempt, 30)))
+
+
+async def opcua_client(url: str, timeout: float, default_uri: str, policy: str, mode: str,
+                       certificate: str, private_key: str, server_certificate: str,
+                       user: str | None, password_file: str, password: str | None = None):
+    """An asyncua client (not connected) with the security and identity of a bridge's
+    settings; the password is the first line of ``password_file`` unless given."""
+    from asyncua import Client, ua
+    from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
+
+    client = Client(url, timeout=timeout)
+    client.application_uri = certificate_uri(certificate) or default_uri
+    if policy == "Basic256Sha256":
+        await client.set_security(
+            SecurityPolicyBasic256Sha256, certificate=certificate, private_key=private_key,
+            server_certificate=server_certificate or None,
+            mode=(ua.MessageSecurityMode.SignAndEncrypt if mode == "sign_and_encrypt"
+                  else ua.MessageSecurityMode.Sign))
+    if user is not None:
+        client.set_user(user)
+        if password is None:
+            password = Path(password_file).read_text(encoding="utf-8").splitlines()[0]
+        client.set_password(password)
+    return client
+
+
+def certificate_uri(path: str) -> str | None:
+    """The application URI in a certificate's subject alternative names (OPC UA Part 6
+    wants the session's application URI to be that one), or None."""
+    if not path:
+        return None
+    from cryptography import x509
+
+    data = Path(path).read_bytes()
+    cert = (x509.load_pem_x509_certificate(data) if b"-----BEGIN" in data
+            else x509.load_der_x509_certificate(data))
+    try:
+        san = cert.extensions.get_extension_for_class(x509.SubjectAlternativeName).value
+    except x509.ExtensionNotFound:
+        return None
+    uris = san.get_values_for_type(x509.UniformResourceIdentifier)
+    return uris[0] if uris else None
 
 
 def run_bridge(factory, config_path: str, section: str) -> int:

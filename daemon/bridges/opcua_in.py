@@ -23,11 +23,17 @@ import asyncio
 import contextlib
 import logging
 import math
-from pathlib import Path
 
 import zmq
 
-from daemon.bridges.common import FeedEnd, Metrics, backoff_sleep, epoch, number
+from daemon.bridges.common import (
+    FeedEnd,
+    Metrics,
+    backoff_sleep,
+    epoch,
+    number,
+    opcua_client,
+)
 from daemon.config.bridges import BridgeConfig
 from daemon.logsetup import RateLimitedLog
 
@@ -131,26 +137,11 @@ class OpcUaIn:
         self._stop.set()
 
     async def _client(self):
-        from asyncua import Client, ua
-        from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
-
         c = self.cfg
-        client = Client(c.server, timeout=c.timeout)
-        client.application_uri = certificate_uri(c.certificate) or f"urn:posteriord:{self.name}"
-        if c.security_policy == "Basic256Sha256":
-            mode = (ua.MessageSecurityMode.SignAndEncrypt if c.security_mode == "sign_and_encrypt"
-                    else ua.MessageSecurityMode.Sign)
-            await client.set_security(SecurityPolicyBasic256Sha256, certificate=c.certificate,
-                                      private_key=c.private_key,
-                                      server_certificate=c.server_certificate or None,
-                                      mode=mode)
-        if c.user is not None:
-            client.set_user(c.user)
-            password = self._password
-            if password is None:
-                password = Path(c.password_file).read_text(encoding="utf-8").splitlines()[0]
-            client.set_password(password)
-        return client
+        return await opcua_client(
+            c.server, c.timeout, f"urn:posteriord:{self.name}", c.security_policy,
+            c.security_mode, c.certificate, c.private_key, c.server_certificate, c.user,
+            c.password_file, self._password)
 
     # ------------------------------------------------------------------ the loop
     async def run(self) -> None:
@@ -355,24 +346,6 @@ class OpcUaIn:
             self.feed.close()
         if self._own_ctx and self._ctx is not None:
             self._ctx.term()
-
-
-def certificate_uri(path: str) -> str | None:
-    """The application URI in a certificate's subject alternative names (OPC UA Part 6
-    wants the session's application URI to be that one), or None."""
-    if not path:
-        return None
-    from cryptography import x509
-
-    data = Path(path).read_bytes()
-    cert = (x509.load_pem_x509_certificate(data) if b"-----BEGIN" in data
-            else x509.load_der_x509_certificate(data))
-    try:
-        san = cert.extensions.get_extension_for_class(x509.SubjectAlternativeName).value
-    except x509.ExtensionNotFound:
-        return None
-    uris = san.get_values_for_type(x509.UniformResourceIdentifier)
-    return uris[0] if uris else None
 
 
 def _drawn(v) -> float | None:
