@@ -181,3 +181,32 @@ async def make_cert(folder, name: str, uri: str, *, server: bool = False):
     await setup_self_signed_certificate(key, cert, uri, "localhost", [use],
                                         {"commonName": name})
     return cert, key
+
+
+class PlantThread:
+    """A :class:`Plant` on an event loop of its own thread, for tests whose bridges and
+    daemon are subprocesses: :meth:`write` blocks until the server has the value."""
+
+    def __init__(self, port: int, tags, **kw):
+        self.plant = Plant(port, tags, **kw)
+        self.url = self.plant.url
+        self.loop = asyncio.new_event_loop()
+        self.thread = threading.Thread(target=self.loop.run_forever, name="plant", daemon=True)
+        self.thread.start()
+
+    def _call(self, coro, timeout: float = 30.0):
+        return asyncio.run_coroutine_threadsafe(coro, self.loop).result(timeout)
+
+    def start(self) -> None:
+        self._call(self.plant.start())
+
+    def write(self, tag: str, value, t: float, status: int = 0) -> None:
+        self._call(self.plant.write(tag, value, t, status))
+
+    def close(self) -> None:
+        try:
+            self._call(self.plant.stop())
+        finally:
+            self.loop.call_soon_threadsafe(self.loop.stop)
+            self.thread.join(10)
+            self.loop.close()

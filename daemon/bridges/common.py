@@ -90,15 +90,21 @@ class Metrics:
         self.connected = Gauge("posteriord_bridge_connected",
                                "1 while the bridge is connected to the plant side",
                                ["bridge"], registry=r)
+        self.subscribed = Gauge("posteriord_bridge_daemon_subscribed",
+                                "1 while a daemon is subscribed to the model on the bridge's "
+                                "feed (samples are held, not sent, while it is 0)",
+                                ["bridge", "model"], registry=r)
         self.reconnects.labels(bridge)
         self.gaps.labels(bridge)
         self.connected.labels(bridge).set(0)
+        self.models: set[str] = set()
         for m in models:
             self.known(m)
         self._http = None
 
     def known(self, model: str) -> None:
         b = self.bridge
+        self.models.add(model)
         self.received.labels(b, model)
         self.published.labels(b, model)
         self.uncertain.labels(b, model)
@@ -155,18 +161,27 @@ class FeedEnd:
         self.subscribed: set[str] = set()
         self.held: dict[str, collections.deque] = {}
         self.seq: collections.Counter = collections.Counter()
+        self._gauges_set = False
 
     def _is_subscribed(self, model: str) -> bool:
         return model in self.subscribed or any(model.startswith(s) for s in self.subscribed)
 
     def take_events(self) -> None:
         """Read the subscription changes that have arrived, and flush what they unblock."""
+        changed = False
         while self.sock.poll(0):
             raw = self.sock.recv(zmq.NOBLOCK)
             if raw[:1] == b"\x01":
                 self.subscribed.add(raw[1:].decode("utf-8", "replace"))
+                changed = True
             elif raw[:1] == b"\x00":
                 self.subscribed.discard(raw[1:].decode("utf-8", "replace"))
+                changed = True
+        if changed or not self._gauges_set:
+            self._gauges_set = True
+            for model in self.metrics.models:
+                self.metrics.subscribed.labels(self.name, model).set(
+                    self._is_subscribed(model))
         for model, queue in self.held.items():
             if queue and self._is_subscribed(model):
                 while queue:
