@@ -150,3 +150,26 @@ def test_docs_bridges_md_is_generated():
         "docs/bridges.md is out of date; regenerate it with: python -c \"from "
         "daemon.config.bridges import bridges_markdown; open('docs/bridges.md', 'w')"
         ".write(bridges_markdown())\"")
+
+
+def test_docs_bridge_metrics_md_is_generated_and_complete():
+    from prometheus_client import generate_latest
+
+    from daemon.bridges.common import BRIDGE_METRICS, REASONS, Metrics, metrics_markdown
+
+    committed = (ROOT / "docs" / "bridge-metrics.md").read_text(encoding="utf-8")
+    assert committed == metrics_markdown(), (
+        "docs/bridge-metrics.md is out of date; regenerate it with: python -c \"from "
+        "daemon.bridges.common import metrics_markdown; open('docs/bridge-metrics.md', 'w')"
+        ".write(metrics_markdown())\"")
+    # what a bridge serves is what the table (and so the page) lists, every series of a
+    # configured model at zero from the start
+    m = Metrics("opcua-in", ["two"])
+    m.subscribed.labels("opcua-in", "two").set(0)
+    text = generate_latest(m.registry).decode()
+    served = {line.split()[2] for line in text.splitlines() if line.startswith("# TYPE")
+              and not line.split()[2].endswith("_created")}
+    assert served == {name for _, _, name, _, _ in BRIDGE_METRICS}
+    for reason in REASONS:
+        assert m.value("posteriord_bridge_dropped_total", model="two", reason=reason) == 0
+        assert f'reason="{reason}"' in text

@@ -62,38 +62,42 @@ def number(v) -> float | None:
     return None
 
 
+# Every metric family of the bridges, declared once: (attribute, type, name, labels, help).
+# docs/bridge-metrics.md is generated from this table (:func:`metrics_markdown`).
+BRIDGE_METRICS = (
+    ("received", "counter", "posteriord_bridge_received_total", ("bridge", "model"),
+     "Readings, lab results or daemon outputs received by the bridge."),
+    ("published", "counter", "posteriord_bridge_published_total", ("bridge", "model"),
+     "Messages passed on by the bridge (to the feed, the broker or the served variables)."),
+    ("dropped", "counter", "posteriord_bridge_dropped_total", ("bridge", "model", "reason"),
+     "What the bridge did not pass on, by reason."),
+    ("uncertain", "counter", "posteriord_bridge_uncertain_total", ("bridge", "model"),
+     "Rows sent although a reading in them had an Uncertain OPC UA status."),
+    ("reconnects", "counter", "posteriord_bridge_reconnects_total", ("bridge",),
+     "Connections to the plant side (OPC UA server, broker, written server) lost and made "
+     "again."),
+    ("gaps", "counter", "posteriord_bridge_gaps_total", ("bridge",),
+     "Interruptions of the readings: a lost connection or subscription (what changed "
+     "meanwhile is not known)."),
+    ("connected", "gauge", "posteriord_bridge_connected", ("bridge",),
+     "1 while the bridge is connected to the plant side."),
+    ("subscribed", "gauge", "posteriord_bridge_daemon_subscribed", ("bridge", "model"),
+     "1 while a daemon is subscribed to the model on the bridge's feed; while it is 0 the "
+     "bridge holds the samples (a bounded queue; overflow is dropped as no_subscriber)."),
+)
+
+
 class Metrics:
     """The Prometheus series of one bridge, in its own registry, known at zero from the start."""
 
     def __init__(self, bridge: str, models=(), registry: CollectorRegistry | None = None):
         self.bridge = bridge
         self.registry = registry or CollectorRegistry()
-        r = self.registry
-        self.received = Counter("posteriord_bridge_received_total",
-                                "Readings, lab results or outputs received by the bridge",
-                                ["bridge", "model"], registry=r)
-        self.published = Counter("posteriord_bridge_published_total",
-                                 "Messages passed on by the bridge", ["bridge", "model"],
-                                 registry=r)
-        self.dropped = Counter("posteriord_bridge_dropped_total",
-                               "What the bridge did not pass on, by reason",
-                               ["bridge", "model", "reason"], registry=r)
-        self.uncertain = Counter("posteriord_bridge_uncertain_total",
-                                 "Readings used although their status was Uncertain",
-                                 ["bridge", "model"], registry=r)
-        self.reconnects = Counter("posteriord_bridge_reconnects_total",
-                                  "Connections to the plant side lost and made again",
-                                  ["bridge"], registry=r)
-        self.gaps = Counter("posteriord_bridge_gaps_total",
-                            "Interruptions of the readings (a lost connection or subscription)",
-                            ["bridge"], registry=r)
-        self.connected = Gauge("posteriord_bridge_connected",
-                               "1 while the bridge is connected to the plant side",
-                               ["bridge"], registry=r)
-        self.subscribed = Gauge("posteriord_bridge_daemon_subscribed",
-                                "1 while a daemon is subscribed to the model on the bridge's "
-                                "feed (samples are held, not sent, while it is 0)",
-                                ["bridge", "model"], registry=r)
+        for attr, kind, name, labels, help_ in BRIDGE_METRICS:
+            family = Counter if kind == "counter" else Gauge
+            # prometheus_client adds _total to a counter's name itself
+            setattr(self, attr, family(name.removesuffix("_total"), help_, list(labels),
+                                       registry=self.registry))
         self.reconnects.labels(bridge)
         self.gaps.labels(bridge)
         self.connected.labels(bridge).set(0)
@@ -108,6 +112,8 @@ class Metrics:
         self.received.labels(b, model)
         self.published.labels(b, model)
         self.uncertain.labels(b, model)
+        for reason in REASONS:
+            self.dropped.labels(b, model, reason)
 
     def drop(self, model: str, reason: str, n: int = 1) -> None:
         self.dropped.labels(self.bridge, model, reason).inc(n)
@@ -360,3 +366,20 @@ def run_bridge(factory, config_path: str, section: str) -> int:
 
     asyncio.run(go())
     return 0
+
+
+def metrics_markdown() -> str:
+    """The text of ``docs/bridge-metrics.md``."""
+    out = ["# Bridge metrics\n",
+           "<!-- Generated by daemon.bridges.common.metrics_markdown(); edit BRIDGE_METRICS "
+           "in\ndaemon/bridges/common.py and regenerate, do not edit by hand. -->\n",
+           "Each bridge serves these on its own Prometheus endpoint (`metrics` in its table, "
+           "docs/bridges.md), labelled with its `name`. The series of the configured models "
+           "exist from the start at zero, so `increase()` sees the first event.\n",
+           "Reasons (`reason` of `posteriord_bridge_dropped_total`): "
+           + ", ".join(f"`{r}`" for r in REASONS) + ".\n",
+           "| Metric | Type | Labels | Help |", "|---|---|---|---|"]
+    for _, kind, name, labels, help_ in BRIDGE_METRICS:
+        out.append(f"| `{name}` | {kind} | {', '.join(f'`{x}`' for x in labels)} | {help_} |")
+    out.append("")
+    return "\n".join(out)
