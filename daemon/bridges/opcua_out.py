@@ -39,6 +39,7 @@ import zmq
 from daemon.bridges.common import (
     Metrics,
     backoff_sleep,
+    certificate_uri,
     opcua_client,
     prediction_rows,
     read_output,
@@ -378,6 +379,9 @@ class OpcUaOut:
         await s.init()
         s.set_endpoint(c.endpoint)
         s.set_server_name(f"posteriord predictions ({self.name})")
+        uri = certificate_uri(c.certificate)
+        if uri:  # OPC UA Part 4: the server's application URI is its certificate's
+            await s.set_application_uri(uri)
         if c.security_policy == "Basic256Sha256":
             await s.load_certificate(c.certificate)
             await s.load_private_key(c.private_key)
