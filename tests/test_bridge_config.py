@@ -173,3 +173,61 @@ def test_docs_bridge_metrics_md_is_generated_and_complete():
     for reason in REASONS:
         assert m.value("posteriord_bridge_dropped_total", model="two", reason=reason) == 0
         assert f'reason="{reason}"' in text
+
+
+PLANT_DOC = ROOT / "docs" / "connecting-a-plant.md"
+
+
+def _after(marker: str, text: str) -> str:
+    assert marker in text, f"{marker!r} is not in docs/connecting-a-plant.md"
+    return text[text.index(marker) + len(marker):]
+
+
+def test_the_plant_guide_example_config_loads():
+    import re
+
+    text = _after("<!-- the example config:", PLANT_DOC.read_text(encoding="utf-8"))
+    example = re.search(r"```toml\n(.*?)```", text, re.S).group(1)
+    config = loads(example, "connecting-a-plant.md")
+    names = [m.name for m in config.models]
+    for section in ("opcua_in", "opcua_out", "mqtt", "lab_folder"):
+        cfg = loads_bridge(example, section, "connecting-a-plant.md")
+        feed = cfg.values.get("feed")
+        if feed is not None:  # every bridge's feed is one the daemon connects to
+            assert feed in config.daemon.feeds, (section, feed)
+        sub = cfg.values.get("subscribe")
+        if sub is not None:
+            assert sub == config.daemon.publish, section
+    opcua_in = loads_bridge(example, "opcua_in")
+    assert {n["model"] for n in opcua_in.items["node"]} == set(names)
+    assert loads_bridge(example, "opcua_out").items["write"]
+
+
+def test_the_plant_guide_names_every_unit():
+    text = PLANT_DOC.read_text(encoding="utf-8")
+    for unit in sorted((ROOT / "tools" / "systemd").glob("*.service")):
+        assert unit.name in text, unit.name
+
+
+def test_the_plant_guide_status_table_is_the_code():
+    pytest.importorskip("asyncua", reason="the opcua extra (asyncua) is not installed")
+    import re
+
+    from daemon.bridges.opcua_out import quality
+
+    text = _after("<!-- the status-code table:", PLANT_DOC.read_text(encoding="utf-8"))
+    rows = [line for line in text.splitlines()[:12] if line.startswith("| ")]
+    header = [c.strip() for c in rows[0].strip("|").split("|")]
+    trusts = [h.removeprefix("trust ") for h in header[1:]]
+    assert trusts == ["normal", "caution", "untrusted"]
+    seen = set()
+    for line in rows[2:]:
+        cells = [c.strip() for c in line.strip("|").split("|")]
+        status = cells[0]
+        for trust, cell in zip(trusts, cells[1:], strict=True):
+            code = int(re.search(r"\((0x[0-9A-F]{8})\)", cell).group(1), 16)
+            assert quality(status, trust) == code, (status, trust, cell)
+            seen.add(status)
+        # a model without alerts has no trust state: the normal column
+        assert quality(status, None) == quality(status, "normal")
+    assert seen == {"learning", "stale", "frozen", "unidentified"}
