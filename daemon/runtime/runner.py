@@ -204,7 +204,9 @@ class ModelRunner:
         """Count gaps in a publisher's sequence numbers on this model's topic.
 
         PUB/SUB drops silently when a queue is full. ``seq`` numbers one publisher's
-        messages on one topic; ``src`` tells publishers of the same topic apart.
+        messages on one topic; ``src`` tells publishers of the same topic apart. A number
+        not above the last one is a publisher that started again (a bridge restarted):
+        one gap, of a size nobody knows (nothing added to the lost messages).
         """
         if seq is None:
             return
@@ -212,6 +214,8 @@ class ModelRunner:
         if last is not None and seq > last + 1:
             self.n_gaps += 1
             self.n_lost += seq - last - 1
+        elif last is not None and seq <= last:
+            self.n_gaps += 1
         if len(self.last_seq) >= _MAX_SOURCES and src not in self.last_seq:
             self.last_seq.pop(next(iter(self.last_seq)))  # bounded: the first seen goes
         self.last_seq[src] = seq

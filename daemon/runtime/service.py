@@ -42,6 +42,7 @@ from prometheus_client import CollectorRegistry, start_http_server
 
 from daemon.config import ModelConfig
 from daemon.exitcodes import EXIT_DURABILITY, EXIT_OK
+from daemon.logsetup import RateLimitedLog
 from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
@@ -94,29 +95,6 @@ class _Pending:
         self.block = block
 
 
-class RateLimitedLog:
-    """Log a (model, reason) at most once per ``interval`` seconds, counting the rest."""
-
-    def __init__(self, logger: logging.Logger, interval: float = 10.0):
-        self._log = logger
-        self._interval = interval
-        self._last: dict = {}
-        self._suppressed: Counter = Counter()
-
-    def warn(self, model: str, reason: str, detail: str) -> None:
-        key = (model, reason)
-        now = time.monotonic()
-        last = self._last.get(key)
-        if last is not None and now - last < self._interval:
-            self._suppressed[key] += 1
-            return
-        n = self._suppressed.pop(key, 0)
-        self._last[key] = now
-        more = f" ({n} more since last report)" if n else ""
-        self._log.warning("rejected model=%s reason=%s: %s%s", model or "-", reason,
-                          with_iso_times(detail), more)
-
-
 # an epoch time in seconds between 2001 and 2286 as the runner's messages write it
 _EPOCH = re.compile(r"(?<![\d.e+-])(\d{10}(?:\.\d+)?)(?![\d.e])")
 
@@ -133,6 +111,25 @@ def with_iso_times(text: str) -> str:
     """``text`` with each epoch time in it followed by its ISO form, so that a log line
     says which sample it is about: ``t=1767571200.0 (2026-01-05T00:00:00Z)``."""
     return _EPOCH.sub(lambda m: f"{m[1]} ({iso(m[1])})", text)
+
+
+class _IsoTimes:
+    """A log detail whose epoch times get their ISO form only when the line is written."""
+
+    __slots__ = ("text",)
+
+    def __init__(self, text: str):
+        self.text = text
+
+    def __str__(self) -> str:
+        return with_iso_times(self.text)
+
+
+class _RejectLog(RateLimitedLog):
+    """The rejection log: a held-back line costs no formatting."""
+
+    def warn(self, key: str, reason: str, detail: str) -> bool:
+        return super().warn(key, reason, _IsoTimes(detail))
 
 
 class Service:
@@ -161,7 +158,7 @@ class Service:
         self._own_ctx = context is None
         self._events: deque = deque()
         self._stop = False
-        self._rlog = RateLimitedLog(log)
+        self._rlog = _RejectLog(log, template="rejected model=%s reason=%s: %s")
         self._wake_r = self._wake_w = None
         self._http = None
         self.sub = self.pub = self.rep = None
