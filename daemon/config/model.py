@@ -5,10 +5,10 @@ from __future__ import annotations
 
 import hashlib
 import json
-
-import numpy as np
 from dataclasses import dataclass, field, fields
 from typing import Any
+
+import numpy as np
 
 from daemon.config.settings import _BY_SECTION, SETTINGS, _default
 from daemon.sharding import parse_shard
