@@ -12,6 +12,7 @@ from scipy.linalg import lapack
 
 from recursive import _linalg
 from recursive._linalg import full_rank, solve_upper
+from recursive.adaptive import Adaptation, RateState
 from recursive.forgetting import Forgetting, Prior, Stabilized, forgetting_from_dict
 from recursive.quantile import t_quantile
 from recursive.quantile import t_quantile_scalar as _quantile
@@ -227,6 +228,10 @@ class Posterior:
         How old information is discounted; ``None`` keeps everything.
     gate : float or Gate, optional
         Robust gate on the standardized residual (a float is ``Gate(k)``).
+    adapt : recursive.adaptive.Adaptation, optional
+        Online adaptation of the noise (variational Bayes; needs learned noise, whose
+        ``noise_prior`` is then the inverse-gamma prior) and of one term's drift rate
+        (covariance matching; needs :class:`TermDrift`). See :mod:`recursive.adaptive`.
 
     Notes
     -----
@@ -257,10 +262,18 @@ class Posterior:
 
     *Time.* Passing ``t`` to :meth:`update` makes forgetting act on elapsed time;
     otherwise each update is one time unit. Times must not decrease.
+
+    *Adaptive noise* (``adapt.noise``). The weights have the absolute covariance
+    ``sigma0^2 V`` (the known-noise form at the guess ``sigma0``) and the noise variance
+    its own inverse-gamma posterior ``IG(nu / 2, ss / 2)``, updated by
+    :meth:`recursive.adaptive.VBNoise.step`; a result is learned with the weight
+    ``sigma0^2 / sigma_hat^2``. The predictive is a Student-t with ``nu`` degrees of
+    freedom and scale ``sqrt(ss / nu + sigma0^2 phi^T V phi)``.
     """
 
     def __init__(self, n_features: int, *, alpha=1.0, prior_mean=None, noise_std=None,
-                 noise_prior=(1.0, 1.0), forgetting: Forgetting | None = None, gate=None):
+                 noise_prior=(1.0, 1.0), forgetting: Forgetting | None = None, gate=None,
+                 adapt: Adaptation | None = None):
         if isinstance(n_features, bool) or not isinstance(n_features, int | np.integer) \
                 or n_features < 1:
             raise ValueError(f"n_features must be a positive integer, got {n_features!r}")
@@ -308,6 +321,9 @@ class Posterior:
         if forgetting is not None:
             forgetting.check_features(n)
         self._forgetting = forgetting
+        # the configured policy; _forgetting is the one in use (an adapted rate)
+        self._forgetting_cfg = forgetting
+        self._adapt, self._vb = self._check_adapt(adapt, noise_std, forgetting, n)
         if gate is not None and not isinstance(gate, Gate):
             gate = Gate(gate)
         self._gate = gate
@@ -327,7 +343,51 @@ class Posterior:
         self._clock: str | None = None
         self._n_updates = 0
         self._reject_run = 0
+        self._forgetting = self._forgetting_cfg
+        self._rate: RateState | None = None
+        if self._adapt is not None and self._adapt.rate is not None:
+            self._rate = self._adapt.rate.start(self._forgetting_cfg.q[self._adapt.rate.term])
+            self._forgetting = self._rated(self._rate.q)
         self._refresh()
+
+    @staticmethod
+    def _check_adapt(adapt, noise_std, forgetting, n):
+        if adapt is None:
+            return None, None
+        if not isinstance(adapt, Adaptation):
+            raise ValueError(f"adapt must be an Adaptation or None, got {adapt!r}")
+        if adapt.noise is not None and noise_std is not None:
+            raise ValueError("adaptive noise needs a learned noise (noise_prior), not "
+                             "noise_std")
+        if adapt.rate is not None:
+            from recursive.forgetting import TermDrift
+            if not isinstance(forgetting, TermDrift):
+                raise ValueError(f"an adaptive drift rate needs TermDrift forgetting, got "
+                                 f"{forgetting!r}")
+            if adapt.rate.term >= n:
+                raise ValueError(f"adaptive rate term {adapt.rate.term} is not one of the "
+                                 f"{n} weights")
+        return adapt, adapt.noise
+
+    def _rated(self, q: float) -> Forgetting:
+        """The configured TermDrift with the adapted rate of its matched term."""
+        f = self._forgetting_cfg
+        j = self._adapt.rate.term
+        if f.q[j] == q:
+            return f
+        rates = list(f.q)
+        rates[j] = q
+        return type(f)(tuple(rates), f.half_life)
+
+    @property
+    def adapted(self) -> dict | None:
+        """The adapted values (None without adaptation): ``noise_std`` (adaptive noise)
+        and ``rate`` (the matched term's drift rate in use), each None when not adapted."""
+        if self._adapt is None:
+            return None
+        nv = self.noise_var if self._vb is not None else None
+        return {"noise_std": None if nv is None else (math.sqrt(nv) if nv == nv else math.nan),
+                "rate": None if self._rate is None else self._rate.q}
 
     def _refresh(self, ident: bool | None = None) -> None:
         self._cache: dict = {}
@@ -363,8 +423,8 @@ class Posterior:
     @property
     def dof(self) -> float:
         """Degrees of freedom of the marginal posterior (inf with known noise)."""
-        if self._noise_std is not None:
-            return math.inf
+        if self._noise_std is not None or self._vb is not None:
+            return math.inf  # the weights are Gaussian with adaptive noise too
         return self._nu - self._p_flat
 
     @property
@@ -372,6 +432,8 @@ class Posterior:
         """Point estimate of the noise variance (known value, or ``ss / nu_post``)."""
         if self._noise_std is not None:
             return self._noise_std ** 2
+        if self._vb is not None:
+            return self._ss / self._nu if self._nu > 0 else math.nan
         d = self._nu - self._p_flat
         return self._ss / d if d > 0 else math.nan
 
@@ -397,6 +459,8 @@ class Posterior:
     @property
     def scale_matrix(self) -> np.ndarray:
         """``noise_var * V``: the covariance (known noise) or the Student-t scale matrix."""
+        if self._vb is not None:
+            return self._prior.ref_var * self.unit_cov  # absolute with adaptive noise
         return self.noise_var * self.unit_cov
 
     @property
@@ -479,11 +543,16 @@ class Posterior:
                     mean = P @ self._m
                 mean, lev, nu, ss = f.widen(self._R, self._z, self._nu, self._ss, self._prior,
                                             P.T, u, mean, dt, self._cache)
+                if self._vb is not None:
+                    nu, ss = self._vb.forget(self._nu, self._ss, self._prior.nu0,
+                                             self._prior.ss0, dt)
             else:
                 u = self._inv_t() @ P.T
                 mean = P @ self._m
                 nu, ss = self._nu, self._ss
                 lev = np.einsum("ij,ij->j", u, u)
+                if self._vb is not None and dt is not None:
+                    nu, ss = self._vb.forget(nu, ss, self._prior.nu0, self._prior.ss0, dt)
         out = self._distribution(mean, lev, nu, ss)
         return _squeeze(out) if single else out
 
@@ -496,13 +565,15 @@ class Posterior:
         operations in the same order, on Python floats instead of arrays (IEEE double
         either way; ``math.sqrt`` and ``numpy.sqrt`` both round correctly). Returns None
         where that path is not taken (the caller then uses :meth:`predict`): a posterior
-        that is not :attr:`rowwise` or not identified, or one that counts samples.
+        that is not :attr:`rowwise` or not identified, one that counts samples, or one
+        with adaptive noise.
 
         A single-sample message then costs one kernel call and a few float operations,
         not a dozen array operations of one element each.
         """
-        if not self._ident or self._clock == "samples" or not self.rowwise:
-            return None
+        if not self._ident or self._clock == "samples" or not self.rowwise \
+                or self._vb is not None:
+            return None  # adaptive noise: the predictive of _vb_distribution
         k = len(ts)
         t_last = self._t_last
         dts = []
@@ -613,6 +684,8 @@ class Posterior:
 
     def _distribution(self, mean, lev, nu, ss) -> Prediction:
         k = np.shape(mean)[0]
+        if self._vb is not None:
+            return self._vb_distribution(k, mean, lev, nu, ss)
         if self._noise_std is not None:
             s2 = self._prior.ref_var
             scale = np.sqrt(s2 * (1.0 + lev))
@@ -649,6 +722,21 @@ class Posterior:
         return Prediction(mean=mean, scale=scale, var=var, std=np.sqrt(var), dof=dof,
                           leverage=lev, identified=ident)
 
+    def _vb_distribution(self, k, mean, lev, nu, ss) -> Prediction:
+        """The predictive with adaptive noise (class Notes), elementwise per row."""
+        nu = np.broadcast_to(np.asarray(nu, float), (k,))
+        ss = np.broadcast_to(np.asarray(ss, float), (k,))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ident = (nu > 0) & np.isfinite(lev)
+            s2 = np.where(ident, ss / np.where(ident, nu, 1.0), np.nan)
+            scale = np.sqrt(s2 + self._prior.ref_var * lev)
+            var = np.where(nu > 2, scale * scale * nu / (nu - 2.0), np.inf)
+        nan = np.nan
+        return Prediction(mean=np.where(ident, mean, nan), scale=np.where(ident, scale, nan),
+                          var=np.where(ident, var, nan),
+                          std=np.sqrt(np.where(ident, var, nan)),
+                          dof=np.where(ident, nu, nan), leverage=lev, identified=ident)
+
     # ------------------------------------------------------------------ update
     def update(self, phi, y, t=None) -> Step:
         """Learn from one sample ``(phi, y)`` observed at time ``t``.
@@ -684,8 +772,13 @@ class Posterior:
         # work on copies: a gated sample must leave the state exactly as it was
         R, z, nu, ss = self._R.copy(), self._z.copy(), self._nu, self._ss
         f = self._forgetting
+        vb = self._vb
         if f is not None and dt > 0.0:
-            nu, ss = f.forget(R, z, nu, ss, self._prior, dt)
+            nu_f, ss_f = f.forget(R, z, nu, ss, self._prior, dt)
+            if vb is None:
+                nu, ss = nu_f, ss_f
+        if vb is not None and dt > 0.0:
+            nu, ss = vb.forget(nu, ss, self._prior.nu0, self._prior.ss0, dt)
         if self._ident and (f is None or not f.may_lose_rank) and (
                 self._noise_std is not None or nu - self._p_flat > 0.0):
             ident = True  # what _identified would say, without the call
@@ -693,6 +786,7 @@ class Posterior:
             ident = self._identified(R, nu, self._ident)
         nan = math.nan
         pm = scale = std = dof = zs = logp = innov = nan
+        kappa = 1.0
         reason = "not_identified"
         run = self._reject_run
         if ident:
@@ -701,9 +795,14 @@ class Posterior:
                 dof = math.inf
                 scale = math.sqrt(self._prior.ref_var * (1.0 + lev))
                 std = scale
+            elif vb is not None:
+                dof = nu
+                scale = math.sqrt(ss / nu + self._prior.ref_var * lev)
+                std = scale * math.sqrt(dof / (dof - 2.0)) if dof > 2 else math.inf
             else:
                 dof = nu - self._p_flat
                 scale = math.sqrt(ss / dof * (1.0 + lev))
+                kappa = ss / dof / self._prior.ref_var
                 std = scale * math.sqrt(dof / (dof - 2.0)) if dof > 2 else math.inf
             innov = y - pm
             r = innov / scale
@@ -722,10 +821,21 @@ class Posterior:
                     reason = "gate_open"
                 else:
                     run = 0
-        e = _linalg.update(R, z, phi.copy(), y)
+        if vb is None:
+            e = _linalg.update(R, z, phi.copy(), y)
+            nu, ss = nu + 1.0, ss + e * e
+        else:
+            ref = self._prior.ref_var
+            if ident:
+                s2, nu, ss = vb.step(innov, ref * lev, nu, ss)
+            else:
+                s2, nu, ss = vb.step_unidentified(nu, ss, ref)
+            w = math.sqrt(ref / s2)
+            _linalg.update(R, z, phi * w, y * w)
+        if self._rate is not None and ident and dt > 0.0:
+            self._match_rate(phi, innov, scale, dt, kappa)
         self._R, self._z = R, z
-        self._nu = nu + 1.0
-        self._ss = ss + e * e
+        self._nu, self._ss = nu, ss
         if t is None:
             self._clock = "samples"
         else:
@@ -761,6 +871,18 @@ class Posterior:
             self._R, self._z = R, z
         self._refresh()
 
+    def _match_rate(self, phi, innov, scale, dt, kappa) -> None:
+        """One covariance-matching step of the adapted rate (recursive.adaptive.RateMatch)
+        from a result predicted with ``scale``: the drift's share of ``scale**2`` is
+        ``q dt phi_j^2 kappa``, ``kappa = s^2 / sigma_ref^2`` where the covariance scales
+        with the learned noise ``s^2``, else 1."""
+        rm = self._adapt.rate
+        pj = float(phi[rm.term])
+        st = rm.step(self._rate, innov * innov, scale * scale, dt * pj * pj * kappa)
+        if st.q != self._rate.q:
+            self._forgetting = self._rated(st.q)
+        self._rate = st
+
     # ------------------------------------------------------------------ persistence
     def config(self) -> dict:
         """The constructor arguments as plain data."""
@@ -770,8 +892,10 @@ class Posterior:
             "prior_mean": self._m0.tolist(),
             "noise_std": self._noise_std,
             "noise_prior": None if self._noise_prior is None else list(self._noise_prior),
-            "forgetting": None if self._forgetting is None else self._forgetting.to_dict(),
+            "forgetting": (None if self._forgetting_cfg is None
+                           else self._forgetting_cfg.to_dict()),
             "gate": None if self._gate is None else self._gate.to_dict(),
+            **({} if self._adapt is None else {"adapt": self._adapt.to_dict()}),
         }
 
     def to_state(self) -> dict:
@@ -780,7 +904,7 @@ class Posterior:
         ``Posterior.from_state(p.to_state())`` restores a posterior whose every later
         result is bit-identical to the original's.
         """
-        return {
+        out = {
             "schema": SCHEMA,
             "config": self.config(),
             "R": self._R.tolist(),
@@ -792,6 +916,9 @@ class Posterior:
             "n_updates": self._n_updates,
             "reject_run": self._reject_run,
         }
+        if self._rate is not None:
+            out["rate"] = self._rate.to_dict()
+        return out
 
     @classmethod
     def from_config(cls, cfg: dict) -> Posterior:
@@ -803,7 +930,8 @@ class Posterior:
                 noise_std=cfg["noise_std"],
                 noise_prior=cfg["noise_prior"] if cfg["noise_prior"] is not None else (1.0, 1.0),
                 forgetting=forgetting_from_dict(cfg["forgetting"]),
-                gate=None if gate is None else Gate(gate["k"], gate["release"]))
+                gate=None if gate is None else Gate(gate["k"], gate["release"]),
+                adapt=Adaptation.from_dict(cfg.get("adapt")))
         except (KeyError, TypeError) as exc:
             raise ValueError(f"bad posterior config: {exc!r}") from None
 
@@ -835,6 +963,11 @@ class Posterior:
             p._clock = clock
             p._n_updates = int(d["n_updates"])
             p._reject_run = int(d["reject_run"])
+            if (p._rate is None) != ("rate" not in d):
+                raise ValueError("an adapted rate state without its adaptation, or missing")
+            if p._rate is not None:
+                p._rate = RateState.from_dict(d["rate"])
+                p._forgetting = p._rated(p._rate.q)
         except (KeyError, TypeError) as exc:
             raise ValueError(f"bad posterior state: {exc!r}") from None
         p._refresh()

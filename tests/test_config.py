@@ -141,6 +141,14 @@ MODEL_DEFAULTS = {
     "offset_drift": None,
     "linear_drift": None,
     "higher_drift": None,
+    # adaptive rates (docs/settings.md: off unless asked for)
+    "noise_adaptive": False,
+    "noise_half_life": None,
+    "vb_iterations": 3,
+    "adapt_offset": False,
+    "offset_drift_min": None,
+    "offset_drift_max": None,
+    "adapt_window": 30.0,
     "gate": 4.0,
     "gate_release": 3,
     "level": 0.95,
@@ -869,7 +877,9 @@ def test_learning_flags_are_what_the_fingerprint_uses():
     settings = loads(FULL).models[0].learning_settings()
     inputs_fields = {r.field for r in SETTINGS if r.section == "model.inputs"}
     # the drift rates enter only when set (fingerprints from before they existed hold)
-    later = {"offset_drift", "linear_drift", "higher_drift"}
+    later = {"offset_drift", "linear_drift", "higher_drift", "noise_adaptive", "noise_half_life",
+             "vb_iterations", "adapt_offset", "offset_drift_min", "offset_drift_max",
+             "adapt_window"}
     assert set(settings) == (learning - inputs_fields - later) | {"inputs"}
     assert set(settings["inputs"][0]) == inputs_fields
 

@@ -136,9 +136,17 @@ DELAYED_INPUTS = [{"tag": tag, "lo": lo, "hi": hi, "dead_time": "19m" if tag == 
                   for tag, (lo, hi) in plant.RANGES.items()]
 
 
+# adaptive noise and offset drift (recursive.adaptive): their state is rewound too; a short
+# window so that the matched rate moves within the batch
+ADAPTIVE = {"noise": {"guess": 10.0, "strength": 2.0, "adaptive": True,
+                      "adaptive_half_life": "2d"},
+            "forgetting": {"policy": "offset", "half_life": "1d", "offset_drift": "5 per 1h",
+                           "adapt_offset": True, "adapt_window": 3}}
+
+
 @pytest.mark.parametrize("tables", [{}, {"inputs": DELAYED_INPUTS},
-                                    {"alerts": {"enabled": False}}],
-                         ids=["alerts", "dead_time", "no_alerts"])
+                                    {"alerts": {"enabled": False}}, ADAPTIVE],
+                         ids=["alerts", "dead_time", "no_alerts", "adaptive"])
 def test_random_orders_of_eight_give_the_in_order_bits(run, tables):
     cfg = config(**tables)
     history, batch, until = batch_setup(run, 8)
@@ -264,7 +272,8 @@ def test_service_publishes_one_fit_per_arrival_the_late_one_flagged(run):
     assert (got.n_learned, got.rejected["gated"]) == (ref.n_learned, ref.rejected["gated"])
 
 
-def test_replay_of_the_log_goes_through_the_same_rewinds(tmp_path, run):
+@pytest.mark.parametrize("tables", [{}, ADAPTIVE], ids=["plain", "adaptive"])
+def test_replay_of_the_log_goes_through_the_same_rewinds(tmp_path, run, tables):
     """A crash amid out-of-order arrivals: the checkpoint (with the kept snapshots) and the
     log's records, replayed in arrival order, give the learned state of the live run."""
     from test_durability import LAB_DRIVEN, bench, crash_copy
@@ -278,7 +287,7 @@ def test_replay_of_the_log_goes_through_the_same_rewinds(tmp_path, run):
             "floor": st["lab_floor"], "n_learned": r.n_learned, "late": r.n_late,
             "gated": r.rejected["gated"], "last_lab_t": r.last_lab_t}, use_bin_type=True)
 
-    m = c301_model(NAME)
+    m = c301_model(NAME, **tables)
     live = bench(tmp_path / "state", [m])
     history, batch, until = batch_setup(run, 6)
     todo = list(history)
@@ -301,4 +310,8 @@ def test_replay_of_the_log_goes_through_the_same_rewinds(tmp_path, run):
             assert learned(back.runners[NAME]) == learned(live.runners[NAME]), n
             back.close()
     assert live.runners[NAME].n_late == 5
+    if tables:
+        # the adapted values took part: the rate moved off its start and is in the state
+        st = live.runners[NAME].post.to_state()
+        assert st["rate"]["n"] >= 10 and st["rate"]["q"] != 25.0 / 3600.0
     live.close()

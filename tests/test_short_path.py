@@ -19,6 +19,7 @@ import pytest
 from daemon.config import loads
 from daemon.runtime.runner import ModelRunner
 from recursive import Posterior, Stabilized, TermDrift
+from recursive.adaptive import Adaptation, RateMatch, VBNoise
 from recursive.basis import Input, Polynomial
 from recursive.detect import InputRegion
 from recursive.quantile import t_quantile, t_quantile_scalar
@@ -41,6 +42,10 @@ POSTERIORS = {
                           forgetting=Stabilized(30.0)),
     "term drift": dict(noise_prior=(0.5, 2.0),
                        forgetting=TermDrift([1e-3, 0, 0, 0, 0], half_life=30.0)),
+    # the offset's rate matched to the innovations: the policy in use changes per result
+    "adapted rate": dict(noise_prior=(0.5, 2.0),
+                         forgetting=TermDrift([1e-3, 0, 0, 0, 0], half_life=30.0),
+                         adapt=Adaptation(rate=RateMatch(0, 1e-5, 1.0, 5.0))),
 }
 
 
@@ -76,6 +81,14 @@ def test_predict_rows_declines_where_the_general_path_must_run():
 
     rng = np.random.default_rng(6)
     P = rng.standard_normal((1, 3))
+    # adaptive noise has a predictive of its own (Posterior Notes, "Adaptive noise")
+    vb = Posterior(3, noise_prior=(0.5, 2.0), forgetting=TermDrift([1e-3, 0, 0], half_life=30.0),
+                   adapt=Adaptation(VBNoise(20.0, 2)))
+    for i in range(8):
+        phi = np.r_[1.0, rng.standard_normal(2)]
+        vb.update(phi, float(phi.sum()), float(i))
+    assert vb.identified and vb.rowwise
+    assert vb.predict_rows(P, [9.0], 0.95) is None
     assert Posterior(3, forgetting=Exponential(10.0)).predict_rows(P, [1.0], 0.95) is None
     post = Posterior(3, forgetting=Stabilized(10.0))
     for _ in range(5):

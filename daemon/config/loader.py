@@ -207,6 +207,7 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
             if "half_life" in present:
                 raise not_allowed("half_life", 'policy is "none"')
             values["half_life"] = None
+    _finish_adaptive(values, present, raw, ctx, not_allowed)
     if values["gate"] == 0.0:
         if "gate_release" in present:
             raise not_allowed("gate_release", "gate.k = 0 turns the gate off")
@@ -229,6 +230,40 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
                             f"an array of {len(names)} numbers, one per basis term "
                             f"({', '.join(names)})", _show(_given(raw, "prior_mean")))
     return model
+
+
+def _finish_adaptive(values: dict, present: set[str], raw: dict, ctx: _Ctx,
+                     not_allowed) -> None:
+    """The rules of the adaptive noise and offset drift (settings.RULES)."""
+    if values["noise_adaptive"]:
+        if values["noise_std"] is not None:
+            raise ctx.error("noise.adaptive", "false (noise.std is set, so the noise is known; "
+                            "adaptive noise learns it from a guess)", _show(True))
+    else:
+        for f in ("noise_half_life", "vb_iterations"):
+            if f in present:
+                raise not_allowed(f, "it only applies with noise.adaptive = true")
+    if values["adapt_offset"]:
+        policy = values["forgetting"]
+        if policy not in ("offset", "term_drift"):
+            raise ctx.error("forgetting.adapt_offset", f'false (an adapted offset drift needs '
+                            f'policy = "offset" or "term_drift", policy is "{policy}")',
+                            _show(True))
+        lo, hi = values["offset_drift_min"], values["offset_drift_max"]
+        if not values["offset_drift"] and (lo is None or hi is None):
+            raise ctx.error("forgetting.offset_drift", "a drift rate above 0 to start the "
+                            "adapted offset drift from (or set both offset_drift_min and "
+                            "offset_drift_max)", _show(_given(raw, "offset_drift")))
+        q = values["offset_drift"] or 0.0
+        lo = q / 100.0 if lo is None else lo
+        hi = q * 100.0 if hi is None else hi
+        if not lo <= hi:
+            raise ctx.error("forgetting.offset_drift_min", "a drift rate not above "
+                            "offset_drift_max", _show(_given(raw, "offset_drift_min")))
+    else:
+        for f in ("offset_drift_min", "offset_drift_max", "adapt_window"):
+            if f in present:
+                raise not_allowed(f, "it only applies with forgetting.adapt_offset = true")
 
 
 def _parse_document(doc: dict, source: str) -> Config:

@@ -8,9 +8,12 @@ import json
 from dataclasses import dataclass, field, fields
 from typing import Any
 
+import numpy as np
+
 from daemon.config.settings import _BY_SECTION, SETTINGS, _default
 from daemon.sharding import parse_shard
 from recursive import Exponential, Gate, Posterior, RandomWalk, Stabilized
+from recursive.adaptive import Adaptation, RateMatch, VBNoise
 from recursive.basis import Basis, Identity, Input, Polynomial
 from recursive.forgetting import TermDrift
 
@@ -22,7 +25,9 @@ MODEL_STATE_SCHEMA = "posteriord.model-config/1"
 # Settings added after the schema above: absent from older state folders (read as their
 # default) and left out of the fingerprint while at their default, so that models
 # configured before they existed keep their fingerprints and learned state.
-_ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift")
+_ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift", "noise_adaptive",
+                "noise_half_life", "vb_iterations", "adapt_offset", "offset_drift_min",
+                "offset_drift_max", "adapt_window")
 # Descriptive settings added after the schema above (not learning settings): absent from
 # older state folders, read as not set.
 _DESCRIPTIVE_LATER = ("target", "unit")
@@ -97,6 +102,13 @@ class ModelConfig:
     offset_drift: float | None = _default("model.forgetting", "offset_drift")
     linear_drift: float | None = _default("model.forgetting", "linear_drift")
     higher_drift: float | None = _default("model.forgetting", "higher_drift")
+    noise_adaptive: bool = _default("model.noise", "adaptive")
+    noise_half_life: float | None = _default("model.noise", "adaptive_half_life")
+    vb_iterations: int = _default("model.noise", "iterations")
+    adapt_offset: bool = _default("model.forgetting", "adapt_offset")
+    offset_drift_min: float | None = _default("model.forgetting", "offset_drift_min")
+    offset_drift_max: float | None = _default("model.forgetting", "offset_drift_max")
+    adapt_window: float = _default("model.forgetting", "adapt_window")
     gate: float | None = _default("model.gate", "k")
     gate_release: int = _default("model.gate", "release")
     level: float = _default("model", "level")
@@ -159,7 +171,26 @@ class ModelConfig:
         return Posterior(basis.n_features, alpha=basis.alpha_vector(self.alpha),
                          prior_mean=self.prior_mean, noise_std=self.noise_std,
                          noise_prior=(self.noise_guess, self.noise_strength),
-                         forgetting=policy, gate=gate)
+                         forgetting=policy, gate=gate, adapt=self.adaptation(basis))
+
+    def adaptation(self, basis: Basis | None = None) -> Adaptation | None:
+        """What adapts online (`recursive.adaptive`), or None: the noise
+        (``noise_adaptive``) and the offset's drift rate (``adapt_offset``, the constant
+        term's rate, bounded by ``offset_drift_min`` / ``offset_drift_max``, by default the
+        configured rate / 100 and * 100)."""
+        if not (self.noise_adaptive or self.adapt_offset):
+            return None
+        noise = VBNoise(self.noise_half_life, self.vb_iterations) \
+            if self.noise_adaptive else None
+        rate = None
+        if self.adapt_offset:
+            basis = self.build_basis() if basis is None else basis
+            term = int(np.flatnonzero(basis.exponents.sum(axis=1) == 0)[0])
+            q = self.offset_drift or 0.0
+            lo = self.offset_drift_min if self.offset_drift_min is not None else q / 100.0
+            hi = self.offset_drift_max if self.offset_drift_max is not None else q * 100.0
+            rate = RateMatch(term, lo, hi, self.adapt_window)
+        return Adaptation(noise, rate)
 
     def drift_rates(self, basis: Basis | None = None) -> tuple[float, ...]:
         """The per-term variance rates (per second) of the ``offset`` and ``term_drift``
@@ -219,8 +250,9 @@ class ModelConfig:
             got = state.get("schema") if isinstance(state, dict) else type(state).__name__
             raise ValueError(f"model config schema must be {MODEL_STATE_SCHEMA!r}, got {got!r}")
         names = {f.name for f in fields(cls)}
-        state = {**{k: _default("model.forgetting", k) for k in _ADDED_LATER},
-                 **{k: _default("model", k) for k in _DESCRIPTIVE_LATER}, **state}
+        later = {f.name: f.default for f in fields(cls) if f.name in _ADDED_LATER}
+        state = {**later, **state}
+        state = {**{k: _default("model", k) for k in _DESCRIPTIVE_LATER}, **state}
         keys = set(state) - {"schema"}
         if keys != names:
             raise ValueError(f"model config keys differ from the settings: missing "

@@ -296,6 +296,21 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("model.noise", "strength", "noise_strength", NUMBER, 2.0,
             "Weight of the guess, in lab results (pseudo-observations); 0 is the "
             "uninformative prior.", GE0, learning=True),
+    Setting("model.noise", "adaptive", "noise_adaptive", BOOLEAN, False,
+            "Learn the noise level online with the variational-Bayes adaptive Kalman filter "
+            "(Särkkä and Nummenmaa, 2009): the weights get an absolute covariance (drift "
+            "rates in target units whatever the noise), the noise variance its own "
+            "inverse-gamma posterior, starting from `guess` worth `strength` results and "
+            "forgotten with `adaptive_half_life`. Needs learned noise (no `std`). Off by "
+            "default: on the simulated plants it did not lower the error (README, "
+            "\"Drift and forgetting\").", learning=True),
+    Setting("model.noise", "adaptive_half_life", "noise_half_life", DURATION, None,
+            "With `adaptive = true`: time after which the noise statistics count half "
+            "(the forgetting of the inverse-gamma parameters, toward the prior); not set: "
+            "they are kept (a noise level assumed constant).", GT0, learning=True),
+    Setting("model.noise", "iterations", "vb_iterations", INTEGER, 3,
+            "With `adaptive = true`: fixed-point iterations of the variational update per "
+            "lab result.", GE1, learning=True),
     # [model.forgetting]
     Setting("model.forgetting", "policy", "forgetting",
             _choice("stabilized", "exponential", "random_walk", "offset", "term_drift", "none"),
@@ -331,6 +346,22 @@ SETTINGS: tuple[Setting, ...] = (
             "weight's units (target units per unit of the scaled input for a polynomial "
             "basis, per engineering unit for identity), q = s^2 / T; only with `term_drift` "
             "(not set: 0).", learning=True),
+    Setting("model.forgetting", "adapt_offset", "adapt_offset", BOOLEAN, False,
+            "Adapt the offset's drift rate online by covariance matching of the lab "
+            "residuals (Mehra, 1972): the rate that makes the weighted mean of the squared "
+            "residuals equal their predicted variance, within `offset_drift_min` .. "
+            "`offset_drift_max`; starts at `offset_drift`. Only with `offset` and "
+            "`term_drift`. Off by default (README, \"Drift and forgetting\", has the "
+            "figures).", learning=True),
+    Setting("model.forgetting", "offset_drift_min", "offset_drift_min", DRIFT, None,
+            'Lowest adapted offset drift, as `"<s> per <T>"`; only with `adapt_offset`.',
+            learning=True, default_doc="`offset_drift` / 100 (in q = s^2 / T)"),
+    Setting("model.forgetting", "offset_drift_max", "offset_drift_max", DRIFT, None,
+            'Highest adapted offset drift, as `"<s> per <T>"`; only with `adapt_offset`.',
+            learning=True, default_doc="`offset_drift` * 100 (in q = s^2 / T)"),
+    Setting("model.forgetting", "adapt_window", "adapt_window", NUMBER, 30.0,
+            "Half-life, in lab results, of the weighted means the adapted offset drift is "
+            "matched on; only with `adapt_offset`.", GT0, learning=True),
     Setting("model.forgetting", "higher_drift", "higher_drift", DRIFT, None,
             "Drift of each weight of degree 2 or more (squares and cross terms), as "
             '`"<s> per <T>"`, q = s^2 / T; only with `term_drift` (not set: 0).',
@@ -426,6 +457,11 @@ RULES: tuple[str, ...] = (
     "`forgetting.offset_drift` is required with `policy = \"offset\"`; the drift keys are only "
     "allowed with `offset` (`offset_drift`) and `term_drift` (all three, at least one rate "
     "above 0).",
+    "`noise.adaptive` needs learned noise (no `noise.std`); `noise.adaptive_half_life` and "
+    "`noise.iterations` only apply with it.",
+    "`forgetting.adapt_offset` needs `policy = \"offset\"` or `\"term_drift\"`, and an "
+    "`offset_drift` above 0 or both bounds; `offset_drift_min`, `offset_drift_max` and "
+    "`adapt_window` only apply with it; `offset_drift_min` <= `offset_drift_max`.",
     "`gate.release` is not allowed with `gate.k = 0`.",
     "`alerts.head_start` < `alerts.cusum_h`.",
 )

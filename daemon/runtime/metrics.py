@@ -86,7 +86,11 @@ METRICS: tuple[Metric, ...] = (
     # per model, from its state
     Metric("model_predictive_std", "gauge", "Predictive standard deviation of the last "
            "prediction, in the target's units.", _M),
-    Metric("model_noise_std", "gauge", "Estimated (or known) noise standard deviation.", _M),
+    Metric("model_noise_std", "gauge", "Estimated (or known) noise standard deviation (the "
+           "adapted one with noise.adaptive).", _M),
+    Metric("model_offset_drift_rate", "gauge", "Variance rate of the offset's random walk in "
+           "use, in the target's units squared per second (adapted with "
+           "forgetting.adapt_offset; nan without an offset drift).", _M),
     Metric("model_updates", "gauge", "Lab results in the posterior since the last reset.", _M),
     Metric("model_lab_age_seconds", "gauge", "Sample time of the newest features minus that "
            "of the last accepted lab result (feed clock, not wall clock).", _M),
@@ -157,6 +161,20 @@ def metrics_markdown() -> str:
     return "\n".join(lines) + "\n"
 
 
+def _offset_rate(r) -> float:
+    """The constant term's drift rate of the policy in use (nan when it has none)."""
+    adapted = r.post.adapted
+    if adapted is not None and adapted["rate"] is not None:
+        return adapted["rate"]
+    q = getattr(r.post.forgetting, "q", None)
+    if isinstance(q, tuple):
+        const = r.basis.exponents.sum(axis=1) == 0
+        for qj, c in zip(q, const.tolist(), strict=True):
+            if c and qj > 0:
+                return qj
+    return math.nan
+
+
 class ServiceCollector:
     """Custom collector over a :class:`daemon.runtime.service.Service`."""
 
@@ -188,6 +206,7 @@ class ServiceCollector:
             f["model_predictive_std"].add_metric(m, r.last_std)
             nv = r.post.noise_var
             f["model_noise_std"].add_metric(m, math.sqrt(nv) if nv == nv else math.nan)
+            f["model_offset_drift_rate"].add_metric(m, _offset_rate(r))
             f["model_updates"].add_metric(m, r.post.n_updates)
             if r.last_lab_t is not None and r.last_x_t is not None:
                 f["model_lab_age_seconds"].add_metric(m, max(0.0, r.last_x_t - r.last_lab_t))

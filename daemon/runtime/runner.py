@@ -622,6 +622,13 @@ class ModelRunner:
             fit["id"] = ident
         if self.monitor is not None:
             fit["trust"] = self.monitor.state
+        adapted = self.post.adapted
+        if adapted is not None:
+            # the values in use after this result (noise.adaptive, forgetting.adapt_offset)
+            if adapted["noise_std"] is not None:
+                fit["noise_std"] = adapted["noise_std"]
+            if adapted["rate"] is not None:
+                fit["offset_q"] = adapted["rate"]
         return fit
 
     def _forget_offered(self) -> None:
@@ -805,7 +812,7 @@ class ModelRunner:
 
     def _offered_state(self, e: _Offered) -> list:
         post, mon, last_lab_t, last_offered_t = e.before
-        p = Posterior.__new__(Posterior)
+        p = Posterior.__new__(type(self.post))
         p.__dict__.update(post)
         ps = p.to_state()
         del ps["config"]  # the model's posterior holds it

@@ -609,7 +609,8 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
                          f"model's lab.keep={format_duration(model.keep)}: every lab result "
                          f"would be too old to match")
     companion = replace(model, name=model.name + NOFORGET_SUFFIX, forgetting="none",
-                        half_life=None, q=None)
+                        half_life=None, q=None, adapt_offset=False, offset_drift_min=None,
+                        offset_drift_max=None)
     from daemon.runtime.service import Service
 
     config = Config(daemon=DaemonConfig(), models=(model, companion), source="<backtest>")

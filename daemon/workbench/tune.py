@@ -219,6 +219,8 @@ def _variant(base: ModelConfig, alpha: float, noise: float, half_life: float | N
     m = replace(m, noise_std=float(noise)) if base.noise_std is not None else \
         replace(m, noise_guess=float(noise))
     m = replace(m, q=None, offset_drift=None, linear_drift=None, higher_drift=None)
+    # tune scores and writes the model without the adaptive rates (turned on afterwards)
+    m = replace(m, **{f: ModelConfig.__dataclass_fields__[f].default for f in _ADAPTIVE})
     if policy == "none":
         return replace(m, forgetting="none", half_life=None)
     if policy == "random_walk":
@@ -230,6 +232,10 @@ def _variant(base: ModelConfig, alpha: float, noise: float, half_life: float | N
     if half_life is None:
         return replace(m, forgetting="none", half_life=None)
     return replace(m, forgetting=policy, half_life=float(half_life))
+
+
+_ADAPTIVE = ("noise_adaptive", "noise_half_life", "vb_iterations", "adapt_offset",
+             "offset_drift_min", "offset_drift_max", "adapt_window")
 
 
 def _policy_of(m: ModelConfig) -> tuple[str, float | None, float | None]:
