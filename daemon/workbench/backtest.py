@@ -633,7 +633,9 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
         log.setLevel(old_level)
     meta = {"schema": SCHEMA, "model": model.name, "level": model.level,
             "target": history.target, "unit": unit, "cusum_k": model.cusum_k,
-            "cusum_h": model.cusum_h, "stale_after": model.stale_after,
+            "cusum_h": model.cusum_h, "stale_after": svc.runners[model.name].stale_after,
+            "stale_after_source": "config" if model.stale_after is not None else
+            "lab interval",
             "source": os.path.basename(history.path), "lab_delay": lab_delay, "block": block}
     decoded = list(_decoded(recorder.frames))
     track = collect(decoded, model.name, meta)
