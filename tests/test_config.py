@@ -756,7 +756,8 @@ def test_describe_demo_mentions_every_term_and_setting():
         assert f"{i.tag}  range {i.lo:g} .. {i.hi:g}" in text
     for piece in ("c301.bottoms_solvent", "legendre", "degree 2", "stabilized", "10d",
                   "guess 10", "|z| > 4", "0.95", "tcp://127.0.0.1:5555", "tcp://127.0.0.1:5556",
-                  "tcp://127.0.0.1:5557", "127.0.0.1:9108", "tolerance 2m", "stale after 3 lab intervals + the lab delay",
+                  "tcp://127.0.0.1:5557", "127.0.0.1:9108", "tolerance 2m",
+                  "stale after 3 lab intervals + the lab delay",
                   "commissioning until 30 lab results learned or 7d",
                   m.fingerprint()):
         assert piece in text, piece
