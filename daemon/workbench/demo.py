@@ -258,6 +258,7 @@ def main(argv=None) -> int:
                                                 if not args.skip_live else "backtest"))
     for p in paths:
         print(f"report picture: {p}")
+    print(report.summary_text(track))
     print(what_next(out_dir, paths[0] if paths else picture, csv_path, block_path))
     return code
 
