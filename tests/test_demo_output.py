@@ -34,7 +34,7 @@ def _fit(**kw):
 
 def test_lab_line_shows_drawn_time_and_arrival():
     line = _tally().line(_fit(), arrived=1767571200.0 + 2.5 * 3600.0)
-    assert line.startswith("drawn 2026-01-05 00:00 in + 2.5h")
+    assert line.startswith("drawn 2026-01-05 00:00 in  +2.5h")
     assert "z +0.22" in line
     # a note printed before the lines says they come in arrival order
     assert "not in order" in demo.LAB_LINES_NOTE and "drawn" in demo.LAB_LINES_NOTE

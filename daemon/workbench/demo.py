@@ -108,8 +108,15 @@ class Tally:
         elif topic.startswith(b"fit/"):
             self.fits.append(body)
             if not quiet:
-                arrived = self.pred_t[-1] if self.pred_t else None
-                print(self.line(body, arrived), flush=True)
+                print(self.line(body, self.newest), flush=True)
+
+    @property
+    def newest(self) -> float | None:
+        """The newest prediction time seen: the feed's time when a lab result arrives."""
+        if not self.pred_t:
+            return None
+        t = self.pred_t[-1]
+        return float(t[-1] if isinstance(t, list) else t)
 
     def line(self, f: dict, arrived: float | None = None) -> str:
         """One lab result: its drawn time, when it arrived (the newest feed time then; lab
@@ -131,7 +138,7 @@ class Tally:
             else "z   -  "
         when = f"drawn {_stamp(f['t'])}"
         if arrived is not None and arrived >= f["t"]:
-            when += f" in +{(arrived - f['t']) / 3600.0:4.1f}h"
+            when += f" in {'+%.1fh' % ((arrived - f['t']) / 3600.0):>6}"
         return (f"{when}  lab {f['y']:6.1f} ppm  {pred}  {zs}  {what}{mark}"
                 f"  n={f['n']}")
 
@@ -382,9 +389,11 @@ class View:
         if self.quiet:
             return
         if topic.startswith(b"fit/"):
-            self.screen.above(self.tally.line(body))
+            self.screen.above(self.tally.line(body, self.tally.newest))
         elif topic.startswith(b"alert/") and body.get("kind") == "state":
-            why = ", ".join(r["name"] for r in body.get("reasons", [])) or "no reasons left"
+            why = ", ".join(r["name"] for r in body.get("reasons", [])) or (
+                "commissioning over, no reasons" if body.get("old") == "commissioning"
+                else "no reasons left")
             self.screen.above(f"{_stamp(body['t'])}  trust {body['old']} -> {body['new']} "
                               f"({why})")
 
