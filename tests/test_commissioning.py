@@ -137,6 +137,12 @@ def test_stationary_plant_over_120_days(period_h):
     # no trust alert at all while commissioning (the first state event ends it)
     first = next(e for e in res.track.alerts if e.get("kind") == "state")
     assert first["old"] == COMMISSIONING
+    # the pred/ messages carry it: commissioning until that event, never after (a block of
+    # 60 one-minute rows gets the trust after its one detector step, hence the hour)
+    t = res.track.t
+    trust = np.array(res.track.trust)
+    assert (trust[t < first["t"] - HOUR] == COMMISSIONING).all()
+    assert not (trust[t > first["t"]] == COMMISSIONING).any()
     if period_h == 8.0:
         # the old fixed 12 h trips on every rejected result at 8 h sampling
         old = backtest_scenario(sc, replace(m, stale_after=12 * HOUR))
@@ -152,3 +158,40 @@ def test_stale_when_results_really_stop():
     assert len(stale) == 1
     day = (stale[0] - sc.start) / DAY
     assert 60.0 < day < 62.0  # within a few lab intervals of the stop
+
+
+def test_commissioning_end_is_the_same_whatever_the_batching():
+    cfg = replace(demo_config().models[0], commissioning_labs=0, commissioning_time=600.0)
+    basis = cfg.build_basis()
+    ts = [float(60 * i) for i in range(20)]
+    X = np.tile([110.0, 14.0, 1.2, 5.0], (20, 1))
+    std, lev = np.full(20, 10.0), np.full(20, 0.1)
+    one = Monitor(cfg, basis)
+    got_one = []
+    for i in range(20):
+        tr, marks = one.on_prediction_rows(ts[i:i + 1], X[i:i + 1], std[i:i + 1],
+                                           lev[i:i + 1], None)
+        got_one.append(one.state if tr is None else tr[0])
+        assert not marks or marks[0][1][0]["old"] == COMMISSIONING
+    batch = Monitor(cfg, basis)
+    tr, marks = batch.on_prediction_rows(ts, X, std, lev, None)
+    assert tr == got_one
+    assert got_one[:10] == [COMMISSIONING] * 10 and got_one[10:] == ["normal"] * 10
+    assert [m[0] for m in marks] == [10]  # the row at 600 s after the first one
+
+
+def test_states_from_before_commissioning_load_as_past_it():
+    cfg = demo_config().models[0]
+    mon = Monitor(cfg, cfg.build_basis())
+    st = mon.to_state()
+    for key in ("commissioning", "lab_interval"):
+        del st[key]
+    mon.load_state(st)
+    assert mon.state == "normal" and mon.stale_after == 12 * HOUR
+    from daemon.config import ModelConfig
+
+    old = cfg.to_state()
+    for key in ("stale_factor", "stale_min", "stale_max", "region_min_samples",
+                "commissioning_labs", "commissioning_time"):
+        del old[key]
+    assert ModelConfig.from_state(old) == cfg

@@ -272,7 +272,7 @@ class Monitor:
                                  last_lab_t)
             if ev:
                 marks.append((i, ev))
-            trust.append(self.trust.state)
+            trust.append(self.state)
         return trust, marks
 
     def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
@@ -330,7 +330,7 @@ class Monitor:
 
     def acknowledge(self) -> dict:
         self.trust.acknowledge()
-        return {"t": self.clock, "kind": "ack", "state": self.trust.state}
+        return {"t": self.clock, "kind": "ack", "state": self.state}
 
     # ------------------------------------------------------------------ views
     def reasons(self) -> list[dict]:
