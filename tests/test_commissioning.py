@@ -195,3 +195,10 @@ def test_states_from_before_commissioning_load_as_past_it():
                 "commissioning_labs", "commissioning_time"):
         del old[key]
     assert ModelConfig.from_state(old) == cfg
+
+
+def test_opcua_quality_of_a_commissioning_model_is_uncertain():
+    from daemon.bridges import opcua_out
+
+    assert opcua_out.quality("learning", "commissioning") == opcua_out.UNCERTAIN
+    assert opcua_out.quality("learning", "normal") == opcua_out.GOOD
