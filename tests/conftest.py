@@ -172,13 +172,22 @@ def c301_model(name: str = MODEL, **tables) -> dict:
         "forgetting": {"policy": "stabilized", "half_life": "1d"},
         "gate": {"k": 4.0, "release": 3},
         "lab": {"keep": "12h", "keep_count": 5000, "tolerance": "2m", "stale_after": "12h"},
+        "alerts": dict(DETECTORS_FROM_THE_START),
     }
     for key, value in tables.items():
         if value is None:
             m.pop(key, None)
+        elif key == "alerts":
+            m[key] = {**DETECTORS_FROM_THE_START, **value}
         else:
             m[key] = value
     return m
+
+
+# The daemon tests judge the detectors from the first result: no commissioning, and the
+# learned region from n_inputs + 1 results (tests of those two turn them back on).
+DETECTORS_FROM_THE_START = {"commissioning_labs": 0, "commissioning_time": "0s",
+                            "region_min_samples": 1}
 
 
 # ---------------------------------------------------------------------------------- sockets

@@ -196,6 +196,8 @@ def test_opcua_out_serves_the_predictions(sock_dir):
                             ("stale", "normal"): 0x40900000, ("stale", "caution"): 0x40000000,
                             ("learning", "untrusted"): 0x80000000,
                             ("stale", "untrusted"): 0x80000000,
+                            ("learning", "commissioning"): 0x40000000,
+                            ("stale", "commissioning"): 0x40000000,
                             }[(last["status"], last["trust"])]
                 assert _code(now["Mean"]) == expected
                 assert now["LabValue"].Value.Value == 15.0

@@ -155,7 +155,10 @@ MODEL_DEFAULTS = {
     "keep": 12 * HOUR,
     "keep_count": 5000,
     "tolerance": 120.0,
-    "stale_after": 12 * HOUR,
+    "stale_after": None,
+    "stale_factor": 3.0,
+    "stale_min": HOUR,
+    "stale_max": 7 * DAY,
     "alerts": True,
     "cusum_k": 0.5,
     "cusum_h": 5.0,
@@ -171,10 +174,13 @@ MODEL_DEFAULTS = {
     "leverage_limit": 3.0,
     "region_limit": 5.0,
     "region_half_life": 200.0,
+    "region_min_samples": 40,
     "drift_window": 7 * DAY,
     "drift_limit": 6.0,
     "clear_count": 3,
     "clear_time": HOUR,
+    "commissioning_labs": 30,
+    "commissioning_time": 7 * DAY,
     "auto_flatten": False,
     "flatten_keep": 0.2,
 }
@@ -553,7 +559,7 @@ def test_daemon_message_has_no_model_part():
      "half_life"),
     (MINIMAL + "[model.basis]\ndegre = 2\n", "model[0].basis.degre", "degree"),
     (MINIMAL + "[model.forgeting]\npolicy = 'none'\n", "model[0].forgeting", "forgetting"),
-    (MINIMAL + "[model.lab]\nstale = '1h'\n", "model[0].lab.stale", "stale_after"),
+    (MINIMAL + "[model.lab]\nstale_aftr = '1h'\n", "model[0].lab.stale_aftr", "stale_after"),
     (MINIMAL + "levle = 0.9\n", "model[0].levle", "level"),
     ('[[model]]\nname = "m"\ninputs = [{tag = "A", lo = 0, hi = 1, dead_tme = 5}]\n',
      "model[0].inputs[0].dead_tme", "dead_time"),
@@ -760,7 +766,9 @@ def test_describe_demo_mentions_every_term_and_setting():
         assert f"{i.tag}  range {i.lo:g} .. {i.hi:g}" in text
     for piece in ("c301.bottoms_solvent", "legendre", "degree 2", "stabilized", "10d",
                   "guess 10", "|z| > 4", "0.95", "tcp://127.0.0.1:5555", "tcp://127.0.0.1:5556",
-                  "tcp://127.0.0.1:5557", "127.0.0.1:9108", "tolerance 2m", "stale after 12h",
+                  "tcp://127.0.0.1:5557", "127.0.0.1:9108", "tolerance 2m",
+                  "stale after 3 lab intervals + the lab delay",
+                  "commissioning until 30 lab results learned or 7d",
                   m.fingerprint()):
         assert piece in text, piece
     assert "reachable from other hosts" not in text

@@ -60,6 +60,9 @@ def _unclocked(mon: dict | None) -> None:
     if mon is not None:
         mon.pop("clock")
         mon["drift"].pop("last_t")
+        # the lab delays are arrival clocks; commissioning starts at the first feed time
+        mon["lab_interval"].pop("delays")
+        mon["commissioning"].pop("start")
 
 
 def state(r: ModelRunner, clocks: bool = True) -> bytes:

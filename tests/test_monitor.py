@@ -51,7 +51,7 @@ def model_cfg(alerts: dict | None = None, **tables):
     """The C-301 model config of the daemon tests with an ``[model.alerts]`` table."""
     m = c301_model(**tables)
     if alerts:
-        m["alerts"] = alerts
+        m["alerts"] = {**m.get("alerts", {}), **alerts}
     return loads(toml_config({"metrics": ""}, [m]), "<test>").models[0]
 
 

@@ -52,7 +52,7 @@ ARL0_CUSUM = 465.0  # two-sided, k = 0.5, h = 5 (Montgomery's table, from memory
 def service(alerts: dict | None = None, **tables) -> Service:
     m = c301_model(**tables)
     if alerts:
-        m["alerts"] = alerts
+        m["alerts"] = {**m.get("alerts", {}), **alerts}
     svc = Service(loads(toml_config({"metrics": ""}, [m]), "<test>"),
                   registry=CollectorRegistry())
     svc.pub = Recorder()

@@ -10,7 +10,7 @@ Std            Double    predictive standard deviation (same unit)
 Lo, Hi         Double    bounds of the prediction interval at the model's level
 Level          Double    that level (e.g. 0.95)
 Status         String    learning, stale, frozen or unidentified
-Trust          String    normal, caution or untrusted
+Trust          String    commissioning, normal, caution or untrusted
 LabValue       Double    last lab result learned from or offered (y of ``fit/``)
 LabTime        DateTime  the time that sample was drawn
 =============  ========  ===========================================================
@@ -65,6 +65,7 @@ def quality(status: str, trust: str | None) -> int:
     =================  ==========================  ======================================
     normal             Good                        Uncertain_LastUsableValue / Uncertain
     caution            Uncertain                   Uncertain
+    commissioning      Uncertain                   Uncertain
     untrusted          Bad                         Bad
     =================  ==========================  ======================================
 
@@ -81,8 +82,8 @@ def quality(status: str, trust: str | None) -> int:
         return BAD_WAITING_FOR_INITIAL_DATA
     if trust == "untrusted":
         return BAD
-    if trust == "caution":
-        return UNCERTAIN
+    if trust in ("caution", "commissioning"):
+        return UNCERTAIN  # commissioning: the detectors have not judged the model yet
     if status == "stale":
         return UNCERTAIN_LAST_USABLE
     if status == "learning":

@@ -110,7 +110,13 @@ def _describe_model(m: ModelConfig) -> list[str]:
     lines.append(f"  interval level: {_num(m.level)}")
     lines.append(f"  lab matching: tolerance {format_duration(m.tolerance)}, keep "
                  f"{format_duration(m.keep)} or {m.keep_count} rows, stale after "
-                 f"{format_duration(m.stale_after)}")
+                 + (format_duration(m.stale_after) if m.stale_after is not None else
+                    f"{_num(m.stale_factor)} lab intervals + the lab delay (within "
+                    f"{format_duration(m.stale_min)} .. {format_duration(m.stale_max)})"))
+    if m.alerts and (m.commissioning_labs or m.commissioning_time):
+        ends = [f"{m.commissioning_labs} lab results learned" if m.commissioning_labs else "",
+                format_duration(m.commissioning_time) if m.commissioning_time else ""]
+        lines.append(f"  commissioning until {' or '.join(e for e in ends if e)}")
     return lines
 
 

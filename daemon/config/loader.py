@@ -215,6 +215,10 @@ def _finish_model(values: dict, present: set[str], raw: dict, ctx: _Ctx) -> Mode
     if values["head_start"] >= values["cusum_h"]:
         raise ctx.error("alerts.head_start", f"a number in [0, cusum_h = {values['cusum_h']:g})",
                         _show(_given(raw, "head_start")))
+    if values["stale_max"] < values["stale_min"]:
+        raise ctx.error("lab.stale_max", f"a duration of at least stale_min = "
+                        f"{format_duration(values['stale_min'])}",
+                        _show(_given(raw, "stale_max")))
     model = ModelConfig(**values)
     names = model.build_basis().names
     if len(names) > MAX_TERMS:

@@ -31,6 +31,15 @@ _ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift", "noise_adaptive"
 # Descriptive settings added after the schema above (not learning settings): absent from
 # older state folders, read as not set.
 _DESCRIPTIVE_LATER = ("target", "unit")
+# Settings of the lab and alerts added later (they never enter the fingerprint): absent
+# from older state folders and read as their default there.
+_ADDED_LATER_RUNTIME = {
+    "stale_factor": ("model.lab", "stale_factor"), "stale_min": ("model.lab", "stale_min"),
+    "stale_max": ("model.lab", "stale_max"),
+    "region_min_samples": ("model.alerts", "region_min_samples"),
+    "commissioning_labs": ("model.alerts", "commissioning_labs"),
+    "commissioning_time": ("model.alerts", "commissioning_time"),
+}
 
 
 @dataclass(frozen=True)
@@ -117,7 +126,10 @@ class ModelConfig:
     keep: float = _default("model.lab", "keep")
     keep_count: int = _default("model.lab", "keep_count")
     tolerance: float = _default("model.lab", "tolerance")
-    stale_after: float = _default("model.lab", "stale_after")
+    stale_after: float | None = _default("model.lab", "stale_after")
+    stale_factor: float = _default("model.lab", "stale_factor")
+    stale_min: float = _default("model.lab", "stale_min")
+    stale_max: float = _default("model.lab", "stale_max")
     alerts: bool = _default("model.alerts", "enabled")
     cusum_k: float = _default("model.alerts", "cusum_k")
     cusum_h: float = _default("model.alerts", "cusum_h")
@@ -133,10 +145,13 @@ class ModelConfig:
     leverage_limit: float = _default("model.alerts", "leverage_limit")
     region_limit: float = _default("model.alerts", "region_limit")
     region_half_life: float = _default("model.alerts", "region_half_life")
+    region_min_samples: int = _default("model.alerts", "region_min_samples")
     drift_window: float = _default("model.alerts", "drift_window")
     drift_limit: float = _default("model.alerts", "drift_limit")
     clear_count: int = _default("model.alerts", "clear_count")
     clear_time: float = _default("model.alerts", "clear_time")
+    commissioning_labs: int = _default("model.alerts", "commissioning_labs")
+    commissioning_time: float = _default("model.alerts", "commissioning_time")
     auto_flatten: bool = _default("model.alerts", "auto_flatten")
     flatten_keep: float = _default("model.alerts", "flatten_keep")
 
@@ -253,6 +268,8 @@ class ModelConfig:
         later = {f.name: f.default for f in fields(cls) if f.name in _ADDED_LATER}
         state = {**later, **state}
         state = {**{k: _default("model", k) for k in _DESCRIPTIVE_LATER}, **state}
+        state = {**{k: _default(sec, key) for k, (sec, key) in _ADDED_LATER_RUNTIME.items()},
+                 **state}
         keys = set(state) - {"schema"}
         if keys != names:
             raise ValueError(f"model config keys differ from the settings: missing "

@@ -380,9 +380,21 @@ SETTINGS: tuple[Setting, ...] = (
             "Most input rows kept per model.", GE1),
     Setting("model.lab", "tolerance", "tolerance", DURATION, 120.0,
             "Largest gap between a lab sample time and the input row matched with it.", GE0),
-    Setting("model.lab", "stale_after", "stale_after", DURATION, 12 * _hour,
+    Setting("model.lab", "stale_after", "stale_after", DURATION, None,
             'Predictions are marked "stale" when no lab result was accepted for this long '
-            "(also the staleness alert, reason `stale`).", GT0),
+            "(also the staleness alert, reason `stale`). Not set: derived from the lab "
+            "schedule the model observes, `stale_factor` times the median interval between "
+            "lab samples plus their median delay, within `stale_min` .. `stale_max` (12 h "
+            "until three intervals are seen, and always with alerts disabled).", GT0,
+            default_doc="not set (from the observed lab interval)"),
+    Setting("model.lab", "stale_factor", "stale_factor", NUMBER, 3.0,
+            "Intervals between lab samples without an accepted result before the model is "
+            "stale, when `stale_after` is not set: at 3, two results in a row may be missing "
+            "or rejected.", GT1),
+    Setting("model.lab", "stale_min", "stale_min", DURATION, _hour,
+            "Shortest derived `stale_after`.", GT0),
+    Setting("model.lab", "stale_max", "stale_max", DURATION, 7 * _day,
+            "Longest derived `stale_after`; at least `stale_min`.", GT0),
     # [model.alerts]
     Setting("model.alerts", "enabled", "alerts", BOOLEAN, True,
             "Run the detectors and the trust state; false publishes no alerts."),
@@ -426,6 +438,10 @@ SETTINGS: tuple[Setting, ...] = (
             "disables.", GE0),
     Setting("model.alerts", "region_half_life", "region_half_life", NUMBER, 200.0,
             "Half-life, in lab results, of the learned-region mean and covariance.", GT0),
+    Setting("model.alerts", "region_min_samples", "region_min_samples", INTEGER, 40,
+            "Lab results learned before the learned region is judged (at least one more "
+            "than the inputs); until then the region is the instrument ranges (`lo`, `hi`) "
+            "and inputs outside it are `out_of_range`.", GE1),
     Setting("model.alerts", "drift_window", "drift_window", DURATION, 7 * _day,
             "Window over which the movement of the weight posterior is measured.", GT0),
     Setting("model.alerts", "drift_limit", "drift_limit", NUMBER, 6.0,
@@ -436,6 +452,14 @@ SETTINGS: tuple[Setting, ...] = (
             "Evaluations a reason must be absent before it clears (hysteresis).", GE1),
     Setting("model.alerts", "clear_time", "clear_time", DURATION, _hour,
             "Time a reason must also be absent before it clears.", GE0),
+    Setting("model.alerts", "commissioning_labs", "commissioning_labs", INTEGER, 30,
+            "A new model is `commissioning` (its trust published as that, no trust alert "
+            "raised, the detectors learning their baselines) until it has learned this many "
+            "lab results or `commissioning_time` has passed since its first sample, "
+            "whichever comes first; 0 turns this criterion off.", GE0),
+    Setting("model.alerts", "commissioning_time", "commissioning_time", DURATION, 7 * _day,
+            "Longest commissioning, from the model's first sample (feed time); 0 turns this "
+            "criterion off, and with `commissioning_labs = 0` too there is none.", GE0),
     Setting("model.alerts", "auto_flatten", "auto_flatten", BOOLEAN, False,
             "On a mean-shift signal, apply one extra forgetting step toward the prior so the "
             "model re-learns quickly, and publish that it did.", learning=True),
@@ -464,6 +488,7 @@ RULES: tuple[str, ...] = (
     "`adapt_window` only apply with it; `offset_drift_min` <= `offset_drift_max`.",
     "`gate.release` is not allowed with `gate.k = 0`.",
     "`alerts.head_start` < `alerts.cusum_h`.",
+    "`lab.stale_max` >= `lab.stale_min`.",
 )
 
 _BY_SECTION: dict[str, tuple[Setting, ...]] = {

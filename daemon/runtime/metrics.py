@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
 from daemon.runtime import wire
-from daemon.runtime.monitor import REASONS, STATES, _calibration_means
+from daemon.runtime.monitor import REASONS, TRUST_STATES, _calibration_means
 
 PREFIX = "posteriord"
 
@@ -94,13 +94,15 @@ METRICS: tuple[Metric, ...] = (
     Metric("model_updates", "gauge", "Lab results in the posterior since the last reset.", _M),
     Metric("model_lab_age_seconds", "gauge", "Sample time of the newest features minus that "
            "of the last accepted lab result (feed clock, not wall clock).", _M),
+    Metric("model_stale_after_seconds", "gauge", "Lab age beyond which the model is stale: "
+           "[model.lab] stale_after, or derived from the observed lab interval.", _M),
     Metric("model_identified", "gauge", "1 when the model can predict.", _M),
     Metric("model_frozen", "gauge", "1 while learning is frozen.", _M),
     # per model, from its detectors (models with alerts enabled)
-    Metric("model_trust_level", "gauge", "Trust level: 0 normal, 1 caution, 2 untrusted.",
-           _M),
-    Metric("model_trust_state", "gauge", "1 for the model's current trust state.",
-           ("model", "state")),
+    Metric("model_trust_level", "gauge", "Trust level: 0 normal, 1 caution, 2 untrusted "
+           "(0 while commissioning, when no reason is held).", _M),
+    Metric("model_trust_state", "gauge", "1 for the model's current trust state "
+           "(`commissioning` until its trust alerts count).", ("model", "state")),
     Metric("model_alert_reason", "gauge", "Level at which each alert reason is held (0 when "
            "not held).", ("model", "reason")),
     Metric("model_alert_acknowledged", "gauge", "1 when every held reason has been "
@@ -149,7 +151,7 @@ def metrics_markdown() -> str:
         f"Rejection reasons (`reason` of `{PREFIX}_rejected_total`): "
         + ", ".join(f"`{r}`" for r in MODEL_REASONS) + ".",
         "",
-        f"Trust states (`state`): {', '.join(f'`{s}`' for s in STATES)}. Alert reasons "
+        f"Trust states (`state`): {', '.join(f'`{s}`' for s in TRUST_STATES)}. Alert reasons "
         f"(`reason` of `{PREFIX}_model_alert_reason`): {', '.join(f'`{r}`' for r in REASONS)}.",
         "",
         "| Metric | Type | Labels | Help |",
@@ -212,6 +214,7 @@ class ServiceCollector:
                 f["model_lab_age_seconds"].add_metric(m, max(0.0, r.last_x_t - r.last_lab_t))
             else:
                 f["model_lab_age_seconds"].add_metric(m, math.nan)
+            f["model_stale_after_seconds"].add_metric(m, r.stale_after)
             f["model_identified"].add_metric(m, 1.0 if r.post.identified else 0.0)
             f["model_frozen"].add_metric(m, 1.0 if r.frozen else 0.0)
             if r.monitor is not None:
@@ -251,8 +254,9 @@ class ServiceCollector:
         mon = r.monitor
         m = [r.name]
         f["model_trust_level"].add_metric(m, mon.trust.level)
-        for st in STATES:
-            f["model_trust_state"].add_metric([r.name, st], 1.0 if mon.trust.state == st else 0.0)
+        state = mon.state
+        for st in TRUST_STATES:
+            f["model_trust_state"].add_metric([r.name, st], 1.0 if state == st else 0.0)
         held = {name: lvl for name, lvl, _v, _l in mon.trust.reasons}
         for name in REASONS:
             f["model_alert_reason"].add_metric([r.name, name], held.get(name, 0))

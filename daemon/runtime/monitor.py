@@ -20,12 +20,20 @@ reason                 level  active when
                               over ``drift_window``
 ``uncertainty``        2      predictive std > ``std_limit``
 ``uncertainty_ratio``  1      predictive std > ``std_ratio`` x its typical value
-``stale``              1      no accepted lab result for ``stale_after``
+``stale``              1      no accepted lab result for ``stale_after`` (set, or derived
+                              from the observed lab interval)
 ``extrapolation``      1      leverage phi'V phi > ``leverage_limit``
 ``outside_region``     1      inputs farther than ``region_limit`` (Mahalanobis) from those
-                              learned on
+                              learned on, once ``region_min_samples`` have been learned
 ``out_of_range``       1      an input outside its declared instrument range
 =====================  =====  ==========================================================
+
+A new model is first ``commissioning``: the detectors run and learn their baselines, but the
+trust state is not advanced and no alert is raised, until ``commissioning_labs`` lab results
+have been learned or ``commissioning_time`` has passed since its first sample. Then one
+state event goes from ``commissioning`` to the state the active reasons give (often
+``normal``). Until the learned input region has ``region_min_samples`` results, the region
+is the instrument ranges: inputs outside them are ``out_of_range``.
 """
 
 from __future__ import annotations
@@ -36,8 +44,10 @@ import numpy as np
 
 from recursive.detect import (
     Calibration,
+    Commissioning,
     Cusum,
     InputRegion,
+    LabInterval,
     ParamDrift,
     SpreadCusum,
     StdBaseline,
@@ -47,6 +57,11 @@ from recursive.detect import (
 REASONS = ("mean_shift", "spread", "miscalibrated", "rejections", "param_drift", "uncertainty",
            "uncertainty_ratio", "stale", "extrapolation", "outside_region", "out_of_range")
 STATES = ("normal", "caution", "untrusted")
+COMMISSIONING = "commissioning"
+# every trust a model publishes: the levels, and commissioning before they count
+TRUST_STATES = (COMMISSIONING, *STATES)
+# stale_after while the lab schedule is not known yet (and with alerts disabled)
+STALE_FALLBACK = 12 * 3600.0
 SCHEMA = 1
 _MIN_CALIBRATION = 20
 # the latest value of each statistic shown by view() and the metrics, before any is computed
@@ -67,9 +82,12 @@ class Monitor:
         self.std = StdBaseline(cfg.std_half_life, limit_abs=cfg.std_limit,
                                ratio=cfg.std_ratio if cfg.std_ratio > 0 else None)
         self.region = InputRegion(n_in, cfg.region_half_life,
-                                  cfg.region_limit if cfg.region_limit > 0 else 1.0)
+                                  cfg.region_limit if cfg.region_limit > 0 else 1.0,
+                                  min_count=cfg.region_min_samples)
         self.drift = ParamDrift(cfg.drift_window)
         self.trust = Trust(STATES, cfg.clear_count, cfg.clear_time)
+        self.commissioning = Commissioning(cfg.commissioning_labs, cfg.commissioning_time)
+        self.lab_interval = LabInterval()
         self._clear_views()
 
     def _clear_views(self) -> None:
@@ -81,17 +99,31 @@ class Monitor:
         self.clock: float | None = None
         # the last ParamDrift step, whose KL is computed on request (view)
         self._drift_step = None
+        self._stale_after = self._derive_stale_after()
 
     def reset(self) -> None:
         """Forget all detector state (with the model's reset)."""
         for d in (self.cusum, self.spread, self.calibration, self.std, self.region, self.drift,
-                  self.trust):
+                  self.trust, self.commissioning, self.lab_interval):
             d.reset()
         self._clear_views()
 
     @property
     def state(self) -> str:
-        return self.trust.state
+        """The trust published: ``commissioning``, or the trust state's level."""
+        return COMMISSIONING if self.commissioning.active else self.trust.state
+
+    @property
+    def stale_after(self) -> float:
+        """The age of the last accepted lab result beyond which the model is stale."""
+        return self._stale_after
+
+    def _derive_stale_after(self) -> float:
+        cfg = self.cfg
+        if cfg.stale_after is not None:
+            return float(cfg.stale_after)
+        return self.lab_interval.stale_after(cfg.stale_factor, cfg.stale_min, cfg.stale_max,
+                                             STALE_FALLBACK)
 
     # ------------------------------------------------------------------ events
     def on_lab(self, clock: float, step, x, post) -> list[dict]:
@@ -99,6 +131,9 @@ class Monitor:
         cfg = self.cfg
         events: list[dict] = []
         act = self.lab_active
+        if step.t is not None and math.isfinite(step.t):
+            self.lab_interval.update(step.t, max(clock, step.t))
+            self._stale_after = self._derive_stale_after()
         run = abs(step.reject_run)
         if run >= 2:
             act["rejections"] = (1, float(run), 2.0)
@@ -153,7 +188,7 @@ class Monitor:
                     act["param_drift"] = (1, d.mahalanobis, cfg.drift_limit)
                 else:
                     act.pop("param_drift", None)
-        return events + self._evaluate(clock)
+        return events + self._evaluate(clock, 1 if step.accepted else 0)
 
     def on_predictions(self, clock: float, X: np.ndarray, std: np.ndarray,
                        leverage: np.ndarray, last_lab_t: float | None) -> list[dict]:
@@ -165,7 +200,7 @@ class Monitor:
         cfg = self.cfg
         lev = float(leverage.max()) if len(leverage) else math.nan
         dist = None
-        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+        if cfg.region_limit > 0 and self.region.ready:
             dist = float(self.region.distances(X).max())
         return self._pred_step(clock, float(std[-1]), lev, dist,
                                self.basis.rows_out_of_range(X), last_lab_t)
@@ -201,8 +236,9 @@ class Monitor:
         self.last["out_of_range"] = float(outside)
         if outside:
             act["out_of_range"] = (1, float(outside), 0.0)
-        if last_lab_t is not None and clock - last_lab_t > cfg.stale_after:
-            act["stale"] = (1, clock - last_lab_t, cfg.stale_after)
+        stale = self._stale_after
+        if last_lab_t is not None and clock - last_lab_t > stale:
+            act["stale"] = (1, clock - last_lab_t, stale)
         return self._evaluate(clock)
 
     def on_prediction_rows(self, ts, X: np.ndarray, std: np.ndarray, leverage: np.ndarray,
@@ -222,7 +258,7 @@ class Monitor:
         cfg = self.cfg
         k = len(ts)
         dist = None
-        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+        if cfg.region_limit > 0 and self.region.ready:
             dist = self.region.distances(X, rowwise=True)
         outside = self.basis.out_of_range(X).any(axis=1)
         if k > 1 and self._quiet_rows(ts, std, leverage, dist, outside, last_lab_t):
@@ -241,7 +277,7 @@ class Monitor:
                                  last_lab_t)
             if ev:
                 marks.append((i, ev))
-            trust.append(self.trust.state)
+            trust.append(self.state)
         return trust, marks
 
     def on_prediction_row(self, t: float, x: list, std: float, leverage: float,
@@ -250,16 +286,20 @@ class Monitor:
         float arithmetic: the same values, bit for bit, and the same step."""
         cfg = self.cfg
         dist = None
-        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+        if cfg.region_limit > 0 and self.region.ready:
             dist = self.region.distance_row(x)
         ev = self._pred_step(t, std, leverage, dist, int(self.basis.row_out_of_range(x)),
                              last_lab_t)
-        return [self.trust.state], [(0, ev)] if ev else []
+        return [self.state], [(0, ev)] if ev else []
 
     def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
         """True if no row would make a reason active and none is active or held now."""
         if self.lab_active or self.trust.level or self.trust.reasons:
             return False
+        com = self.commissioning
+        if com.active and com.params()["duration"] and (
+                com.start is None or ts[-1] - com.start >= com.params()["duration"]):
+            return False  # commissioning may end within these rows: step them one by one
         cfg = self.cfg
         if not np.isfinite(std).all():
             return False  # inf or nan rows: rare, take the row-by-row path
@@ -277,14 +317,22 @@ class Monitor:
             return False
         if outside.any():
             return False
-        if last_lab_t is not None and ts[-1] - last_lab_t > cfg.stale_after:
+        if last_lab_t is not None and ts[-1] - last_lab_t > self._stale_after:
             return False
         return True
 
-    def _evaluate(self, clock: float) -> list[dict]:
+    def _evaluate(self, clock: float, learned: int = 0) -> list[dict]:
         if self.clock is not None and clock < self.clock:
             clock = self.clock  # lab results carry older sample times; the clock never goes back
         self.clock = clock
+        if self.commissioning.active:
+            if not self.commissioning.step(clock, learned):
+                return []  # the detectors learn; their verdicts do not count yet
+            # commissioning ended: the reasons active now set the first trust state
+            self.trust.advance(clock, {**self.lab_active, **self.pred_active}, checked=True)
+            trust = self.trust
+            return [{"t": clock, "kind": "state", "old": COMMISSIONING, "new": trust.state,
+                     "reasons": _reasons(trust.reasons), "acknowledged": trust.acknowledged}]
         if not self.lab_active and not self.pred_active and self.trust.level == 0 \
                 and not self.trust.reasons:
             return []  # nothing active and nothing held: a trust step would change nothing
@@ -299,7 +347,7 @@ class Monitor:
 
     def acknowledge(self) -> dict:
         self.trust.acknowledge()
-        return {"t": self.clock, "kind": "ack", "state": self.trust.state}
+        return {"t": self.clock, "kind": "ack", "state": self.state}
 
     # ------------------------------------------------------------------ views
     def reasons(self) -> list[dict]:
@@ -308,9 +356,20 @@ class Monitor:
     def view(self) -> dict:
         """Detector statistics and the trust state, for the control socket."""
         cal = self.calibration
+        com = self.commissioning
         return {
-            "state": self.trust.state,
+            "state": self.state,
             "reasons": self.reasons(),
+            "commissioning": {"active": com.active, "learned": com.learned,
+                              **({"remaining": com.remaining(self.clock)}
+                                 if com.active and self.clock is not None else {})},
+            "stale_after": self._stale_after,
+            "stale_after_source": "config" if self.cfg.stale_after is not None else (
+                "lab interval" if self.lab_interval.count >= LabInterval.MIN_INTERVALS
+                else "default until the lab interval is known"),
+            "lab_interval": {"interval": self.lab_interval.interval,
+                             "delay": self.lab_interval.delay},
+            "region": "learned" if self.region.ready else "instrument ranges",
             "cusum": {k: v for k, v in self.cusum.to_state().items()
                       if k in ("upper", "lower", "run_length")} | self.cusum.params(),
             "spread": {"statistic": self.spread.statistic, **self.spread.params()},
@@ -338,6 +397,8 @@ class Monitor:
             "calibration": self.calibration.to_state(), "std": self.std.to_state(),
             "region": self.region.to_state(), "drift": self.drift.to_state(),
             "trust": self.trust.to_state(),
+            "commissioning": self.commissioning.to_state(),
+            "lab_interval": self.lab_interval.to_state(),
             "labs_since_shift": self.labs_since_shift, "labs_since_spread": self.labs_since_spread,
             "lab_active": {k: list(v) for k, v in self.lab_active.items()},
             # the last batch's verdicts stay active until the next batch; without them a lab
@@ -357,6 +418,14 @@ class Monitor:
         self.region = InputRegion.from_state(d["region"])
         self.drift = ParamDrift.from_state(d["drift"])
         self.trust = Trust.from_state(d["trust"])
+        if "commissioning" in d:
+            self.commissioning = Commissioning.from_state(d["commissioning"])
+        else:  # a model that ran before commissioning existed is past it
+            self.commissioning = Commissioning(self.cfg.commissioning_labs,
+                                               self.cfg.commissioning_time)
+            self.commissioning.end()
+        self.lab_interval = (LabInterval.from_state(d["lab_interval"]) if "lab_interval" in d
+                             else LabInterval())
         self.labs_since_shift = d["labs_since_shift"]
         self.labs_since_spread = d["labs_since_spread"]
         self.lab_active = {k: (int(v[0]), float(v[1]), float(v[2]))
@@ -368,6 +437,7 @@ class Monitor:
         self.last = {k: float(last.get(k, v)) for k, v in _LAST.items()}
         self.clock = d["clock"]
         self._drift_step = None
+        self._stale_after = self._derive_stale_after()
 
 
 def _reasons(reasons) -> list[dict]:

@@ -24,7 +24,7 @@ import numpy as np
 
 from daemon.config import ModelConfig
 from daemon.runtime.alignment import Aligner
-from daemon.runtime.monitor import Monitor
+from daemon.runtime.monitor import STALE_FALLBACK, Monitor
 from recursive import OutOfOrderError, Posterior, Prediction
 
 _PREDICTION_FIELDS = tuple(f.name for f in fields(Prediction))
@@ -199,6 +199,13 @@ class ModelRunner:
     def trust(self) -> str | None:
         return None if self.monitor is None else self.monitor.state
 
+    @property
+    def stale_after(self) -> float:
+        """``[model.lab] stale_after``, or the monitor's estimate from the lab interval."""
+        if self.monitor is not None:
+            return self.monitor.stale_after
+        return self.cfg.stale_after if self.cfg.stale_after is not None else STALE_FALLBACK
+
     # ------------------------------------------------------------------ feed
     def note_seq(self, seq: int | None, src: str | None = None) -> None:
         """Count gaps in a publisher's sequence numbers on this model's topic.
@@ -263,7 +270,7 @@ class ModelRunner:
             return "unidentified"
         if self.frozen:
             return "frozen"
-        if self.last_lab_t is None or t - self.last_lab_t > self.cfg.stale_after:
+        if self.last_lab_t is None or t - self.last_lab_t > self.stale_after:
             return "stale"
         return "learning"
 
@@ -385,14 +392,15 @@ class ModelRunner:
         if self.monitor is not None:
             trust, marks = self._detect(ts, X, pred, singles, waiting)
         lo, hi = pred.interval(self.cfg.level)
+        stale = self.stale_after
         if not self.post.identified or self.frozen or self.last_lab_t is None:
             status = [self.status_at(ts[0])] * len(ts)
-        elif ts[-1] - self.last_lab_t <= self.cfg.stale_after:
+        elif ts[-1] - self.last_lab_t <= stale:
             status = ["learning"] * len(ts)
-        elif ts[0] - self.last_lab_t > self.cfg.stale_after:
+        elif ts[0] - self.last_lab_t > stale:
             status = ["stale"] * len(ts)
         else:
-            status = np.where(t - self.last_lab_t > self.cfg.stale_after, "stale",
+            status = np.where(t - self.last_lab_t > stale, "stale",
                               "learning").tolist()
         if waiting is not None:
             status = list(status)

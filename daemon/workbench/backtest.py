@@ -82,6 +82,7 @@ __all__ = [
     "bias_reference",
     "choose_bias_factor",
     "collect",
+    "coverage_verdict",
     "feed_messages",
     "fit_static",
     "history_from_run",
@@ -634,7 +635,9 @@ def backtest(history: History, model: ModelConfig, *, train: float = 14 * 86400.
         log.setLevel(old_level)
     meta = {"schema": SCHEMA, "model": model.name, "level": model.level,
             "target": history.target, "unit": unit, "cusum_k": model.cusum_k,
-            "cusum_h": model.cusum_h, "stale_after": model.stale_after,
+            "cusum_h": model.cusum_h, "stale_after": svc.runners[model.name].stale_after,
+            "stale_after_source": "config" if model.stale_after is not None else
+            "lab interval",
             "source": os.path.basename(history.path), "lab_delay": lab_delay, "block": block}
     decoded = list(_decoded(recorder.frames))
     track = collect(decoded, model.name, meta)
@@ -909,6 +912,32 @@ def _g(x: float, width: int) -> str:
     return f"{text[:-1] if text.endswith('.') else text:>{width}}"
 
 
+def coverage_verdict(z, level: float = 0.95) -> dict:
+    """Whether the interval coverage is inside the band a calibrated model stays in.
+
+    ``z`` are the standardized residuals of the scored results. The share inside the
+    central interval of probability ``level`` is binomial for a calibrated model, so it lies
+    within ``level +- 1.96 sqrt(level (1 - level) / n)`` 95% of the time (the normal
+    approximation, the band of the calibration page); likewise the mean of ``z`` within
+    ``+- 1.96 / sqrt(n)``. Returns ``{"n", "coverage", "band", "inside", "mean_z",
+    "mean_band", "biased"}``.
+    """
+    z = np.asarray(z, dtype=float)
+    z = z[np.isfinite(z)]
+    n = int(z.size)
+    if n == 0:
+        return {"n": 0, "coverage": math.nan, "band": (math.nan, math.nan), "inside": True,
+                "mean_z": math.nan, "mean_band": math.nan, "biased": False}
+    q = special.ndtri(0.5 + level / 2)
+    cover = float(np.mean(np.abs(z) <= q))
+    half = 1.96 * math.sqrt(level * (1 - level) / n)
+    mean_z = float(np.mean(z))
+    mb = 1.96 / math.sqrt(n)
+    return {"n": n, "coverage": cover, "band": (level - half, level + half),
+            "inside": level - half <= cover <= level + half, "mean_z": mean_z,
+            "mean_band": mb, "biased": abs(mean_z) > mb}
+
+
 def summary_text(res: BacktestResult, unit: str = "") -> str:
     """The backtest summary: scores side by side, alerts raised."""
     h, m = res.history, res.model
@@ -955,6 +984,7 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
         "  then, not what the control room saw; ungated: RMSE without the results the gate "
         "rejected)",
     ]
+    lines += _verdict_lines(res)
     if res.n_gated:
         parts = ", ".join(f"{k} {_g(res.scores_gated[k].rmse, 0)}" for k in REFERENCES)
         lines.append(f"  RMSE over the {res.n_gated} results the gate rejected, alone:")
@@ -968,6 +998,32 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
     else:
         lines.append("  alerts raised: none")
     return "\n".join(lines)
+
+
+def _verdict_lines(res: BacktestResult) -> list[str]:
+    """The calibration verdict of the recursive model over the scored, ungated results."""
+    f = _fits_by_time(res.track)
+    start = res.train_end
+    z = [x.get("z") for t, x in f.items() if t >= start and x.get("reason") != "gated"]
+    v = coverage_verdict(np.array([_nan(q) for q in z], dtype=float), res.model.level)
+    if not v["n"]:
+        return []
+    lo, hi = v["band"]
+    if v["inside"] and not v["biased"]:
+        return [f"  calibration: coverage {100 * v['coverage']:.1f}% (arrival z, {v['n']} "
+                f"results), inside the band {100 * lo:.1f} .. {100 * hi:.1f}% of a calibrated "
+                "model; mean z within its band"]
+    out = [f"  CALIBRATION: coverage {100 * v['coverage']:.1f}% (arrival z, {v['n']} results)"
+           f" is {'inside' if v['inside'] else 'OUTSIDE'} the band {100 * lo:.1f} .. "
+           f"{100 * hi:.1f}% of a calibrated model"]
+    if not v["inside"]:
+        out.append("    the intervals are " + ("too narrow" if v["coverage"] < lo
+                                               else "too wide"))
+    if v["biased"]:
+        side = "above" if v["mean_z"] > 0 else "below"
+        out.append(f"    mean z {v['mean_z']:+.2f} (band +-{v['mean_band']:.2f}): the lab "
+                   f"results sit {side} the predictions (a bias)")
+    return out
 
 
 # ---------------------------------------------------------------------------------- files

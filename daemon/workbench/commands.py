@@ -327,6 +327,7 @@ def cmd_report(args) -> int:
                               note=args.note, cusum_k=k, cusum_h=h, stale_after=stale)
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
+    print(report.summary_text(track), file=sys.stderr)
     for p in paths:
         print(p)
     return EXIT_OK

@@ -36,6 +36,33 @@ from daemon.runtime import wire
 from daemon.workbench import backtest, historian, live, plant, report, tune
 
 MODEL = "c301.bottoms_solvent"
+LAB_LINES_NOTE = ("one line per lab result, printed when it arrives: 'drawn' is when the "
+                  "sample was taken,\n'in +2.1h' how long after that it reached the daemon; "
+                  "slow results arrive after later ones,\nso the drawn times are not in order. "
+                  "pred: the prediction for the drawn time; z: the lab value\nin units of the "
+                  "prediction's spread ('-' while the model cannot tell its spread yet)")
+
+
+def what_next(out_dir: str, picture: str, csv_path: str, block_path: str) -> str:
+    """The last words of the demo: where its files are and how to try one's own data."""
+    cli = "posteriord"
+    return "\n".join([
+        "",
+        "What next",
+        f"  open the report:        {picture}",
+        f"  the demo's files:       {out_dir} (export, tuned [[model]] block, predictions)",
+        "  your own data: export the inputs and the lab column from your historian as a CSV",
+        f"  (the layout of {os.path.basename(csv_path)}; README.md \"Your own data in five "
+        "minutes\"), then",
+        f"    {cli} tune     export.csv --target LAB_TAG --until 28d --out model.toml",
+        f"    {cli} backtest export.csv --target LAB_TAG --config model.toml --train 28d "
+        "--out pred.csv",
+        f"    {cli} report   pred.csv --out report.png",
+        f"    {cli} run      --config plant.toml   # a [daemon] table + the [[model]] of "
+        "model.toml",
+        f"  (the demo's own tuned block for comparison: {block_path};",
+        f"  `{cli} <command> --help` for every option)",
+    ])
 
 
 def free_port() -> int:
@@ -81,9 +108,20 @@ class Tally:
         elif topic.startswith(b"fit/"):
             self.fits.append(body)
             if not quiet:
-                print(self.line(body), flush=True)
+                print(self.line(body, self.newest), flush=True)
 
-    def line(self, f: dict) -> str:
+    @property
+    def newest(self) -> float | None:
+        """The newest prediction time seen: the feed's time when a lab result arrives."""
+        if not self.pred_t:
+            return None
+        t = self.pred_t[-1]
+        return float(t[-1] if isinstance(t, list) else t)
+
+    def line(self, f: dict, arrived: float | None = None) -> str:
+        """One lab result: its drawn time, when it arrived (the newest feed time then; lab
+        results arrive hours after their sample is drawn, so drawn times are printed out of
+        order), the value, the prediction for its drawn time and what the model did."""
         mark = " (blunder injected)" if f["t"] in self.blunder_t else ""
         if f["accepted"]:
             what = "learned" if f["reason"] != "gate_open" else "learned (gate opened)"
@@ -91,11 +129,17 @@ class Tally:
             what = f"REJECTED by the gate{mark}"
             mark = ""
         pm, ps, z = f["pred_mean"], f["pred_std"], f["z"]
+        finite_std = ps is not None and math.isfinite(ps)
         pred = ("no prediction yet" if pm is None or not math.isfinite(pm)
-                else f"pred {pm:6.1f} ± {ps:5.1f}" if math.isfinite(ps)
+                else f"pred {pm:6.1f} ± {ps:5.1f}" if finite_std
                 else f"pred {pm:6.1f} ± inf ")
-        zs = f"z {z:+5.2f}" if z is not None and math.isfinite(z) else "z   -  "
-        return (f"{_stamp(f['t'])}  lab {f['y']:6.1f} ppm  {pred}  {zs}  {what}{mark}"
+        # with an infinite std (too few results to know the noise) z says nothing
+        zs = f"z {z:+5.2f}" if z is not None and math.isfinite(z) and finite_std \
+            else "z   -  "
+        when = f"drawn {_stamp(f['t'])}"
+        if arrived is not None and arrived >= f["t"]:
+            when += f" in {'+%.1fh' % ((arrived - f['t']) / 3600.0):>6}"
+        return (f"{when}  lab {f['y']:6.1f} ppm  {pred}  {zs}  {what}{mark}"
                 f"  n={f['n']}")
 
     def summary(self) -> str:
@@ -221,6 +265,8 @@ def main(argv=None) -> int:
                                                 if not args.skip_live else "backtest"))
     for p in paths:
         print(f"report picture: {p}")
+    print(report.summary_text(track))
+    print(what_next(out_dir, paths[0] if paths else picture, csv_path, block_path))
     return code
 
 
@@ -284,7 +330,9 @@ def _live(run: plant.Run, model, block: str, rec_path: str, args) -> int:
         span = events[-1][-1 if events[-1][0] == "y" else 1] - run.t[0]
         speed = span / args.seconds
         print(f"replaying at {speed:,.0f}x real time (the same simulated run, now with its "
-              f"real lab delays); the watch view stays at the bottom\n")
+              f"real lab delays); the watch view stays at the bottom")
+        if not args.quiet:
+            print(LAB_LINES_NOTE + "\n")
         t_sim0, t_wall0 = float(run.t[0]), time.monotonic()
         send = feed.send_multipart
         topic = MODEL.encode()
@@ -341,9 +389,11 @@ class View:
         if self.quiet:
             return
         if topic.startswith(b"fit/"):
-            self.screen.above(self.tally.line(body))
+            self.screen.above(self.tally.line(body, self.tally.newest))
         elif topic.startswith(b"alert/") and body.get("kind") == "state":
-            why = ", ".join(r["name"] for r in body.get("reasons", [])) or "no reasons left"
+            why = ", ".join(r["name"] for r in body.get("reasons", [])) or (
+                "commissioning over, no reasons" if body.get("old") == "commissioning"
+                else "no reasons left")
             self.screen.above(f"{_stamp(body['t'])}  trust {body['old']} -> {body['new']} "
                               f"({why})")
 

@@ -31,11 +31,11 @@ from pathlib import Path
 import numpy as np
 from scipy import special
 
-from daemon.workbench.backtest import Track, collect, read_predictions
+from daemon.workbench.backtest import Track, collect, coverage_verdict, read_predictions
 from recursive.detect import Cusum
 
-__all__ = ["calibration", "cusum_path", "load_track", "reference_scores", "report",
-           "staleness"]
+__all__ = ["calibration", "coverage_verdict", "cusum_path", "load_track", "reference_scores",
+           "report", "staleness", "summary_text"]
 
 _STATE_COLOR = {"caution": "#f2b134", "untrusted": "#d64541"}
 _MAX_POINTS = 6000
@@ -190,6 +190,54 @@ def _segments(t, trust):
     return out
 
 
+def _span_text(*times) -> str:
+    t = np.concatenate([np.asarray(x, dtype=float) for x in times])
+    t = t[np.isfinite(t)]
+    if not t.size:
+        return ""
+    a, b = (np.array([t.min(), t.max()]).astype("datetime64[s]").astype(str))
+    return f"{a[:16].replace('T', ' ')} .. {b[:16].replace('T', ' ')}"
+
+
+def summary_text(track: Track) -> str:
+    """The report in words: the gain over the references and the calibration verdict."""
+    level = track.level
+    lab = track.lab_arrays()
+    gated = np.array([r == "gated" for r in lab["reason"]], dtype=bool)
+    start = float(track.meta.get("static_train_end", -math.inf))
+    keep = np.isfinite(lab["z"]) & ~gated & (lab["t"] >= start)
+    lines = []
+    refs = reference_scores(track)
+    if refs:
+        n = next(iter(refs.values()))[0]
+        lines.append(f"RMSE at {n} lab results (as published at sample time): "
+                     + ", ".join(f"{k} {r:#.4g}" for k, (_, r) in refs.items()))
+        if "bias update" in refs and refs["bias update"][1] > 0:
+            ratio = refs["published"][1] / refs["bias update"][1]
+            lines.append(f"  published / bias update = {ratio:.3g} "
+                         + ("(the model wins)" if ratio < 1 else "(the bias update wins)"))
+    v = coverage_verdict(lab["z"][keep], level)
+    pct = f"{100 * level:g}%"
+    if v["n"]:
+        lo, hi = v["band"]
+        where = ("inside" if v["inside"] else
+                 "BELOW" if v["coverage"] < lo else "ABOVE")
+        lines.append(f"coverage of the {pct} interval: {100 * v['coverage']:.1f}% of {v['n']} "
+                     f"lab results, {where} the band {100 * lo:.1f} .. {100 * hi:.1f}% of a "
+                     "calibrated model")
+        if not v["inside"]:
+            lines.append("  the intervals are " + ("too narrow: the model is more sure than "
+                                                  "the lab results allow" if where == "BELOW"
+                                                  else "too wide: the noise is overestimated"))
+        if v["biased"]:
+            side = "above" if v["mean_z"] > 0 else "below"
+            lines.append(f"  mean z {v['mean_z']:+.2f} (band +-{v['mean_band']:.2f}): the lab "
+                         f"results sit {side} the predictions, a bias")
+    else:
+        lines.append("coverage: no scored lab result")
+    return "\n".join(lines)
+
+
 def _legend_above(ax, ncol: int) -> None:
     ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=ncol, fontsize=8.5,
               frameon=False, borderaxespad=0.2, handletextpad=0.4, columnspacing=1.2)
@@ -264,18 +312,35 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
         ax1.plot(ld[gated], yg, "x", color="#d64541", markersize=7, markeredgewidth=2,
                  label="lab result rejected by the gate (drawn at the edge if off scale)")
     refs = reference_scores(track)
-    for key, style, color, label in (("bias_mean", "_", "#e67e22", "static + lab bias update"),
-                                     ("persist", "+", "#6c3483", "persistence (last lab known)")):
+    # the references at each lab sample, drawn as lines so the gain over them shows
+    for key, style, color, label in (
+            ("static_mean", "--", "#7f8c8d", "static model (fitted once)"),
+            ("bias_mean", "-", "#e67e22", "static + lab bias update"),
+            ("persist", "+", "#6c3483", "persistence (last lab known)")):
         v = np.array([f.get(key, math.nan) for f in track.fits], dtype=float)
-        if np.isfinite(v).any():
-            ax1.plot(ld, v, style, color=color, markersize=7, markeredgewidth=1.6,
-                     label=f"reference: {label}")
+        has_v = np.isfinite(v)
+        if has_v.any():
+            if style == "+":
+                ax1.plot(ld, v, style, color=color, markersize=6, markeredgewidth=1.2,
+                         label=f"reference: {label}")
+            else:
+                ax1.plot(ld[has_v], v[has_v], style, color=color, linewidth=1.0, alpha=0.9,
+                         drawstyle="steps-post" if key == "bias_mean" else "default",
+                         label=f"reference: {label}")
     if refs:
         n = next(iter(refs.values()))[0]
         text = ", ".join(f"{k} {r:#.4g}" for k, (_, r) in refs.items())
         ax1.text(0.995, 0.98, f"RMSE at {n} lab results, as published at sample time: {text}",
                  transform=ax1.transAxes, ha="right", va="top", fontsize=8.5, color="#333",
                  bbox={"facecolor": "white", "alpha": 0.85, "edgecolor": "#bbb"})
+    train_end = meta.get("static_train_end")
+    t_first = float(np.nanmin(np.concatenate([track.t, lab["t"]])))
+    if train_end is not None and math.isfinite(float(train_end)) and float(train_end) > t_first:
+        for ax in axes:
+            ax.axvspan(*_dates([t_first, float(train_end)]), facecolor="none",
+                       edgecolor="#95a5a6", hatch="//", linewidth=0, alpha=0.35)
+        ax1.fill_between([], [], [], facecolor="none", edgecolor="#95a5a6", hatch="//",
+                         label="training period (references fitted; not scored)")
     segs = _segments(track.t, track.trust)
     for ax in axes:
         for state, a, b in segs:
@@ -292,7 +357,8 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
     z = lab["z"]
     up, dn, sig = cusum_path(z, learned, k, h)
     zc = np.clip(z, -8, 8)
-    ax2.axhspan(-1.96, 1.96, color="#4c8bd6", alpha=0.08, linewidth=0)
+    ax2.axhspan(-1.96, 1.96, color="#4c8bd6", alpha=0.08, linewidth=0,
+                label="|z| < 1.96: 95% of a calibrated model's results")
     ax2.plot(ld[learned], zc[learned], "o", color="#1f4e8c", markersize=2.8,
              label="z of a learned lab result")
     if gated.any():
@@ -305,8 +371,10 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
              label="CUSUM -S-")
     ax2.axhline(h, color="#8e44ad", linestyle="--", linewidth=0.8)
     ax2.axhline(-h, color="#16a085", linestyle="--", linewidth=0.8)
-    ax2.text(0.002, h, f" h = {h:g}", transform=ax2.get_yaxis_transform(), va="bottom",
-             fontsize=8, color="#8e44ad")
+    ax2.text(0.002, h, f" upper limit h = {h:g}", transform=ax2.get_yaxis_transform(),
+             va="bottom", fontsize=8, color="#8e44ad")
+    ax2.text(0.002, -h, f" lower limit -h = {-h:g}", transform=ax2.get_yaxis_transform(),
+             va="top", fontsize=8, color="#16a085")
     if (sig != 0).any():
         s = sig != 0
         ax2.plot(ld[s], np.where(sig[s] > 0, up[s], -dn[s]), "v", color="#d64541",
@@ -318,7 +386,7 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
                         alpha=0.7)
     ax2.set_ylim(-max(8, h + 2), max(8, h + 2))
     ax2.set_ylabel("z  [standard deviations]")
-    _legend_above(ax2, ncol=5)
+    _legend_above(ax2, ncol=3)
     ax2.text(1.0, 1.02, "one step ahead, before learning; vertical lines: trust alerts",
              transform=ax2.transAxes, ha="right", va="bottom", fontsize=8.5, color="#555")
     ax2.grid(alpha=0.3)
@@ -339,18 +407,24 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
         ax4.plot(_dates(ts), st, color="#7f8c8d", linewidth=1.0,
                  label="lab staleness (newest learned sample)")
         if stale_after:
-            ax4.axhline(stale_after / 3600.0, color="#7f8c8d", linestyle=":", linewidth=1.0)
-            ax4.text(1.0, stale_after / 3600.0, f"stale after {stale_after / 3600:g} h ",
+            # in hours since the lab sample: the right axis, with the staleness it bounds
+            ax4.axhline(stale_after / 3600.0, color="#555", linestyle=":", linewidth=1.2,
+                        label=f"stale after {stale_after / 3600:.3g} h (right axis)")
+            ax4.text(0.995, stale_after / 3600.0, f"stale after {stale_after / 3600:.3g} h \u2192",
                      transform=ax4.get_yaxis_transform(), ha="right", va="bottom", fontsize=8,
                      color="#555")
         if np.isfinite(st).any():
             ax4.set_ylim(0, max(np.nanmax(st), (stale_after or 0) / 3600.0) * 1.15)
-    ax4.set_ylabel("hours since lab sample", color="#555")
-    lines = ax3.get_lines()[:1] + ax4.get_lines()[:1]
+    ax4.set_ylabel("hours since lab sample (right axis)", color="#555")
+    ax4.tick_params(axis="y", colors="#555")
+    lines = ax3.get_lines()[:1] + ax4.get_lines()[:2]
     ax3.legend(lines, [ln.get_label() for ln in lines], loc="lower left",
-               bbox_to_anchor=(0.0, 1.0), ncol=2, fontsize=8.5, frameon=False)
-    ax3.xaxis.set_major_formatter(mdates.ConciseDateFormatter(ax3.xaxis.get_major_locator()))
-    ax3.set_xlabel("time (UTC)")
+               bbox_to_anchor=(0.0, 1.0), ncol=3, fontsize=8.5, frameon=False)
+    # dates with the year on every major tick: a report is read months later
+    locator = mdates.AutoDateLocator(minticks=5, maxticks=12)
+    ax3.xaxis.set_major_locator(locator)
+    ax3.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d"))
+    ax3.set_xlabel(f"time (UTC), {_span_text(track.t, lab['t'])}")
     if note:
         fig.text(0.995, 0.003, note, ha="right", va="bottom", fontsize=8, color="#555")
     fig.tight_layout()

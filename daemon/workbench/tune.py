@@ -935,6 +935,9 @@ _ALERT_KEYS = (
     ("drift_limit", "drift_limit", _num), ("clear_count", "clear_count", _num),
     ("clear_time", "clear_time", _dur), ("auto_flatten", "auto_flatten", _num),
     ("flatten_keep", "flatten_keep", _num),
+    ("region_min_samples", "region_min_samples", _num),
+    ("commissioning_labs", "commissioning_labs", _num),
+    ("commissioning_time", "commissioning_time", _dur),
 )
 
 
@@ -974,8 +977,13 @@ def model_toml(m: ModelConfig, comments=()) -> str:
     if m.gate:
         out.append(f"release = {m.gate_release}")
     out += ["", "[model.lab]", f"keep = {_dur(m.keep)}", f"keep_count = {m.keep_count}",
-            f"tolerance = {_dur(m.tolerance)}", f"stale_after = {_dur(m.stale_after)}"]
+            f"tolerance = {_dur(m.tolerance)}"]
     defaults = {f.name: f.default for f in fields(ModelConfig)}
+    if m.stale_after is not None:
+        out.append(f"stale_after = {_dur(m.stale_after)}")
+    for key, fmt in (("stale_factor", _num), ("stale_min", _dur), ("stale_max", _dur)):
+        if getattr(m, key) != defaults[key]:
+            out.append(f"{key} = {fmt(getattr(m, key))}")
     changed = [(key, fmt(getattr(m, attr))) for key, attr, fmt in _ALERT_KEYS
                if getattr(m, attr) != defaults[attr] and getattr(m, attr) is not None]
     if changed:

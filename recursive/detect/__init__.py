@@ -10,7 +10,9 @@ Everything here is pure computation on numbers handed in by the caller: no clock
   the typical predictive spread (:class:`StdBaseline`).
 - :mod:`~recursive.detect.region`: the region the inputs have covered (:class:`InputRegion`).
 - :mod:`~recursive.detect.param_drift`: drift of the weight posterior (:class:`ParamDrift`).
-- :mod:`~recursive.detect.trust`: the trust level with hysteresis (:class:`Trust`).
+- :mod:`~recursive.detect.trust`: the trust level with hysteresis (:class:`Trust`), the
+  commissioning period of a new model (:class:`Commissioning`) and the observed lab schedule
+  behind staleness (:class:`LabInterval`).
 
 The scalar detectors run once per lab result or prediction and use plain ``math`` float
 arithmetic so that a step costs a few microseconds; :class:`InputRegion` and
@@ -45,17 +47,19 @@ from recursive.detect.sequential import (
     SpreadCusum,
     SpreadCusumStep,
 )
-from recursive.detect.trust import Trust, TrustStep
+from recursive.detect.trust import Commissioning, LabInterval, Trust, TrustStep
 
 __all__ = [
     "SCHEMA",
     "Calibration",
     "CalibrationStep",
+    "Commissioning",
     "Cusum",
     "CusumStep",
     "Ewma",
     "EwmaStep",
     "InputRegion",
+    "LabInterval",
     "PageHinkley",
     "PageHinkleyStep",
     "ParamDrift",

@@ -56,6 +56,11 @@ class InputRegion:
         Flag a point whose Mahalanobis distance exceeds this value, ``> 0``.
     ridge : float, default 1e-8
         Relative ridge added to the covariance before it is inverted, ``>= 0``.
+    min_count : int, optional
+        Updates needed before distances are given (:attr:`ready`); at least and by default
+        ``n_inputs + 1``. A covariance from a handful of points calls almost any new point
+        far away; until the region is ready a caller judges the inputs by their instrument
+        ranges instead.
 
     Notes
     -----
@@ -80,6 +85,7 @@ class InputRegion:
     alike; the trace floor keeps an input that has not varied at all from making
     :math:`C_r` singular. It is nan until ``n_inputs + 1`` updates have been made, and when
     every input has been constant (zero trace) the distance is 0 at the mean and inf elsewhere.
+    With ``min_count`` it stays nan until that many updates.
     """
 
     __slots__ = (
@@ -96,10 +102,14 @@ class InputRegion:
         "_chol",
         "_chol_inv",
         "_row_cache",
+        "_min_count",
     )
 
-    def __init__(self, n_inputs: int, half_life: float, limit: float, ridge: float = 1e-8) -> None:
+    def __init__(self, n_inputs: int, half_life: float, limit: float, ridge: float = 1e-8,
+                 min_count: int | None = None) -> None:
         self._n_inputs = _count("n_inputs", n_inputs, 1)
+        self._min_count = self._n_inputs + 1 if min_count is None else \
+            max(self._n_inputs + 1, _count("min_count", min_count, 1))
         self._half_life = _positive("half_life", half_life)
         self._limit = _positive("limit", limit)
         self._ridge = _nonnegative("ridge", ridge)
@@ -113,6 +123,7 @@ class InputRegion:
             "half_life": self._half_life,
             "limit": self._limit,
             "ridge": self._ridge,
+            "min_count": self._min_count,
         }
 
     def reset(self) -> None:
@@ -131,6 +142,11 @@ class InputRegion:
     def count(self) -> int:
         """Number of updates."""
         return self._count
+
+    @property
+    def ready(self) -> bool:
+        """True once ``min_count`` updates have been made (distances are given)."""
+        return self._count >= self._min_count
 
     @property
     def mean(self) -> np.ndarray:
@@ -176,9 +192,9 @@ class InputRegion:
         return self._chol
 
     def distance(self, x: Any) -> float:
-        """Mahalanobis distance of ``x`` from the weighted mean (nan until n_inputs + 1 updates)."""
+        """Mahalanobis distance of ``x`` from the weighted mean (nan until :attr:`ready`)."""
         v = _vector("x", x, self._n_inputs)
-        if self._count < self._n_inputs + 1:
+        if self._count < self._min_count:
             return math.nan
         chol = self._factor()
         d = v - self._mean
@@ -190,7 +206,7 @@ class InputRegion:
     def distances(self, X: Any, rowwise: bool = False) -> np.ndarray:
         """Mahalanobis distances of the rows of ``X`` (k, n_inputs) in one triangular solve.
 
-        Same values as :meth:`distance` row by row (nan until ``n_inputs + 1`` updates).
+        Same values as :meth:`distance` row by row (nan until :attr:`ready`).
         With ``rowwise`` each distance is computed by elementwise operations only, so its
         bits do not depend on the other rows of ``X`` (a matrix product may round a batch of
         one row differently from a batch of many).
@@ -198,7 +214,7 @@ class InputRegion:
         A = np.asarray(X, dtype=float)
         if A.ndim != 2 or A.shape[1] != self._n_inputs:
             raise ValueError(f"X must have shape (k, {self._n_inputs}), got {np.shape(X)}")
-        if self._count < self._n_inputs + 1:
+        if self._count < self._min_count:
             return np.full(A.shape[0], math.nan)
         chol = self._factor()
         D = A - self._mean

@@ -267,3 +267,205 @@ class Trust:
         obj._last_t = _finite("last_t", _get(state, "last_t"))
         obj._level = max((max(r["held"]) for r in obj._reasons.values()), default=0)
         return obj
+
+
+class Commissioning:
+    """Whether a new model is still being commissioned (its trust alerts do not count yet).
+
+    Parameters
+    ----------
+    labs : int, default 30
+        Commissioning ends once this many lab results have been learned; 0 turns this
+        criterion off.
+    duration : float, default 604800.0
+        It also ends once this much clock time has passed since the first :meth:`step`;
+        0 turns this criterion off. With both criteria off there is no commissioning.
+
+    Notes
+    -----
+    Whichever criterion is met first ends it, and it never starts again (until
+    :meth:`reset`). The clock is an argument: the caller passes the feed's sample time.
+    """
+
+    __slots__ = ("_labs", "_duration", "_start", "_learned", "_active")
+
+    def __init__(self, labs: int = 30, duration: float = 7 * 86400.0) -> None:
+        self._labs = _count("labs", labs, 0)
+        self._duration = _nonnegative("duration", duration)
+        self.reset()
+
+    def params(self) -> dict:
+        """Parameters as a plain dict."""
+        return {"labs": self._labs, "duration": self._duration}
+
+    def reset(self) -> None:
+        """Back to the start: commissioning again (unless both criteria are off)."""
+        self._start: float | None = None
+        self._learned = 0
+        self._active = self._labs > 0 or self._duration > 0.0
+
+    @property
+    def active(self) -> bool:
+        """True while commissioning."""
+        return self._active
+
+    @property
+    def learned(self) -> int:
+        """Lab results learned while commissioning."""
+        return self._learned
+
+    @property
+    def start(self) -> float | None:
+        """Clock value of the first step (None before it)."""
+        return self._start
+
+    def remaining(self, t: float) -> dict:
+        """What is left at clock ``t``: ``{"labs": n or None, "time": s or None}`` (None for
+        a criterion that is off); empty once commissioning has ended."""
+        if not self._active:
+            return {}
+        start = t if self._start is None else self._start
+        return {"labs": max(0, self._labs - self._learned) if self._labs else None,
+                "time": max(0.0, self._duration - (t - start)) if self._duration else None}
+
+    def step(self, t: float, learned: int = 0) -> bool:
+        """Advance to clock ``t`` after ``learned`` more lab results; True if it ended now."""
+        if not self._active:
+            return False
+        t = _finite("t", t)
+        if self._start is None:
+            self._start = t
+        self._learned += _count("learned", learned, 0)
+        if (self._labs and self._learned >= self._labs) or \
+                (self._duration and t - self._start >= self._duration):
+            self._active = False
+            return True
+        return False
+
+    def end(self) -> None:
+        """End commissioning now (an operator's decision)."""
+        self._active = False
+
+    def to_state(self) -> dict:
+        """Plain-data snapshot (parameters and state)."""
+        return {"schema": SCHEMA, "kind": "commissioning", "params": self.params(),
+                "start": self._start, "learned": self._learned, "active": self._active}
+
+    @classmethod
+    def from_state(cls, state: dict) -> "Commissioning":
+        """Rebuild from :meth:`to_state` output."""
+        state = _check_state(state, "commissioning")
+        obj = _construct(cls, state["params"])
+        start = _get(state, "start")
+        obj._start = None if start is None else _finite("start", start)
+        obj._learned = _count("learned", _get(state, "learned"), 0)
+        active = _get(state, "active")
+        if not isinstance(active, bool):
+            raise ValueError(f"active must be a bool, got {active!r}")
+        obj._active = active
+        return obj
+
+
+class LabInterval:
+    """Robust estimate of a lab schedule: the typical interval between samples and delay.
+
+    Parameters
+    ----------
+    window : int, default 25
+        Number of recent intervals (and delays) the medians are taken over, ``>= 3``.
+
+    Notes
+    -----
+    Each :meth:`update` gives a result's drawn time ``t`` and the clock when it arrived.
+    The interval is the median of the last ``window`` positive differences between
+    consecutive drawn times (a result drawn at or before the previous one adds no
+    interval), the delay the median of ``max(0, arrival - t)``. Medians are not moved by a
+    single missing or rejected result, which doubles one interval only. Both are nan until
+    three intervals have been seen.
+
+    :meth:`stale_after` turns them into the age of the last learned result beyond which a
+    model is stale: :math:`\\mathrm{clip}(f\\,\\tilde\\Delta + \\tilde d,\\ lo,\\ hi)`
+    with :math:`\\tilde\\Delta` the median interval and :math:`\\tilde d` the median delay.
+    Just before a result arrives, the age is one interval plus one delay; with
+    :math:`f = 3`, two results in a row may be missing or rejected before it is stale.
+    """
+
+    __slots__ = ("_window", "_last", "_intervals", "_delays")
+
+    MIN_INTERVALS = 3
+
+    def __init__(self, window: int = 25) -> None:
+        self._window = _count("window", window, 3)
+        self.reset()
+
+    def params(self) -> dict:
+        """Parameters as a plain dict."""
+        return {"window": self._window}
+
+    def reset(self) -> None:
+        """Forget everything seen."""
+        self._last: float | None = None
+        self._intervals: list[float] = []
+        self._delays: list[float] = []
+
+    @property
+    def count(self) -> int:
+        """Intervals held (at most ``window``)."""
+        return len(self._intervals)
+
+    @property
+    def interval(self) -> float:
+        """Median interval between drawn times (nan until three intervals)."""
+        if len(self._intervals) < self.MIN_INTERVALS:
+            return float("nan")
+        return float(np.median(self._intervals))
+
+    @property
+    def delay(self) -> float:
+        """Median delay from drawn time to arrival (nan until three intervals)."""
+        if len(self._intervals) < self.MIN_INTERVALS or not self._delays:
+            return float("nan")
+        return float(np.median(self._delays))
+
+    def update(self, t: float, arrival: float) -> None:
+        """One lab result drawn at ``t`` that arrived at clock ``arrival``."""
+        t = _finite("t", t)
+        arrival = _finite("arrival", arrival)
+        if self._last is not None and t > self._last:
+            self._intervals.append(t - self._last)
+            del self._intervals[:-self._window]
+        if self._last is None or t > self._last:
+            self._last = t
+        self._delays.append(max(0.0, arrival - t))
+        del self._delays[:-self._window]
+
+    def stale_after(self, factor: float, lo: float, hi: float, fallback: float) -> float:
+        """``clip(factor * interval + delay, lo, hi)``, or ``fallback`` until three intervals."""
+        if len(self._intervals) < self.MIN_INTERVALS:
+            return float(fallback)
+        return float(min(max(factor * self.interval + self.delay, lo), hi))
+
+    def to_state(self) -> dict:
+        """Plain-data snapshot (parameters and state)."""
+        return {"schema": SCHEMA, "kind": "lab_interval", "params": self.params(),
+                "last": self._last, "intervals": list(self._intervals),
+                "delays": list(self._delays)}
+
+    @classmethod
+    def from_state(cls, state: dict) -> "LabInterval":
+        """Rebuild from :meth:`to_state` output."""
+        state = _check_state(state, "lab_interval")
+        obj = _construct(cls, state["params"])
+        last = _get(state, "last")
+        obj._last = None if last is None else _finite("last", last)
+        try:
+            iv = [float(v) for v in _get(state, "intervals")]
+            dl = [float(v) for v in _get(state, "delays")]
+        except (TypeError, ValueError):
+            raise ValueError(f"malformed lab interval state: {state!r}") from None
+        if not all(v > 0 and np.isfinite(v) for v in iv) or \
+                not all(v >= 0 and np.isfinite(v) for v in dl):
+            raise ValueError(f"lab intervals must be > 0 and delays >= 0: {state!r}")
+        obj._intervals = iv[-obj._window:]
+        obj._delays = dl[-obj._window:]
+        return obj
