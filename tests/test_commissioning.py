@@ -101,9 +101,12 @@ def test_monitor_commissions_then_publishes_one_state_event():
     assert ev == [] and mon.state == COMMISSIONING and "extrapolation" in mon.pred_active
     from recursive import Step
 
-    class Post:
+    class Post:  # what the monitor reads of a posterior (identity square-root factor)
         mean = np.zeros(basis.n_features)
         scale_matrix = np.eye(basis.n_features)
+        sqrt_information = np.eye(basis.n_features)
+        identified = True
+        noise_var = 1.0
 
     def lab(t):
         return Step(t, 150.0, 150.0, 10.0, 10.0, math.inf, 0.0, 0.0, math.nan, True, "ok", 0, 1)
