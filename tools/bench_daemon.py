@@ -20,9 +20,11 @@ The case table (default): 1 model vs the floor, 200 and 10 000 models interleave
 message paced at 5 000 msg/s, packed blocks of 256, memory per model with full feature
 buffers, the loop pause of a checkpoint, restart after WAL records, latency p99.
 ``--scaling`` adds 1 / 100 / 1 000 / 10 000 models (throughput, CPU, memory, start and restart
-times), 3 / 9 / 45 / 561 terms, and WAL fsync group vs always. Both print markdown rows.
+times), 3 / 9 / 45 / 561 terms, and WAL fsync group vs always; ``--detectors`` 1 model with the
+drift detectors on and off. Each prints markdown rows ready to paste into the README.
 
-    OPENBLAS_NUM_THREADS=1 .venv/bin/python tools/bench_daemon.py [--quick] [--scaling]
+    OPENBLAS_NUM_THREADS=1 .venv/bin/python tools/bench_daemon.py [--quick] [--scaling] \
+        [--only-scaling] [--detectors] [--repeats N]
 """
 
 from __future__ import annotations
@@ -112,13 +114,15 @@ def name_of(m: int) -> bytes:
 
 
 # ---------------------------------------------------------------------------- targets
-def model_toml(name, n_inputs, degree=1, keep_count=None):
+def model_toml(name, n_inputs, degree=1, keep_count=None, detectors=None):
     inputs = ", ".join(f'{{ tag = "X{i}", lo = -3, hi = 3 }}' for i in range(n_inputs))
     text = (f'[[model]]\nname = "{name}"\ninputs = [{inputs}]\n'
             f'[model.basis]\nkind = "polynomial"\ndegree = {degree}\n'
             f'[model.prior]\nalpha = 1.0\n[model.noise]\nguess = 0.5\nstrength = 2.0\n')
     if keep_count is not None:
         text += f"[model.lab]\nkeep_count = {keep_count}\n"
+    if detectors is not None:
+        text += f"[model.alerts]\nenabled = {'true' if detectors else 'false'}\n"
     return text
 
 
@@ -132,7 +136,7 @@ class Target:
     """
 
     def __init__(self, kind, n_models=1, n_inputs=8, degree=1, keep_count=None, daemon=None,
-                 state_dir=None, train=40, t0=None):
+                 state_dir=None, train=40, t0=None, detectors=None):
         self.feed = f"tcp://127.0.0.1:{free_port()}"
         self.out = f"tcp://127.0.0.1:{free_port()}"
         self.ctl = f"tcp://127.0.0.1:{free_port()}"
@@ -160,8 +164,8 @@ class Target:
                          f'log_level = "error"\n{extra}'
                          f'state_dir = "{self.state_dir}"\n\n')
                 for m in range(n_models):
-                    fh.write(model_toml(name_of(m).decode(), n_inputs, degree, keep_count)
-                             + "\n")
+                    fh.write(model_toml(name_of(m).decode(), n_inputs, degree, keep_count,
+                                        detectors) + "\n")
             cmd = [sys.executable, "-m", "daemon.cli", "run", "--config", cfg]
         env = dict(os.environ, OPENBLAS_NUM_THREADS="1")
         self.ctx = zmq.Context()
@@ -286,13 +290,17 @@ class Target:
         """Send every message, wait for ``expect`` answers; returns a Run."""
         recv = self.sub.recv_multipart
         send = self.pub.send_multipart
+        while self.sub.poll(0):  # a late answer of an earlier run is not this run's
+            recv()
         got = 0
         c0 = self.cpu()
         t0 = time.perf_counter()
         for m in msgs:
             send(m)
         while got < expect:
-            if not self.sub.poll(10000):
+            # a long silence is allowed: a periodic checkpoint (checkpoint_every, default
+            # 5 min) of thousands of models can hold the loop for many seconds
+            if not self.sub.poll(120000):
                 break
             recv()
             got += 1
@@ -502,6 +510,7 @@ class Bench:
             lost = tr[-1].lost + fr[-1].lost
             if lost:
                 print(f"  warning: {lost} answers lost", flush=True)
+        self.lost = sum(r.lost for r in fr + tr)
         return fr, tr
 
     def throughput_case(self, table, label, target, per_model, bar, cpu_rows=True):
@@ -509,7 +518,8 @@ class Bench:
                                       target.n_inputs)
         expect = per_model * target.n_models
         fr, tr = self.pairs(target, make, expect)
-        table.add(f"{label}: throughput", fmt_rate(med([r.rate for r in tr])),
+        lost = f" ({self.lost:,} answers lost)" if self.lost else ""
+        table.add(f"{label}: throughput", fmt_rate(med([r.rate for r in tr])) + lost,
                   f"floor {fmt_rate(med([r.rate for r in fr]))}",
                   [t.rate / f.rate for f, t in zip(fr, tr, strict=True)], bar)
         if cpu_rows:
@@ -583,7 +593,8 @@ class Bench:
         bound = 8 * 4 * rows
         label = f"memory per model, full buffers (4 inputs, {rows} rows at 1 s)"
         table.add(label, f"{per[0] / 1e6:.2f} MB ({per[0] / rows:.0f} B per row)"
-                  + (f"; refilled again: {per[1] / 1e6:+.2f} MB" if len(per) > 1 else ""),
+                  + (f"; after another 12 h of rows {(per[0] + per[1]) / 1e6:.2f} MB"
+                     if len(per) > 1 else ""),
                   f"8 B x inputs x rows = {bound / 1e6:.2f} MB",
                   [per[0] / bound], "<= 1.10")
 
@@ -698,6 +709,30 @@ class Bench:
         self.restart_case(t)
         return t
 
+    def detectors(self):
+        """1 model with the drift detectors off and on, runs interleaved."""
+        t = Table("posteriord drift detectors, 1 model x 8 inputs")
+        off = Target("daemon", detectors=False)
+        on = Target("daemon", detectors=True)
+        try:
+            runs = {False: [], True: []}
+            for _ in range(self.repeats):
+                for flag, tg in ((False, off), (True, on)):
+                    runs[flag].append(tg.throughput(single_msgs(tg, self.n, self.rng),
+                                                    self.n))
+        finally:
+            for tg in (off, on):
+                tg.close()
+                tg.remove()
+        a, b = runs[True], runs[False]
+        t.add("detectors on vs off: throughput", fmt_rate(med([r.rate for r in a])),
+              f"off {fmt_rate(med([r.rate for r in b]))}",
+              [x.rate / y.rate for x, y in zip(a, b, strict=True)], ">= 0.90")
+        t.add("detectors on vs off: loop-thread CPU per message",
+              f"{med([r.loop_us for r in a]):.1f} us", f"off {med([r.loop_us for r in b]):.1f} us",
+              [x.loop_us / y.loop_us for x, y in zip(a, b, strict=True)])
+        return t
+
     def scaling(self):
         t = Table("posteriord scaling (1 model = 8 inputs, degree 1, 9 terms, unless stated)")
         counts = (1, 50) if self.quick else (1, 100, 1000, 10000)
@@ -722,8 +757,8 @@ class Bench:
             finally:
                 tg.remove()
             rows = min(per_model * self.repeats + train, 5000)  # lab.keep_count
-            mem = (f"RSS {rss / 1e6:.0f} MB after training; {rss_after / 1e6:.0f} MB "
-                   f"holding about {rows:,} rows per model")
+            mem = (f"RSS {rss / 1e6:.0f} MB after training; {rss_after / 1e6:.0f} MB after "
+                   f"the timed runs (about {rows:,} rows per model buffered; heap high water)")
             if rss1 is None:
                 rss1 = rss
             else:
@@ -772,6 +807,8 @@ def main():
                     help="a smoke test: few messages, small cases (figures not meaningful)")
     ap.add_argument("--scaling", action="store_true", help="also the scaling table")
     ap.add_argument("--only-scaling", action="store_true", help="only the scaling table")
+    ap.add_argument("--detectors", action="store_true",
+                    help="also 1 model with the drift detectors on and off")
     ap.add_argument("--repeats", type=int, default=0, help="runs per case (default 3, quick 2)")
     args = ap.parse_args()
     bench = Bench(args)
@@ -783,6 +820,8 @@ def main():
             tables.append(bench.cases())
         if args.scaling or args.only_scaling:
             tables.append(bench.scaling())
+        if args.detectors:
+            tables.append(bench.detectors())
     finally:
         bench.floor.close()
         bench.floor.remove()
