@@ -667,10 +667,12 @@ class Bench:
                     t = Target("daemon", n_models=1, state_dir=state, train=0, t0=t0)
                     killed.append(t.ready_s)
                     t.close(clean=True)
+                    t.remove()
                     t0 = t.clock + 1000.0
                 t = Target("daemon", n_models=1, state_dir=state, train=0, t0=t0)
                 clean.append(t.ready_s)
                 t.close(clean=True)
+                t.remove()
                 t0 = t.clock + 1000.0
         finally:
             shutil.rmtree(keep, ignore_errors=True)
@@ -754,6 +756,7 @@ class Bench:
                 again = Target("daemon", n_models=n_models, state_dir=state, train=0,
                                t0=tg.t_next + 1000.0)
                 again.close(clean=True)
+                again.remove()
             finally:
                 tg.remove()
             rows = min(per_model * self.repeats + train, 5000)  # lab.keep_count
