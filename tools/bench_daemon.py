@@ -195,6 +195,7 @@ class Target:
             self.warm_up(train)
         except BaseException:
             self.close(clean=False)
+            self.remove()
             raise
 
     def _died(self):
