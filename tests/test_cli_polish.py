@@ -275,7 +275,7 @@ def test_watch_against_a_daemon_shows_events_below_and_counts_configured_models(
     assert events[-1].endswith("learning frozen by tester: lab AX-350 recalibration")
     table = text.splitlines()[len(events):]
     assert table[0].startswith("posteriord watch") and "2 models" in table[0]
-    assert max(len(ln) for ln in table) <= 80
+    assert max(len(ln) for ln in table) <= 80, "\n".join(table)
     row = next(ln for ln in table if ln.startswith(MODEL))
     assert "frozen" in row and " ppm" in row
 

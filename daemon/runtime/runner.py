@@ -330,7 +330,7 @@ class ModelRunner:
         if not self.post.identified or self.frozen or last is None:
             status = [self.status_at(ts[0])] * k
         else:
-            sa = self.cfg.stale_after
+            sa = self.stale_after
             status = ["stale" if t - last > sa else "learning" for t in ts]
         self.n_predictions += k
         self.last_mean, self.last_std = mean[-1], std[-1]

@@ -536,7 +536,10 @@ def _stamp(t) -> str:
     return datetime.fromtimestamp(float(t), UTC).strftime("%Y-%m-%d %H:%M")
 
 
-_COLORS = {"normal": "\x1b[32m", "caution": "\x1b[33m", "untrusted": "\x1b[31;1m"}
+_COLORS = {"normal": "\x1b[32m", "caution": "\x1b[33m", "untrusted": "\x1b[31;1m",
+           "commission": "\x1b[36m"}
+# trust states as the table shows them (the column stays within 80 characters)
+_SHORT_TRUST = {"commissioning": "commission"}
 _RESET = "\x1b[0m"
 
 
@@ -605,6 +608,7 @@ def render(state: dict, *, width: int | None = None, color: bool = False,
         else:
             pred, interval, status = "-", "-", "-"
         trust = m["trust"] or "-"
+        trust = _SHORT_TRUST.get(trust, trust)
         trust_cell = f"{trust:<9}"
         if color and trust in _COLORS:
             trust_cell = f"{_COLORS[trust]}{trust:<9}{_RESET}"
