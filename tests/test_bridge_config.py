@@ -219,7 +219,7 @@ def test_the_plant_guide_status_table_is_the_code():
     rows = [line for line in text.splitlines()[:12] if line.startswith("| ")]
     header = [c.strip() for c in rows[0].strip("|").split("|")]
     trusts = [h.removeprefix("trust ") for h in header[1:]]
-    assert trusts == ["normal", "caution", "untrusted"]
+    assert trusts == ["normal", "caution", "untrusted", "commissioning"]
     seen = set()
     for line in rows[2:]:
         cells = [c.strip() for c in line.strip("|").split("|")]
