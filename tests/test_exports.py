@@ -255,6 +255,11 @@ def test_invented_export_through_tune_and_backtest(tmp_path, capsys, name):
     assert train == sum(1 for f in res.track.fits if f["t"] < res.train_end)
     assert "scored" in cap.out
     assert backtest.read_predictions(out).t.size > 0
+    # ... and on to the report, with the target and its unit from the config tune wrote
+    pytest.importorskip("matplotlib", reason="the plot extra (matplotlib) is not installed")
+    picture = tmp_path / "report.png"
+    assert main(["report", str(out), "--config", str(cfg), "--out", str(picture)]) == EXIT_OK
+    assert picture.stat().st_size > 0 and str(picture) in capsys.readouterr().out
 
 
 def test_target_unit_from_the_units_row(tmp_path, capsys):

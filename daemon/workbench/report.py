@@ -396,7 +396,7 @@ def report(track: Track, path, *, unit: str | None = None, title: str | None = N
     ax3.set_ylabel(f"predictive std{u}", color="#c0392b")
     ax3.tick_params(axis="y", colors="#c0392b")
     if np.isfinite(sd).any():
-        top = np.nanpercentile(sd, 99.5)
+        top = np.percentile(sd[np.isfinite(sd)], 99.5)  # an infinite std (few dof) is off scale
         ax3.set_ylim(0, 1.15 * top if top > 0 else 1)
     ax3.grid(alpha=0.3)
     ax4 = ax3.twinx()
