@@ -339,6 +339,8 @@ class Service:
         """Write a checkpoint now; returns its sequence number."""
         if self.store is None:
             raise StoreError("no state folder is open (an in-memory service)")
+        if self.store.checkpoint_running:
+            self._checkpoint_polled(self.store.wait_checkpoint())
         with _gc_paused():
             seq = self.store.checkpoint(self.state_body())
         self.checkpoints += 1
@@ -348,21 +350,49 @@ class Service:
         return seq
 
     def _housekeeping(self) -> None:
-        """Periodic checkpoint, group commit."""
+        """Periodic checkpoint (by time or by log size, written in the background), group
+        commit."""
         store = self.store
         if store is None:
             return
         now = time.monotonic()
-        if self._dirty and now - self._last_checkpoint >= self.config.daemon.checkpoint_every:
-            self.checkpoint()
+        if store.checkpoint_running:
+            self._checkpoint_polled(store.poll_checkpoint())
+        d = self.config.daemon
+        if self._dirty and not store.checkpoint_running and (
+                now - self._last_checkpoint >= d.checkpoint_every
+                or 0 < d.checkpoint_wal_bytes <= store.wal_bytes):
+            # a fork of the loop at this WAL position builds, encodes and writes it
+            with _gc_paused():
+                store.begin_checkpoint(self.state_body)
+            self._dirty = False
+            self._last_checkpoint = now
         else:
             store.maybe_sync(now)
+
+    def _checkpoint_polled(self, seq: int | None) -> None:
+        """Account for a background checkpoint that ended (``seq``: it is durable)."""
+        store = self.store
+        if store.checkpoint_running:
+            return
+        for note in store.notes:
+            log.error("state: %s", note)
+        store.notes.clear()
+        if seq is None:
+            self._dirty = True  # it failed: the next turn tries again
+            return
+        self.checkpoints += 1
+        self.checkpoint_seq = seq
 
     def _poll_ms(self) -> int:
         store = self.store
         if store is None:
             return 1000
-        if store.pending:
+        if store.checkpoint_running:
+            wait = 0.05  # look after the background checkpoint
+            if store.pending:
+                wait = min(wait, self.config.daemon.group_commit)
+        elif store.pending:
             wait = self.config.daemon.group_commit
         elif self._dirty:
             wait = self.config.daemon.checkpoint_every - (time.monotonic()
@@ -929,6 +959,8 @@ class Service:
         store = self.store
         self.store = None
         try:
+            if store.checkpoint_running:
+                store.wait_checkpoint()  # the one below covers it anyway
             if store.failed is None:
                 with _gc_paused():
                     seq = store.checkpoint(self.state_body())
