@@ -44,7 +44,7 @@ from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
 from daemon.runtime.notify import Notifier
-from daemon.runtime.runner import ModelRunner, PredBatch, Rejected
+from daemon.runtime.runner import MAX_REWIND, ModelRunner, PredBatch, Rejected
 from daemon.runtime.security import (
     DOMAIN_CONTROL,
     DOMAIN_PUBLISH,
@@ -196,17 +196,30 @@ class Service:
                             rec.checkpoint_seq)
             with _gc_paused():
                 self.restore(rec, lenient=d.on_corruption == "checkpoint")
+            same = {n: r.cfg for n, r in self.runners.items()} == \
+                {m.name: m for m in self.config.models}
             self.adopt(self.config.models, at_start=True)
             self.store = store
             self.recovery = rec
-            self.checkpoint()
+            if same and rec.checkpoint is not None and rec.dropped_after_seq is None \
+                    and not rec.corrupt_segments:
+                # the config changed nothing: the state is the checkpoint plus the log, as a
+                # crash before this checkpoint is durable would find it again, so it need
+                # not hold up the start
+                self.checkpoint_seq = rec.checkpoint_seq
+                with _gc_paused():
+                    store.begin_checkpoint(self.state_body)
+                written = "being written in the background"
+            else:
+                self.checkpoint()
+                written = "written"
         except BaseException:
             self.store = None
             store.close()
             raise
         log.info("state: %s holds checkpoint %d and %d record(s) after it; replayed %d; "
-                 "checkpoint %d written", store.path, rec.checkpoint_seq, len(rec.records),
-                 self.replayed, self.checkpoint_seq)
+                 "checkpoint %d %s", store.path, rec.checkpoint_seq, len(rec.records),
+                 self.replayed, store.last_seq, written)
 
     def restore(self, rec: Recovery, *, lenient: bool = False) -> None:
         """Rebuild the runners from a recovered checkpoint and replay the records after it.
@@ -221,9 +234,11 @@ class Service:
         else:
             self.load_body(rec.checkpoint, rec.checkpoint_seq)
         self.replayed = 0
-        for record in rec.records:
+        # a lenient replay may skip records, and then keeps every snapshot
+        snaps = None if lenient else _snapshots_needed(rec.records)
+        for i, record in enumerate(rec.records):
             try:
-                self.apply_record(record)
+                self.apply_record(record, True if snaps is None else snaps[i])
             except (StateError, ValueError, KeyError, TypeError) as exc:
                 if not lenient:
                     raise StateError(f"write-ahead log record {record.get('seq')} cannot be "
@@ -261,8 +276,12 @@ class Service:
         self.runners = runners
         self.received, self.rejected_unknown, self.reloads = received, unknown, reloads
 
-    def apply_record(self, record: dict) -> None:
-        """Replay one write-ahead log record (see the module docstring for the kinds)."""
+    def apply_record(self, record: dict, snapshot: bool = True) -> None:
+        """Replay one write-ahead log record (see the module docstring for the kinds).
+
+        ``snapshot=False`` for a lab record whose rewind snapshot no later record can use
+        (see :func:`_snapshots_needed`); the result is the same to the last bit.
+        """
         kind = record.get("k")
         name = record.get("m")
         if kind not in RECORD_KINDS:
@@ -285,7 +304,7 @@ class Service:
             runner.control(record["cmd"])
             return
         try:
-            runner.replay(record)
+            runner.replay(record, snapshot)
         except Rejected as exc:
             raise StateError(f"lab result of {name} at t={record['t']!r} was learned before "
                              f"the restart but not in replay ({exc})") from None
@@ -979,6 +998,43 @@ class Service:
             except DurabilityError as exc:
                 log.critical("state: closing the folder failed: %s", exc)
                 self.exit_code = EXIT_DURABILITY
+
+
+def _snapshots_needed(records: list) -> list[bool]:
+    """For each record of a replay, whether a lab record's rewind snapshot may be used.
+
+    A lab result keeps a snapshot of the learning state from just before it, for a later
+    result drawn before it (:meth:`ModelRunner.learn_row`). In a replay the later records are
+    known: when at least ``MAX_REWIND`` more lab records of the same model follow, all drawn
+    after it, its entry is trimmed before any of them could rewind to it, so the snapshot
+    (a copy of the detectors' state, most of a replayed record's bookkeeping) is work whose
+    result is thrown away. Records of a model that a later ``model`` or ``import`` record
+    replaces need none either. Anything else keeps it.
+    """
+    out = [True] * len(records)
+    later: dict = {}  # model -> [lab records after this one, earliest drawn time among them]
+    replaced: set = set()
+    for i in range(len(records) - 1, -1, -1):
+        r = records[i]
+        kind, name = r.get("k"), r.get("m")
+        if kind in ("model", "import"):
+            replaced.add(name)
+            continue
+        if kind != "lab" or name in replaced:
+            out[i] = kind != "lab"
+            continue
+        t = r.get("t")
+        if not isinstance(t, float) or t != t:
+            continue
+        seen = later.get(name)
+        if seen is None:
+            later[name] = [1, t]
+            continue
+        if seen[0] >= MAX_REWIND and seen[1] > t:
+            out[i] = False
+        seen[0] += 1
+        seen[1] = min(seen[1], t)
+    return out
 
 
 @contextmanager
