@@ -886,7 +886,9 @@ class Service:
         return {"dir": self.store.path, "last_seq": self.store.last_seq,
                 "checkpoint_seq": self.checkpoint_seq, "pending": self.store.pending,
                 "fsync": self.store.fsync_mode, "replayed": self.replayed,
-                "records": self.wal_records, "checkpoints": self.checkpoints}
+                "records": self.wal_records, "checkpoints": self.checkpoints,
+                "checkpoint_running": self.store.checkpoint_running,
+                "wal_bytes": self.store.wal_bytes}
 
     # ------------------------------------------------------------------ reload
     def reload(self):

@@ -28,6 +28,7 @@ from daemon.runtime.store.layout import (
     _seg_name,
 )
 from daemon.runtime.store.records import (
+    checkpoint_seq,
     decode_checkpoint,
     encode_checkpoint,
     encode_record,
@@ -321,7 +322,11 @@ class StateDir:
                 fallback = fallback or not valid
                 continue
             try:
-                cseq, body = decode_checkpoint(data)
+                # the fallback's body is not used: its framing and CRC are checked, not decoded
+                if valid:
+                    cseq, body = checkpoint_seq(data), None
+                else:
+                    cseq, body = decode_checkpoint(data)
                 if cseq != seq:
                     raise StoreError(f"it holds seq {cseq} but its name says {seq}")
             except StoreError as exc:
