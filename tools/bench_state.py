@@ -86,7 +86,7 @@ def worker(args) -> dict:
 
     logging.disable(logging.CRITICAL)
     has_trigger = _has_setting()
-    tmp = tempfile.mkdtemp(prefix="posteriord-bench-state-")
+    tmp = tempfile.mkdtemp(prefix="pd-bench-state-")
     daemon = {"checkpoint_every": "100h"}
     if has_trigger and not args.trigger:
         daemon["checkpoint_wal_bytes"] = 0
@@ -125,6 +125,7 @@ def worker(args) -> dict:
 
     # ------------------------------------------------------------ checkpoint pause
     pauses, floors, during, quiet, done_s, sizes = [], [], [], [], [], []
+    during_med, quiet_med = [], []
     small = [f for *_, f in feature_batch(rng, args.models, t, 1)]
     for _ in range(args.repeats):
         import gc
@@ -142,26 +143,29 @@ def worker(args) -> dict:
         t0 = time.perf_counter()
         svc._housekeeping()
         pauses.append(time.perf_counter() - t0)
-        worst, t_start = 0.0, t0
+        turns, t_start = [], t0
         while getattr(svc.store, "checkpoint_running", False):
             t += 1.0
             small = [f for *_, f in feature_batch(rng, args.models, t, 1)]
             a = time.perf_counter()
             svc.process(small)
             svc._housekeeping()
-            worst = max(worst, time.perf_counter() - a)
+            turns.append(time.perf_counter() - a)
         done_s.append(time.perf_counter() - t_start)
-        during.append(worst)
+        during.append(max(turns, default=0.0))
+        during_med.append(statistics.median(turns) if turns else 0.0)
         # a quiet stretch as long, for the loop's own jitter
-        worst, a0 = 0.0, time.perf_counter()
+        turns, a0 = [], time.perf_counter()
         while time.perf_counter() - a0 < max(done_s[-1], 0.2):
             t += 1.0
             small = [f for *_, f in feature_batch(rng, args.models, t, 1)]
             a = time.perf_counter()
             svc.process(small)
-            worst = max(worst, time.perf_counter() - a)
-        quiet.append(worst)
+            turns.append(time.perf_counter() - a)
+        quiet.append(max(turns))
+        quiet_med.append(statistics.median(turns))
     out.update(pause=pauses, encode_floor=floors, during=during, quiet=quiet,
+               during_med=during_med, quiet_med=quiet_med,
                durable_after=done_s, checkpoint_bytes=sizes)
     svc.close()
 
@@ -218,8 +222,10 @@ def report(label: str, r: dict) -> None:
     print(f"  loop pause to start a checkpoint   {spread(r['pause'], 1e3)} ms")
     print(f"  plain encode of the state (floor)  {spread(r['encode_floor'], 1e3)} ms"
           f"   pause/floor {spread(ratio_p, 1.0, '{:.3f}')}")
-    print(f"  longest loop turn while writing    {spread(r['during'], 1e3)} ms "
-          f"(quiet stretch {spread(r['quiet'], 1e3)} ms), durable after "
+    print(f"  loop turn while writing, longest   {spread(r['during'], 1e3)} ms "
+          f"(quiet stretch {spread(r['quiet'], 1e3)} ms); median "
+          f"{spread(r['during_med'], 1e3, '{:.2f}')} ms (quiet "
+          f"{spread(r['quiet_med'], 1e3, '{:.2f}')} ms); durable after "
           f"{spread(r['durable_after'], 1.0, '{:.2f}')} s")
     print(f"  restart (recover, replay, ckpt)    {spread(r['restart'], 1.0, '{:.3f}')} s")
     print(f"  raw decode of the WAL (floor)      {spread(r['decode_floor'], 1.0, '{:.3f}')} s"
