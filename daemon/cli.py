@@ -80,6 +80,9 @@ def cmd_check(args) -> int:
         print(f"posteriord: config error: {error}", file=sys.stderr)
         return EXIT_CONFIG
     print(describe(config))
+    from daemon.runtime.alignment import buffer_memory
+
+    print("\n" + "\n".join(buffer_memory(config.models)))
     from daemon.runtime.security import preflight
 
     print("\n".join(preflight(config.daemon)))
@@ -89,6 +92,54 @@ def cmd_check(args) -> int:
 # the daemon's control socket sets ZMQ_MAXMSGSIZE to this: libzmq drops the connection of a
 # client whose request is bigger, before the daemon could answer it
 CONTROL_MAX_BYTES = 65536
+DEFAULT_CONTROL = "tcp://127.0.0.1:5557"
+
+
+# the control commands, and those that act on one model
+CTL_COMMANDS = ("ping", "status", "posterior", "sensitivities", "detectors", "acknowledge",
+                "freeze", "resume", "reset", "checkpoint", "reload")
+CTL_MODEL_COMMANDS = ("posterior", "sensitivities", "detectors", "acknowledge", "freeze",
+                      "resume", "reset")
+
+
+def _ctl_request(args) -> tuple[dict | None, str | None]:
+    msg = {"cmd": args.command}
+    if args.model:
+        msg["model"] = args.model
+    if args.command == "posterior":
+        msg["sensitivities"] = True
+    if args.command in ("freeze", "resume"):
+        if args.command == "freeze" and not args.reason:
+            return None, ('freeze needs a reason: add --reason "WHY" (e.g. --reason "analyzer '
+                          'maintenance"); it is kept in the state folder\'s log, shown by '
+                          'status and published on alert/')
+        msg["reason"] = args.reason or ""
+        msg["by"] = args.by if args.by is not None else _user()
+    elif args.reason or args.by:
+        return None, f"--reason and --by go with freeze and resume, not {args.command}"
+    if args.at:
+        if args.command not in ("posterior", "sensitivities"):
+            return None, f"--at goes with posterior and sensitivities, not {args.command}"
+        at = {}
+        for item in args.at:
+            tag, sep, value = item.partition("=")
+            try:
+                at[tag] = float(value)
+            except ValueError:
+                sep = ""
+            if not sep or not tag:
+                return None, f"--at takes TAG=VALUE like TI-104=110, got {item!r}"
+        msg["at"] = at
+    return msg, None
+
+
+def _user() -> str:
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except (OSError, KeyError):
+        return ""
 
 
 def cmd_ctl(args) -> int:
@@ -97,9 +148,18 @@ def cmd_ctl(args) -> int:
     from daemon.runtime import wire
     from daemon.runtime.security import Handshake, SecurityError, apply_client, client_keys
 
-    msg = {"cmd": args.command}
-    if args.model:
-        msg["model"] = args.model
+    config = None
+    if args.config:
+        config, error = _load(args.config)
+        if error:
+            print(f"posteriord ctl: config error: {error}", file=sys.stderr)
+            return EXIT_CONFIG
+    endpoint = args.endpoint or (config.daemon.control if config else DEFAULT_CONTROL)
+    args.endpoint = endpoint
+    msg, error = _ctl_request(args)
+    if error:
+        print(f"posteriord ctl: {error}", file=sys.stderr)
+        return EXIT_USAGE
     request = wire.pack(msg)
     if len(request) > CONTROL_MAX_BYTES:
         print(f"posteriord ctl: the request is {len(request)} bytes packed; the daemon takes "
@@ -164,8 +224,24 @@ def cmd_ctl(args) -> int:
         hs.close()
         sock.close()
         ctx.term()
-    print(json.dumps(reply, indent=2, default=str))
-    return EXIT_OK if isinstance(reply, dict) and reply.get("ok") else EXIT_RUNTIME
+    ok = isinstance(reply, dict) and bool(reply.get("ok"))
+    if args.json:
+        print(json.dumps(reply, indent=2, default=str))
+        return EXIT_OK if ok else EXIT_RUNTIME
+    if not ok:
+        error = reply.get("error") if isinstance(reply, dict) else reply
+        print(f"posteriord ctl: {args.command}: {error}", file=sys.stderr)
+        if isinstance(reply, dict) and reply.get("needs") == "model":
+            models = reply.get("models") or []
+            example = models[0] if models else "NAME"
+            print(f"posteriord ctl: add --model {example}"
+                  + (f" (one of {', '.join(models)})" if len(models) > 1 else ""),
+                  file=sys.stderr)
+        return EXIT_RUNTIME
+    from daemon.runtime.control_text import reply_text
+
+    print(reply_text(args.command, reply, endpoint))
+    return EXIT_OK
 
 
 def cmd_keys_new(args) -> int:
@@ -182,11 +258,51 @@ def cmd_keys_new(args) -> int:
     return EXIT_OK
 
 
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("posteriord")
+    except PackageNotFoundError:
+        return "unknown (not installed; run from a checkout)"
+
+
+START_HERE = """
+Start here: ./tools/demo runs the whole story on a simulated unit; the README's
+"Your own data in five minutes" takes a historian export through tune, backtest,
+report and run. `posteriord COMMAND --help` tells more about each command."""
+
+
 def main(argv=None) -> int:
+    """The ``posteriord`` command. Output cut short by a closed pipe (``| head``) ends
+    quietly, whatever the command."""
+    try:
+        try:
+            code = _main(sys.argv[1:] if argv is None else argv)
+        except SystemExit:
+            sys.stdout.flush()  # --help, --version, usage errors: a closed pipe shows here
+            raise
+        sys.stdout.flush()
+        return code
+    except BrokenPipeError:
+        # the reader went away: say nothing, and keep the interpreter's final flush of
+        # stdout from failing again (Python docs, "Note on SIGPIPE")
+        import os
+
+        with contextlib.suppress(OSError):
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
+
+
+def _main(argv) -> int:
     from daemon.runtime.security import add_client_key_options
 
-    p = argparse.ArgumentParser(prog="posteriord", description="Online Bayesian soft sensors.")
-    sub = p.add_subparsers(dest="what", required=True)
+    p = argparse.ArgumentParser(prog="posteriord", description="Online Bayesian soft sensors.",
+                                epilog=START_HERE,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--version", action="version", version=f"posteriord {_version()}")
+    sub = p.add_subparsers(dest="what", metavar="COMMAND")
     r = sub.add_parser("run", help="run the daemon (the built-in demo config without --config)")
     r.add_argument("--config", help="TOML config file")
     r.add_argument("--log-level", help="override the configured log level")
@@ -201,11 +317,22 @@ def main(argv=None) -> int:
                     "bigger one before sending). Against a CURVE daemon give --curve-key and "
                     "--curve-server-key; this client's public key must be in the daemon's "
                     "curve_admins folder. A refused handshake is reported at once.")
-    k.add_argument("command", help="ping, status, posterior, detectors, acknowledge, freeze, "
-                                   "resume, reset, checkpoint, reload")
+    k.add_argument("command", choices=CTL_COMMANDS, metavar="COMMAND",
+                   help=", ".join(CTL_COMMANDS) + "; " + ", ".join(CTL_MODEL_COMMANDS)
+                        + " need --model")
     k.add_argument("--model", help="model name, for the commands that take one")
-    k.add_argument("--endpoint", default="tcp://127.0.0.1:5557", help="control endpoint")
+    k.add_argument("--config", help="TOML config to take the control endpoint from")
+    k.add_argument("--endpoint", help=f"control endpoint (default: the config's, or "
+                                      f"{DEFAULT_CONTROL})")
     k.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for the reply")
+    k.add_argument("--json", action="store_true",
+                   help="print the daemon's reply as JSON (for scripts) instead of a table")
+    k.add_argument("--reason", help="freeze/resume: why (required for freeze); kept in the "
+                                    "state folder's log, shown by status, published on alert/")
+    k.add_argument("--by", help="freeze/resume: who (default: this user's name)")
+    k.add_argument("--at", action="append", metavar="TAG=VALUE",
+                   help="posterior/sensitivities: the operating point (every input; default "
+                        "the last sample)")
     add_client_key_options(k)
     k.set_defaults(func=cmd_ctl)
     # imported here: these modules import the service, which imports this module's exit codes
@@ -219,12 +346,18 @@ def main(argv=None) -> int:
     add_relay_command(sub)
     add_bridge_commands(sub)
     keys = sub.add_parser("keys", help="CURVE key pairs")
-    ksub = keys.add_subparsers(dest="keys_what", required=True)
+    ksub = keys.add_subparsers(dest="keys_what", metavar="SUBCOMMAND")
     kn = ksub.add_parser("new", help="write NAME.key (public) and NAME.key_secret (0600)")
     kn.add_argument("name", help="key name, e.g. the host or the client")
     kn.add_argument("--dir", default="keys", help="folder for the key files (default keys/)")
     kn.set_defaults(func=cmd_keys_new)
+    if not argv:
+        p.print_help()
+        return EXIT_USAGE
     args = p.parse_args(argv)
+    if getattr(args, "func", None) is None:
+        # a command group without its sub-command (state, keys, bridge): its own help
+        p.parse_args([*argv, "--help"])
     return args.func(args)
 
 

@@ -29,7 +29,7 @@ __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stab
            "stabilized_rows", "term_drift", "update"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
-MAX_N = 256
+MAX_N = 1024
 
 _FLOAT64_FORMATS = ("d", "@d", "=d", "<d" if np.little_endian else ">d")
 

@@ -19,10 +19,42 @@
 #include <math.h>
 #include <string.h>
 
-/* Largest n accepted: bounds the stack workspaces below (2 KiB each). */
-#define MAX_N 256
+/* Largest n accepted (recursive.basis.MAX_TERMS is the same): an R of 8 MiB. */
+#define MAX_N 1024
+/* Up to this n the vector workspaces are on the stack (2 KiB each), above it on the heap. */
+#define SMALL_WORK 256
 /* Up to this n, random_walk keeps its two n x n workspaces on the stack (16 KiB). */
 #define SMALL_N 32
+
+/* ------------------------------------------------------------------ workspaces */
+
+/* A workspace of n doubles: the stack buffer for n <= SMALL_WORK, else the heap. */
+typedef struct {
+    double stack[SMALL_WORK];
+    double *p;
+} Work;
+
+/* Point w->p at n doubles; NULL (with MemoryError set) when the heap has none. */
+static double *
+work_get(Work *w, Py_ssize_t n)
+{
+    if (n <= SMALL_WORK) {
+        w->p = w->stack;
+    }
+    else if ((w->p = PyMem_Malloc((size_t)n * sizeof(double))) == NULL) {
+        PyErr_NoMemory();
+    }
+    return w->p;
+}
+
+static void
+work_free(Work *w)
+{
+    if (w->p != NULL && w->p != w->stack) {
+        PyMem_Free(w->p);
+    }
+    w->p = NULL;
+}
 
 /* ------------------------------------------------------------------ argument checks */
 
@@ -159,7 +191,7 @@ get_matrix(Buffers *bufs, PyObject *obj, const char *name, Py_ssize_t rows, Py_s
     return p;
 }
 
-/* Raise if n is too large for the stack workspaces. */
+/* Raise if n is above MAX_N. */
 static int
 check_n(Py_ssize_t n)
 {
@@ -392,7 +424,16 @@ random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
         }
     }
     /* One Householder reflection per column, from the last; v holds its bottom part. */
-    double v[MAX_N], s[MAX_N];
+    Work wv, ws;
+    wv.p = ws.p = NULL;
+    double *v = work_get(&wv, n), *s = v == NULL ? NULL : work_get(&ws, n);
+    if (s == NULL) {
+        work_free(&wv);
+        if (work != stack) {
+            PyMem_Free(work);
+        }
+        return -1;
+    }
     for (Py_ssize_t k = n - 1; k >= 0; k--) {
         double *Tk = T + k * n;
         double a = Tk[k], scale = 1.0, sigma = 0.0;
@@ -483,6 +524,8 @@ random_walk_impl(double *R, double *z, Py_ssize_t n, double c)
             z[i] = -z[i];
         }
     }
+    work_free(&wv);
+    work_free(&ws);
     if (work != stack) {
         PyMem_Free(work);
     }
@@ -613,7 +656,12 @@ kernel_stabilize(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         release_all(&b);
         return NULL;
     }
-    double sd = sqrt(delta), sc = sqrt(1.0 - delta), w[MAX_N];
+    Work ww;
+    double sd = sqrt(delta), sc = sqrt(1.0 - delta), *w = work_get(&ww, n);
+    if (w == NULL) {
+        release_all(&b);
+        return NULL;
+    }
     if (sd != 1.0) {
         for (Py_ssize_t i = 0; i < n; i++) {
             for (Py_ssize_t j = i; j < n; j++) {
@@ -633,6 +681,7 @@ kernel_stabilize(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         w[i] = d;
         rotate_in(R, z, w, sc * z0[i], n, i);
     }
+    work_free(&ww);
     release_all(&b);
     Py_RETURN_NONE;
 }
@@ -716,13 +765,19 @@ kernel_term_drift(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
             return NULL;
         }
     }
-    double S[MAX_N];
+    Work wS;
+    double *S = work_get(&wS, n);
+    if (S == NULL) {
+        release_all(&b);
+        return NULL;
+    }
     for (Py_ssize_t j = 0; j < n; j++) {
         double c = s * q[j];
         if (c != 0.0) {
             drift_one(R, z, S, n, j, c);
         }
     }
+    work_free(&wS);
     release_all(&b);
     Py_RETURN_NONE;
 }
@@ -809,7 +864,8 @@ static PyObject *
 kernel_predict(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
 {
     Buffers b = {.count = 0};
-    double *R, *z, *phi, u[MAX_N];
+    double *R, *z, *phi, *u;
+    Work wu;
     if (check_nargs("predict", nargs, 3) < 0) {
         return NULL;
     }
@@ -818,7 +874,8 @@ kernel_predict(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     }
     Py_ssize_t n = b.view[0].shape[0];
     if (check_n(n) < 0 || (R = get_array(&b, args[0], "R", 2, n, 0)) == NULL ||
-        (phi = get_array(&b, args[2], "phi", 1, n, 0)) == NULL) {
+        (phi = get_array(&b, args[2], "phi", 1, n, 0)) == NULL ||
+        (u = work_get(&wu, n)) == NULL) {
         release_all(&b);
         return NULL;
     }
@@ -839,6 +896,7 @@ kernel_predict(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
             u[j] -= Ri[j] * ui;
         }
     }
+    work_free(&wu);
     release_all(&b);
     return Py_BuildValue("(dd)", mean, lev);
 }

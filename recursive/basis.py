@@ -37,9 +37,10 @@ SCHEMA_VERSION = 1
 #: One-dimensional polynomial families accepted by :class:`Polynomial`.
 FAMILIES = ("legendre", "chebyshev", "monomial")
 
-# The most terms a model may have: the C kernel works in fixed arrays of this size (its
-# MAX_N), and a soft sensor with more terms than lab results in months is not identifiable.
-MAX_TERMS = 256
+# The most terms a model may have: the C kernel's MAX_N (its R is then 8 MiB, and a lab
+# result costs an eigendecomposition of that size), and a soft sensor with more terms than
+# lab results in months is not identifiable.
+MAX_TERMS = 1024
 
 # Prefix used in term names for a factor of degree >= 2 (None: written as "tag^k").
 _NAME_PREFIX = {"legendre": "P", "chebyshev": "T", "monomial": None}
@@ -223,6 +224,35 @@ class Basis(ABC):
         out = self._evaluate(A)
         return out[0] if single else out
 
+    def jacobian(self, x: Any) -> np.ndarray:
+        """Derivatives of every term with respect to every input at one point.
+
+        Parameters
+        ----------
+        x : array_like, shape (d,)
+            One feature vector in engineering units, in the order of :attr:`inputs`.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_features, d)
+            ``J[k, i] = d phi_k / d x_i`` at ``x``, per engineering unit of input ``i``.
+
+        Notes
+        -----
+        For weights ``w`` the model's sensitivity to input ``i`` at ``x`` is
+        :math:`\\partial y / \\partial x_i = \\sum_k w_k J_{ki}` (``w @ J``), in target
+        units per input unit; for a basis of degree 1 it does not depend on ``x``.
+        """
+        A, single = self._as_rows(x)
+        if not single:
+            raise ValueError(f"jacobian takes one point of shape ({self.n_inputs},), got "
+                             f"shape {np.shape(x)}")
+        return self._jacobian(A[0])
+
+    @abstractmethod
+    def _jacobian(self, x: np.ndarray) -> np.ndarray:
+        """``jacobian`` for a validated float64 point of shape (d,)."""
+
     def out_of_range(self, X: Any) -> np.ndarray:
         """Flag readings outside the declared instrument ranges.
 
@@ -244,6 +274,25 @@ class Basis(ABC):
         A, single = self._as_rows(X)
         flags = (A < self._lo) | (A > self._hi)
         return flags[0] if single else flags
+
+    def row_terms(self, x: list) -> np.ndarray:
+        """``self(np.array([x]))`` for one row given as a list of floats: shape (1, n).
+
+        The affine bases (identity, degree 1) compute it in plain float arithmetic, the
+        same operations as the array path (same bits); the others take the array path.
+        """
+        return self._evaluate(np.array([x], dtype=np.float64))
+
+    def row_out_of_range(self, x: list) -> bool:
+        """``out_of_range(x).any()`` for one row given as a list of floats, without arrays."""
+        lim = self.__dict__.get("_limits")
+        if lim is None:
+            lim = self.__dict__["_limits"] = tuple(zip(self._lo.tolist(), self._hi.tolist(),
+                                                       strict=True))
+        for v, (lo, hi) in zip(x, lim, strict=True):
+            if v < lo or v > hi:
+                return True
+        return False
 
     def rows_out_of_range(self, X: Any) -> int:
         """Number of rows of ``X`` (k, d) with at least one reading :meth:`out_of_range`.
@@ -361,6 +410,12 @@ class Identity(Basis):
         out[:, 0] = 1.0
         out[:, 1:] = X
         return out
+
+    def row_terms(self, x: list) -> np.ndarray:
+        return np.array([[1.0, *x]], dtype=np.float64)
+
+    def _jacobian(self, x: np.ndarray) -> np.ndarray:
+        return self.exponents.astype(np.float64)  # row 0 zeros, then the identity
 
 
 def _graded_exponents(d: int, degree: int, interactions: bool) -> np.ndarray:
@@ -528,6 +583,53 @@ class Polynomial(Basis):
         out = np.ones((X.shape[0], self.n_features), dtype=np.float64)
         for i, cols, powers in self._plan:
             out[:, cols] *= tab[powers, :, i].T
+        return out
+
+    def row_terms(self, x: list) -> np.ndarray:
+        if self.degree != 1:
+            return super().row_terms(x)
+        if not self.scale:
+            return np.array([[1.0, *x]], dtype=np.float64)
+        lim = self.__dict__.get("_row_scale")
+        if lim is None:
+            lim = self.__dict__["_row_scale"] = tuple(zip(
+                self._lo.tolist(), self._hi.tolist(), self._width.tolist(), strict=True))
+        # _evaluate's ((X - lo) - (hi - X)) / width, elementwise
+        return np.array([[1.0, *[((v - lo) - (hi - v)) / w
+                                 for v, (lo, hi, w) in zip(x, lim, strict=True)]]],
+                        dtype=np.float64)
+
+    def _jacobian(self, x: np.ndarray) -> np.ndarray:
+        """Product rule over the factors; 1-D derivatives by their recurrences.
+
+        Legendre :math:`P'_{n+1} = P'_{n-1} + (2n + 1) P_n`, Chebyshev
+        :math:`T'_{n+1} = 2 T_n + 2 u T'_n - T'_{n-1}`, monomial :math:`(u^{n+1})' =
+        (n + 1) u^n`; times :math:`du/dx = 2 / (hi - lo)` when scaled.
+        """
+        if self.scale:
+            u = ((x - self._lo) - (self._hi - x)) / self._width
+            du = 2.0 / self._width
+        else:
+            u, du = x, np.ones_like(x)
+        tab = self._tables(u.reshape(1, -1))[:, 0, :]          # (degree + 1, d)
+        der = np.zeros_like(tab)
+        if self.degree >= 1:
+            der[1] = 1.0
+        for n in range(1, self.degree):
+            if self.family == "legendre":
+                der[n + 1] = der[n - 1] + (2 * n + 1) * tab[n]
+            elif self.family == "chebyshev":
+                der[n + 1] = 2.0 * tab[n] + 2.0 * u * der[n] - der[n - 1]
+            else:
+                der[n + 1] = (n + 1) * tab[n]
+        exps = self.exponents
+        d = self.n_inputs
+        cols = np.arange(d)
+        factors = tab[exps, cols]                                # (p, d): p_{e_i}(u_i)
+        out = np.empty((self.n_features, d), dtype=np.float64)
+        for i in range(d):
+            others = np.prod(np.delete(factors, i, axis=1), axis=1)
+            out[:, i] = der[exps[:, i], i] * others * du[i]
         return out
 
     def _spec(self) -> dict[str, Any]:

@@ -14,6 +14,7 @@ from recursive import _linalg
 from recursive._linalg import full_rank, solve_upper
 from recursive.forgetting import Forgetting, Prior, Stabilized, forgetting_from_dict
 from recursive.quantile import t_quantile
+from recursive.quantile import t_quantile_scalar as _quantile
 
 _dtrtri = lapack.dtrtri
 
@@ -383,6 +384,17 @@ class Posterior:
         return ri @ ri.T
 
     @property
+    def sqrt_information(self) -> np.ndarray:
+        """The upper-triangular ``R`` with ``R^T R = V^{-1}`` (read-only view).
+
+        ``scale_matrix = noise_var * (R^T R)^{-1}``. The posterior replaces this array on
+        each change of its state and never writes into it, so a caller may keep it.
+        """
+        v = self._R.view()
+        v.flags.writeable = False
+        return v
+
+    @property
     def scale_matrix(self) -> np.ndarray:
         """``noise_var * V``: the covariance (known noise) or the Student-t scale matrix."""
         return self.noise_var * self.unit_cov
@@ -474,6 +486,84 @@ class Posterior:
                 lev = np.einsum("ij,ij->j", u, u)
         out = self._distribution(mean, lev, nu, ss)
         return _squeeze(out) if single else out
+
+    def predict_rows(self, P: np.ndarray, ts: list, level: float):
+        """:meth:`predict` and :meth:`Prediction.interval` of a few rows, as plain floats.
+
+        ``P`` is the (k, n) float64 regressor array and ``ts`` the k times (a list of
+        floats). Returns ``(mean, std, var, lo, hi, dof, leverage)``, lists of k floats with
+        the same bits as ``predict(P, t=ts)`` and its ``interval(level)``: the same
+        operations in the same order, on Python floats instead of arrays (IEEE double
+        either way; ``math.sqrt`` and ``numpy.sqrt`` both round correctly). Returns None
+        where that path is not taken (the caller then uses :meth:`predict`): a posterior
+        that is not :attr:`rowwise` or not identified, or one that counts samples.
+
+        A single-sample message then costs one kernel call and a few float operations,
+        not a dozen array operations of one element each.
+        """
+        if not self._ident or self._clock == "samples" or not self.rowwise:
+            return None
+        k = len(ts)
+        t_last = self._t_last
+        dts = []
+        for t in ts:
+            if not math.isfinite(t):
+                return None  # predict raises the error
+            # predict: t - t_last clipped at 0, or all zeros when nothing has elapsed
+            dts.append(0.0 if t_last is None or not t > t_last else t - t_last)
+        f = self._forgetting
+        prior = self._prior
+        P = np.ascontiguousarray(P, dtype=float)
+        if type(f) is Stabilized:
+            # Stabilized.widen inlined: the kernel, then its elementwise tail on floats
+            m, kappa, c0, dc = f._pencil(self._R, self._z, prior, self._cache)
+            out = np.empty((3, k))
+            _linalg.stabilized_rows(out, m, kappa, c0, dc, P, np.array(dts), f.half_life)
+            mean, lev, d = out.tolist()
+            nu0, ss0, nu_s, ss_s = prior.nu0, prior.ss0, self._nu, self._ss
+            nus = [dj * nu_s + (1.0 - dj) * nu0 for dj in d]
+            sss = [dj * ss_s + (1.0 - dj) * ss0 for dj in d]
+        else:
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                mn, lv, nu, ss = f.widen(self._R, self._z, self._nu, self._ss, prior, P.T,
+                                         None, None, np.array(dts), self._cache)
+            mean, lev = mn.tolist(), lv.tolist()
+            nus = np.broadcast_to(np.asarray(nu, float), (k,)).tolist()
+            sss = np.broadcast_to(np.asarray(ss, float), (k,)).tolist()
+        p = 0.5 + _check_level(level) / 2.0
+        inf, nan = math.inf, math.nan
+        o_mean, o_std, o_var, o_lo, o_hi, o_dof = [], [], [], [], [], []
+        known = self._noise_std is not None
+        p_flat = self._p_flat
+        for j in range(k):
+            mu, lj = mean[j], lev[j]
+            if known:
+                scale = _sqrt(prior.ref_var * (1.0 + lj))
+                var = scale * scale
+                dof = inf
+                if not lj < inf:  # infinite or nan leverage: not identified
+                    mu = scale = var = dof = nan
+                std = scale
+            else:
+                dof = nus[j] - p_flat
+                ssj = sss[j]
+                if dof > 2.0 and lj < inf:
+                    scale = _sqrt(ssj / dof * (1.0 + lj))
+                    var = scale * scale * dof / (dof - 2.0)
+                elif dof > 0 and math.isfinite(lj):
+                    scale = _sqrt(ssj / dof * (1.0 + lj))
+                    var = scale * scale * dof / (dof - 2.0) if dof > 2 else inf
+                else:
+                    mu = scale = var = dof = nan
+                std = _sqrt(var)
+            half = _quantile(dof, p) * scale
+            o_mean.append(mu)
+            o_std.append(std)
+            o_var.append(var)
+            o_lo.append(mu - half)
+            o_hi.append(mu + half)
+            o_dof.append(dof)
+        return o_mean, o_std, o_var, o_lo, o_hi, o_dof, lev
 
     @property
     def rowwise(self) -> bool:
@@ -749,6 +839,11 @@ class Posterior:
             raise ValueError(f"bad posterior state: {exc!r}") from None
         p._refresh()
         return p
+
+
+def _sqrt(x: float) -> float:
+    # numpy.sqrt on a float: nan below 0 instead of an error
+    return math.sqrt(x) if x >= 0.0 else (x if x != x else math.nan)
 
 
 def _squeeze(p: Prediction) -> Prediction:

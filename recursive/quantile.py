@@ -12,7 +12,7 @@ import math
 import numpy as np
 from scipy import special
 
-__all__ = ["t_quantile"]
+__all__ = ["t_quantile", "t_quantile_scalar"]
 
 # Grid in x = 1/dof for dof >= 2 (x <= 1/2). Above X0 the cells are H wide; below it (dof
 # above 1/X0, about 833) they are log-uniform with ratio exp(LOG_STEP). With these widths the
@@ -103,6 +103,23 @@ def t_quantile(dof, p: float) -> np.ndarray:
     return out.reshape(shape)
 
 
+# the last (dof, p, quantile) asked of t_quantile_scalar: between two lab results a
+# model's dof stays put (known noise, or no forgetting of the noise statistics), and the
+# quantile is a pure function of (dof, p), so reusing it changes no bit
+_last = (math.nan, math.nan, math.nan)
+
+
+def t_quantile_scalar(d: float, p: float) -> float:
+    """:func:`t_quantile` of one float ``dof`` (same bits), for a single prediction."""
+    global _last
+    ld, lp, lq = _last
+    if d == ld and p == lp:
+        return lq
+    q = _scalar(d, p)
+    _last = (d, p, q)
+    return q
+
+
 def _scalar(d: float, p: float) -> float:
     if 2.0 <= d < math.inf:
         x = 1.0 / d
@@ -125,7 +142,13 @@ def _interpolate(d: np.ndarray, p: float) -> np.ndarray:
         a, b, q0, q1, q2 = _entry(p, lo)
         s = (x - a) * (2.0 / (b - a)) - 1.0
         return q1 + s * ((q2 - q0) / 2.0) + (s * s) * ((q2 - 2.0 * q1 + q0) / 2.0)
-    cells = np.fromiter((_cell(v) for v in x.tolist()), dtype=np.int64, count=x.size)
+    uniform = x >= _X0
+    if uniform.all():
+        # _cell of every row at once: the same subtraction, division and floor, elementwise
+        cells = np.floor((x - _X0) / _H).astype(np.int64)
+    else:
+        # the logarithmic cells take math.log row by row (numpy's log may round otherwise)
+        cells = np.fromiter((_cell(v) for v in x.tolist()), dtype=np.int64, count=x.size)
     uniq, inv = np.unique(cells, return_inverse=True)
     e = np.array([_entry(p, c) for c in uniq.tolist()])
     a, b = e[inv, 0], e[inv, 1]

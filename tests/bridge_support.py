@@ -7,6 +7,7 @@ import asyncio
 import datetime as dt
 import threading
 from dataclasses import replace
+from pathlib import Path
 
 import zmq
 from conftest import PROBE_MODEL, FeedPublisher, ServiceHarness, ipc, toml_config
@@ -51,8 +52,30 @@ def stamp(t: float) -> dt.datetime:
     return dt.datetime.fromtimestamp(t, dt.UTC)
 
 
+class PlantUsers:
+    """An asyncua user manager of the plant's server: these names and passwords only."""
+
+    def __init__(self, users: dict[str, str]):
+        self.users = users
+        self.refused: list[str] = []
+
+    def get_user(self, iserver, username=None, password=None, certificate=None):
+        from asyncua.crypto.permission_rules import User, UserRole
+
+        if username is not None and self.users.get(username) == password:
+            return User(role=UserRole.User, name=username)
+        self.refused.append(username)
+        return None
+
+
 class Plant:
-    """An asyncua server with one variable per tag name (ns=2;s=<tag>)."""
+    """An asyncua server with one variable per tag name (ns=2;s=<tag>).
+
+    ``security``: ``certificate`` and ``private_key`` of the server (Basic256Sha256 with sign
+    and encrypt, the only endpoint then); optionally ``trusted`` (a folder: asyncua's own
+    trust store and validator admit only the client certificates in it) and ``users``
+    (name -> password; anonymous sessions are then refused).
+    """
 
     def __init__(self, port: int, tags, *, security=None):
         self.port = port
@@ -68,15 +91,28 @@ class Plant:
         if self.server is not None:  # stopped before: the same address space comes back
             await self.server.start()
             return
-        s = Server()
+        sec = self.security
+        self.users = PlantUsers(sec["users"]) if "users" in sec else None
+        s = Server(user_manager=self.users)
         await s.init()
         s.set_endpoint(self.url)
         s.set_server_name("test plant")
-        sec = self.security
         if sec:
             await s.load_certificate(sec["certificate"])
             await s.load_private_key(sec["private_key"])
             s.set_security_policy([ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt])
+        if "trusted" in sec:
+            from asyncua.crypto.truststore import TrustStore
+            from asyncua.crypto.validator import CertificateValidator, CertificateValidatorOptions
+
+            store = TrustStore([Path(sec["trusted"])], [])
+            await store.load()
+            self.validator = CertificateValidator(
+                CertificateValidatorOptions.TRUSTED_VALIDATION
+                | CertificateValidatorOptions.PEER_CLIENT, store)
+            s.set_certificate_validator(self._validate)
+        if self.users is not None:
+            s.set_identity_tokens([ua.UserNameIdentityToken])
         idx = await s.register_namespace("urn:test:plant")
         obj = await s.nodes.objects.add_object(idx, "unit")
         for tag in self.tags:
@@ -93,6 +129,15 @@ class Plant:
             value = dt.datetime(1601, 1, 1) if tag.endswith("drawn") else 0.0
             await self.write(tag, value, T0 - 1000, 0x80320000)
         await s.start()
+
+    async def _validate(self, cert, app_description) -> None:
+        try:
+            await self.validator(cert, app_description)
+        except Exception:
+            self.refused_certificates += 1
+            raise
+
+    refused_certificates = 0
 
     async def write(self, tag: str, value, t: float, status: int = 0) -> None:
         from asyncua import ua
@@ -136,3 +181,32 @@ async def make_cert(folder, name: str, uri: str, *, server: bool = False):
     await setup_self_signed_certificate(key, cert, uri, "localhost", [use],
                                         {"commonName": name})
     return cert, key
+
+
+class PlantThread:
+    """A :class:`Plant` on an event loop of its own thread, for tests whose bridges and
+    daemon are subprocesses: :meth:`write` blocks until the server has the value."""
+
+    def __init__(self, port: int, tags, **kw):
+        self.plant = Plant(port, tags, **kw)
+        self.url = self.plant.url
+        self.loop = asyncio.new_event_loop()
+        self.thread = threading.Thread(target=self.loop.run_forever, name="plant", daemon=True)
+        self.thread.start()
+
+    def _call(self, coro, timeout: float = 30.0):
+        return asyncio.run_coroutine_threadsafe(coro, self.loop).result(timeout)
+
+    def start(self) -> None:
+        self._call(self.plant.start())
+
+    def write(self, tag: str, value, t: float, status: int = 0) -> None:
+        self._call(self.plant.write(tag, value, t, status))
+
+    def close(self) -> None:
+        try:
+            self._call(self.plant.stop())
+        finally:
+            self.loop.call_soon_threadsafe(self.loop.stop)
+            self.thread.join(10)
+            self.loop.close()

@@ -77,6 +77,22 @@ CASES = [
     ('[opcua_out]\nendpoint = "opc.tcp://0.0.0.0:4840"\n', "opcua_out",
      "opcua_out.security_policy", '"Basic256Sha256" (the endpoint can be reached from other '
      'machines)', '"none"'),
+    ('[opcua_out]\n[[opcua_out.write]]\nmodel = "two"\nvariable = "Mean"\nnode = "ns=2;s=X"\n',
+     "opcua_out", "opcua_out.write_server",
+     "the address of the server that [[opcua_out.write]] writes to",
+     "nothing (the key is missing)"),
+    ('[opcua_out]\nwrite_server = "opc.tcp://dcs:4840"\nwrite_anonymous = true\n', "opcua_out",
+     "opcua_out.write", "at least one [[opcua_out.write]] (with write_server)", "nothing"),
+    ('[opcua_out]\nwrite_server = "opc.tcp://dcs:4840"\n[[opcua_out.write]]\nmodel = "two"\n'
+     'variable = "Mean"\nnode = "ns=2;s=X"\n', "opcua_out", "opcua_out.write_user",
+     "a user name, or write_anonymous = true", "nothing (the key is missing)"),
+    ('[opcua_out]\nwrite_server = "opc.tcp://dcs:4840"\nwrite_anonymous = true\n'
+     'write_security_policy = "Basic256Sha256"\n[[opcua_out.write]]\nmodel = "two"\n'
+     'variable = "Mean"\nnode = "ns=2;s=X"\n', "opcua_out", "opcua_out.write_certificate",
+     'a file (required with write_security_policy = "Basic256Sha256")',
+     "nothing (the key is missing)"),
+    ('[opcua_out]\n[[opcua_out.write]]\nmodel = "two"\nvariable = "Median"\nnode = "ns=2;s=X"\n',
+     "opcua_out", "opcua_out.write[0].variable", None, '"Median"'),
     ("[mqtt]\nqos = 3\n", "mqtt", "mqtt.qos", "an integer 0, 1 or 2", "3"),
     ('[mqtt]\nreconnect_ivl = "5s"\nreconnect_ivl_max = "1s"\n', "mqtt",
      "mqtt.reconnect_ivl_max", "a duration >= reconnect_ivl", '"1s"'),
@@ -105,7 +121,9 @@ VALID = {
                  "node": [{"model": "two", "tag": "A", "node": "ns=2;s=A"},
                           {"model": "two", "tag": "B", "node": "ns=2;s=B"}],
                  "lab": [{"model": "two", "value": "ns=2;s=Q", "drawn": "ns=2;s=D"}]},
-    "opcua_out": {"model": [{"name": "two", "unit": "%wt"}]},
+    "opcua_out": {"model": [{"name": "two", "unit": "%wt"}],
+                  "write_server": "opc.tcp://dcs:4840", "write_anonymous": True,
+                  "write": [{"model": "two", "variable": "Mean", "node": "ns=2;s=QI.Mean"}]},
     "mqtt": {},
     "lab_folder": {"folder": "lab"},
 }
@@ -132,3 +150,84 @@ def test_docs_bridges_md_is_generated():
         "docs/bridges.md is out of date; regenerate it with: python -c \"from "
         "daemon.config.bridges import bridges_markdown; open('docs/bridges.md', 'w')"
         ".write(bridges_markdown())\"")
+
+
+def test_docs_bridge_metrics_md_is_generated_and_complete():
+    from prometheus_client import generate_latest
+
+    from daemon.bridges.common import BRIDGE_METRICS, REASONS, Metrics, metrics_markdown
+
+    committed = (ROOT / "docs" / "bridge-metrics.md").read_text(encoding="utf-8")
+    assert committed == metrics_markdown(), (
+        "docs/bridge-metrics.md is out of date; regenerate it with: python -c \"from "
+        "daemon.bridges.common import metrics_markdown; open('docs/bridge-metrics.md', 'w')"
+        ".write(metrics_markdown())\"")
+    # what a bridge serves is what the table (and so the page) lists, every series of a
+    # configured model at zero from the start
+    m = Metrics("opcua-in", ["two"])
+    m.subscribed.labels("opcua-in", "two").set(0)
+    text = generate_latest(m.registry).decode()
+    served = {line.split()[2] for line in text.splitlines() if line.startswith("# TYPE")
+              and not line.split()[2].endswith("_created")}
+    assert served == {name for _, _, name, _, _ in BRIDGE_METRICS}
+    for reason in REASONS:
+        assert m.value("posteriord_bridge_dropped_total", model="two", reason=reason) == 0
+        assert f'reason="{reason}"' in text
+
+
+PLANT_DOC = ROOT / "docs" / "connecting-a-plant.md"
+
+
+def _after(marker: str, text: str) -> str:
+    assert marker in text, f"{marker!r} is not in docs/connecting-a-plant.md"
+    return text[text.index(marker) + len(marker):]
+
+
+def test_the_plant_guide_example_config_loads():
+    import re
+
+    text = _after("<!-- the example config:", PLANT_DOC.read_text(encoding="utf-8"))
+    example = re.search(r"```toml\n(.*?)```", text, re.S).group(1)
+    config = loads(example, "connecting-a-plant.md")
+    names = [m.name for m in config.models]
+    for section in ("opcua_in", "opcua_out", "mqtt", "lab_folder"):
+        cfg = loads_bridge(example, section, "connecting-a-plant.md")
+        feed = cfg.values.get("feed")
+        if feed is not None:  # every bridge's feed is one the daemon connects to
+            assert feed in config.daemon.feeds, (section, feed)
+        sub = cfg.values.get("subscribe")
+        if sub is not None:
+            assert sub == config.daemon.publish, section
+    opcua_in = loads_bridge(example, "opcua_in")
+    assert {n["model"] for n in opcua_in.items["node"]} == set(names)
+    assert loads_bridge(example, "opcua_out").items["write"]
+
+
+def test_the_plant_guide_names_every_unit():
+    text = PLANT_DOC.read_text(encoding="utf-8")
+    for unit in sorted((ROOT / "tools" / "systemd").glob("*.service")):
+        assert unit.name in text, unit.name
+
+
+def test_the_plant_guide_status_table_is_the_code():
+    pytest.importorskip("asyncua", reason="the opcua extra (asyncua) is not installed")
+    import re
+
+    from daemon.bridges.opcua_out import quality
+
+    text = _after("<!-- the status-code table:", PLANT_DOC.read_text(encoding="utf-8"))
+    rows = [line for line in text.splitlines()[:12] if line.startswith("| ")]
+    header = [c.strip() for c in rows[0].strip("|").split("|")]
+    trusts = [h.removeprefix("trust ") for h in header[1:]]
+    assert trusts == ["normal", "caution", "untrusted"]
+    seen = set()
+    for line in rows[2:]:
+        cells = [c.strip() for c in line.strip("|").split("|")]
+        status = cells[0]
+        for trust, cell in zip(trusts, cells[1:], strict=True):
+            code = int(re.search(r"\((0x[0-9A-F]{8})\)", cell).group(1), 16)
+            assert quality(status, trust) == code, (status, trust, cell)
+            seen.add(status)
+        # a model without alerts has no trust state: the normal column
+        assert quality(status, None) == quality(status, "normal")
+    assert seen == {"learning", "stale", "frozen", "unidentified"}

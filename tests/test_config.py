@@ -125,6 +125,8 @@ DAEMON_DEFAULTS = {
     "curve_feed_server_key": "",
 }
 MODEL_DEFAULTS = {
+    "target": None,
+    "unit": None,
     "basis_kind": "polynomial",
     "degree": 1,
     "interactions": True,

@@ -606,6 +606,89 @@ def test_param_drift_window_and_non_pd():
     assert r.mahalanobis == pytest.approx(1.0) and math.isnan(r.kl)
 
 
+def _old_param_drift(m, s, m_ref, s_ref):
+    """The formulas ParamDrift used before it read the square-root factor: Cholesky factors
+    of both covariances and triangular solves (scipy.linalg), computed here directly."""
+    import scipy.linalg as sl
+
+    lr, lc = np.linalg.cholesky(s_ref), np.linalg.cholesky(s)
+    y = sl.solve_triangular(lr, m - m_ref, lower=True)
+    a = sl.solve_triangular(lr, lc, lower=True)
+    maha2 = float(y @ y)
+    kl = 0.5 * (float(np.sum(a * a)) + maha2 - m.size
+                + 2.0 * float(np.sum(np.log(np.diag(lr)) - np.log(np.diag(lc)))))
+    return math.sqrt(maha2), max(kl, 0.0)
+
+
+@pytest.mark.parametrize("noise", ["learned", "known"])
+def test_param_drift_from_the_square_root_factor_equals_the_covariance_formulas(noise):
+    from recursive import Posterior, Stabilized
+
+    rng = np.random.default_rng(77)
+    n = 5
+    post = Posterior(n, alpha=0.5, forgetting=Stabilized(50.0),
+                     noise_std=0.3 if noise == "known" else None, noise_prior=(0.5, 2.0))
+    w = rng.standard_normal(n)
+    pd_sqrt, pd_cov = ParamDrift(window=30.0), ParamDrift(window=30.0)
+    ref = None
+    for i in range(120):
+        phi = np.r_[1.0, rng.standard_normal(n - 1)]
+        # the weights move half way through: the distances grow
+        post.update(phi, float(phi @ (w + (i > 60)) + 0.3 * rng.standard_normal()), float(i))
+        m, s = post.mean, post.scale_matrix
+        a = pd_sqrt.step_sqrt(float(i), m, post.sqrt_information, post.noise_var)
+        b = pd_cov.step(float(i), m, s)
+        if ref is None:
+            assert (a.mahalanobis, a.kl, a.replaced) == (0.0, 0.0, True)
+        else:
+            d_old, kl_old = _old_param_drift(m, s, *ref)
+            assert a.mahalanobis == pytest.approx(d_old, rel=1e-12, abs=1e-300)
+            assert a.kl == pytest.approx(kl_old, rel=1e-12, abs=1e-15)
+            assert b.mahalanobis == pytest.approx(d_old, rel=1e-12, abs=1e-300)
+            assert b.kl == pytest.approx(kl_old, rel=1e-12, abs=1e-15)
+        assert (a.replaced, a.reference_time) == (b.replaced, b.reference_time)
+        if a.replaced:
+            ref = (m, s)
+    assert a.mahalanobis > 1.0  # the check above covered a real drift
+
+
+def test_param_drift_state_round_trip_keeps_the_bits_and_reads_old_states():
+    from recursive import Posterior
+
+    rng = np.random.default_rng(78)
+    post = Posterior(3, alpha=1.0)
+    pd = ParamDrift(window=100.0)
+    for i in range(10):
+        phi = rng.standard_normal(3)
+        post.update(phi, float(phi.sum()), float(i))
+        pd.step_sqrt(float(i), post.mean, post.sqrt_information, post.noise_var)
+    state = json.loads(json.dumps(pd.to_state()))
+    back = ParamDrift.from_state(state)
+    phi = rng.standard_normal(3)
+    post.update(phi, 3.0, 20.0)
+    a = pd.step_sqrt(20.0, post.mean, post.sqrt_information, post.noise_var)
+    b = back.step_sqrt(20.0, post.mean, post.sqrt_information, post.noise_var)
+    assert (a.mahalanobis, a.kl) == (b.mahalanobis, b.kl)
+    # a state written with the reference's covariance (before the factor was kept)
+    old = ParamDrift(window=100.0)
+    old.step(0.0, [0.0, 0.0], [[4.0, 0.0], [0.0, 1.0]])
+    st_old = old.to_state()
+    for k in ("reference_factor", "reference_lower"):
+        del st_old[k]
+    st_old["reference_cov"] = [[4.0, 0.0], [0.0, 1.0]]
+    r = ParamDrift.from_state(st_old).step(1.0, [2.0, 1.0], np.eye(2))
+    # d^2 = 2^2 / 4 + 1^2 / 1 (hand computed)
+    assert r.mahalanobis == pytest.approx(math.sqrt(2.0), rel=1e-15)
+
+
+def test_param_drift_kl_is_computed_only_when_read():
+    pd = ParamDrift(window=10.0)
+    pd.step(0.0, [0.0, 0.0], np.eye(2))
+    r = pd.step(1.0, [1.0, 0.0], [[1.0, 0.0], [0.0, 0.0]])  # singular: the KL would be nan
+    assert r._kl is None  # nothing computed yet
+    assert math.isnan(r.kl) and r._args is None
+
+
 # ----------------------------------------------------------------------------------------------
 # trust state machine
 # ----------------------------------------------------------------------------------------------

@@ -227,19 +227,20 @@ def _inputs(n: int) -> list[dict]:
 
 
 def test_a_model_over_the_kernel_limit_is_refused_at_config_time():
-    # 32 inputs at degree 2 with interactions: 1 + 32 + 32 * 33 / 2 = 561 terms
-    model = {"name": "big", "inputs": _inputs(32), "basis": {"degree": 2}}
+    # 44 inputs at degree 2 with interactions: 1 + 44 + 44 * 45 / 2 = 1035 terms
+    model = {"name": "big", "inputs": _inputs(44), "basis": {"degree": 2}}
     with pytest.raises(ConfigError) as info:
         loads(toml_config({}, [model]), "plant.toml")
     e = info.value
-    assert e.key == "model[0].basis.degree" and "561 terms" in e.got
-    assert "at most 256" in e.expected
-    # 21 inputs: 1 + 21 + 231 = 253 terms, within the limit, and it runs
-    ok = {"name": "ok", "inputs": _inputs(21), "basis": {"degree": 2},
+    assert e.key == "model[0].basis.degree" and "1035 terms" in e.got
+    assert "at most 1024" in e.expected
+    # 32 inputs: 1 + 32 + 528 = 561 terms (above the kernel's former stack workspaces of
+    # 256), within the limit, and it runs
+    ok = {"name": "ok", "inputs": _inputs(32), "basis": {"degree": 2},
           "prior": {"alpha": 1.0}, "noise": {"std": 0.1}}
     svc = service(ok)
     t0 = plant.DEFAULT_START
-    x = [0.5] * 21
+    x = [0.5] * 32
     svc.process([frames({"t": t0, "x": x}, "ok"), frames({"t": t0, "y": 1.0}, "ok"),
                  frames({"t": t0 + 60.0, "x": x}, "ok")])
     assert svc.pub.bodies("fit/")[0]["accepted"]
@@ -249,7 +250,7 @@ def test_a_model_over_the_kernel_limit_is_refused_at_config_time():
 def test_a_reload_to_a_model_too_large_keeps_the_running_config(start_service, tmp_path):
     h = start_service([c301_model()])
     path = tmp_path / "plant.toml"
-    big = {"name": MODEL, "inputs": _inputs(32), "basis": {"degree": 2}}
+    big = {"name": MODEL, "inputs": _inputs(44), "basis": {"degree": 2}}
     path.write_text(toml_config({}, [big]))
     h.svc.config_path = str(path)  # as if started from that file
     h.svc.post_event("reload")

@@ -460,7 +460,7 @@ def _bad_cases():
         ("R", fortran, ValueError, "contiguous"),
         ("z", np.ones(3, dtype=np.int64), TypeError, "float64"),
         ("z", np.ones((3, 1)), ValueError, "dimension"),
-        ("z", np.ones(300), ValueError, "256"),
+        ("z", np.ones(1100), ValueError, "1024"),
         ("phi", np.ones(4), ValueError, "shape"),
         ("phi", np.ones(6)[::2], ValueError, "contiguous"),
         ("r0", np.ones(2), ValueError, "shape"),
@@ -673,3 +673,57 @@ def test_stabilized_rows_refuses_shared_or_read_only_output(K):
     ro.flags.writeable = False
     with pytest.raises(ValueError, match="writable"):
         K.stabilized_rows(ro, np.eye(3), np.ones(3), np.ones(3), np.ones(3), P, np.ones(4), 1.0)
+
+
+# ------------------------------------------------------------------ sizes above the stack
+def test_heap_workspaces_above_the_stack_size_give_the_numpy_results():
+    """n = 600 > 256, the size up to which the kernel's vector workspaces are on the stack
+    (a 561-term model, degree 2 on 32 inputs, is the case that needed it): every function
+    against its numpy / scipy reference, and n above MAX_N still refused."""
+    if _kernel is None:
+        pytest.skip(f"recursive._kernel is not built ({_KERNEL_ERROR})")
+    n = 600
+    rng = np.random.default_rng(1600)
+    # the R of a QR factorization of a tall Gaussian matrix: well conditioned at any n
+    R0 = np.ascontiguousarray(np.linalg.qr(rng.normal(size=(2 * n, n)))[1] / np.sqrt(2 * n))
+    z0, phi = rng.normal(size=n), rng.normal(size=n)
+    lam = R0.T @ R0
+    # predict: u = R^{-T} phi (scipy.linalg.solve_triangular)
+    mean, lev = _kernel.predict(R0, z0, phi)
+    u = solve_triangular(R0, phi, trans="T")
+    assert mean == pytest.approx(float(u @ z0), rel=1e-10)
+    assert lev == pytest.approx(float(u @ u), rel=1e-10)
+    # update: the Gram matrix gains phi phi^T
+    R, z = R0.copy(), z0.copy()
+    _kernel.update(R, z, phi.copy(), 0.5)
+    assert_allclose(R.T @ R, lam + np.outer(phi, phi), atol=_tol(lam) * 10)
+    # stabilize: Lambda <- delta Lambda + (1 - delta) diag(r0^2)
+    r0, delta = rng.uniform(0.1, 2.0, n), 0.7
+    zp = r0 * rng.normal(size=n)
+    R, z = R0.copy(), z0.copy()
+    _kernel.stabilize(R, z, r0, zp, delta)
+    assert_allclose(R.T @ R, delta * lam + (1 - delta) * np.diag(r0 ** 2), atol=_tol(lam) * 10)
+    # random walk and term drift: Lambda <- inv(inv(Lambda) + C), numpy.linalg.inv
+    cov = np.linalg.inv(lam)
+    for fn, c in ((lambda R, z: _kernel.random_walk(R, z, 0.3), 0.3 * np.ones(n)),
+                  (lambda R, z: _kernel.term_drift(R, z, np.r_[1.0, np.zeros(n - 1)], 0.3),
+                   np.r_[0.3, np.zeros(n - 1)])):
+        R, z = R0.copy(), z0.copy()
+        fn(R, z)
+        want = np.linalg.inv(cov + np.diag(c))
+        assert_allclose(R.T @ R, want, atol=1e-9 * np.abs(want).max())
+    # stabilized rows: a batch over the heap-sized M (numpy reference as in the test above)
+    out = np.empty((3, 2))
+    M = np.ascontiguousarray(rng.normal(size=(n, n)) / np.sqrt(n))
+    kappa, c0, dc = rng.uniform(0.1, 1.0, n), rng.normal(size=n), rng.normal(size=n)
+    P, dt = rng.normal(size=(2, n)), np.array([0.0, 3.0])
+    _kernel.stabilized_rows(out, M, kappa, c0, dc, P, dt, 2.0)
+    d = 2.0 ** (-dt / 2.0)
+    g = P @ M.T
+    q = kappa[None, :] + (1 - kappa[None, :]) * d[:, None]
+    assert_allclose(out[1], np.sum(g * g / q, axis=1), rtol=1e-10)
+    assert_allclose(out[0], np.sum(g / q * (c0 + dc * d[:, None]), axis=1), rtol=1e-9,
+                    atol=1e-9)
+    big = _kernel.MAX_N + 1
+    with pytest.raises(ValueError, match=f"at most {_kernel.MAX_N}"):
+        _kernel.predict(np.eye(big), np.ones(big), np.ones(big))

@@ -246,27 +246,72 @@ def _state():
     return s
 
 
-def test_render_shows_one_line_per_model():
-    text = live.render(_state())
+def test_render_fits_80_columns_with_two_lines_per_model_and_event_lines():
+    text = live.render(_state(), events=8)
     lines = text.splitlines()
     assert lines[0].startswith("posteriord watch  tcp://127.0.0.1:5556")
-    assert "feed time 2026-01-05 02:00 UTC" in lines[0] and "2 models" in lines[0]
+    assert "feed 2026-01-05 02:00 UTC" in lines[0] and "2 models" in lines[0]
     assert lines[1].split()[:3] == ["model", "prediction", "interval"]
-    a = next(line for line in lines if line.startswith("c301.a"))
-    assert "187.2 ± 6.1 ppm" in a          # the last row of the block
-    assert "95% [175.1, 199.5]" in a
-    assert "learning" in a and "caution" in a and "extrapolation+stale" in a
-    assert "185.0 (-2.3, -0.38)" in a
-    assert a.split()[-2:] == ["2h00m", "1.5s"]  # lab age (feed time), message age (wall)
-    b = next(line for line in lines if line.startswith("b.model"))
-    assert "1850.0 (+1663.0, +12.00) REJECTED" in b
-    assert len(lines) == 4
+    assert "(95%)" in lines[1]
+    i = next(k for k, line in enumerate(lines) if line.startswith("c301.a"))
+    a, detail = lines[i], lines[i + 1]
+    assert "187.2 ± 6.1 ppm" in a          # the last row of the block, std to 2 digits
+    assert "[175.1, 199.5]" in a
+    assert "learning" in a and "caution" in a
+    assert "why: extrapolation+stale" in detail
+    assert "lab 185.0 (-2.3, z -0.38)" in detail  # value (residual, z)
+    assert "lab age 2h00m" in detail and detail.endswith("msg 1.5s")  # feed time, wall time
+    b = next(k for k, line in enumerate(lines) if line.startswith("b.model"))
+    # no prediction of b.model yet: its scale is the fit's std (6.0), one decimal
+    assert "lab 1850.0 (+1663.0, z +12.00) REJECTED" in lines[b + 1]
+    # the events below the table, in order of arrival: lab results and the trust change
+    at = lines.index("events (lab results at their drawn time, as they arrive):")
+    events = lines[at + 1:]
+    assert events == [
+        "  2026-01-05 00:00  c301.a  lab 185.0 ppm  pred 187.3 ± 6.1  z -0.38  learned",
+        "  2026-01-05 02:00  c301.a  trust normal -> caution (extrapolation, stale)",
+        "  2026-01-05 00:00  b.model  lab 1850.0 ppm  pred 187.0 ± 6.0  z +12.00  REJECTED "
+        "(gated)"]
+    assert max(len(line) for line in lines[:at]) <= 80
+    assert "events" not in live.render(_state())  # only when asked for (the demo prints its own)
     narrow = live.render(_state(), width=60, color=True)
     assert "\x1b[33m" in narrow  # caution in yellow
     plain = [ln.replace("\x1b[33m", "").replace("\x1b[0m", "") for ln in narrow.splitlines()]
     assert max(len(ln) for ln in plain) == 60
     empty = live.watch_state()
     assert "(no messages yet)" in live.render(empty)
+
+
+def test_watch_digits_follow_the_targets_scale_and_configured_models_count():
+    # a target in % with a std of 0.1: two decimals (3.42 ± 0.10, not 3.4 ± 0.1); the std to
+    # two significant digits is common practice for a value with its uncertainty
+    s = live.watch_state("ep", models=["dryer.moisture", "other"],
+                         units={"dryer.moisture": "%"})
+    text = live.render(s)
+    assert "2 models" in text.splitlines()[0] and text.count("no messages yet") == 2
+    live.watch_update(s, "pred/dryer.moisture", {"t": 1767571200.0, "mean": 3.4213,
+                                                 "std": 0.1012, "lo": 3.2229, "hi": 3.6197,
+                                                 "level": 0.95, "status": "learning",
+                                                 "trust": "normal"}, 1.0)
+    s["now"] = 2.0
+    line = next(ln for ln in live.render(s).splitlines() if ln.startswith("dryer.moisture"))
+    assert "3.42 ± 0.10 %" in line and "[3.22, 3.62]" in line
+    live.watch_update(s, "pred/dryer.moisture", {"t": 1767571260.0, "mean": 1870.4,
+                                                 "std": 61.3, "lo": 1750.0, "hi": 1990.0,
+                                                 "level": 0.95, "status": "learning"}, 3.0)
+    line = next(ln for ln in live.render(s).splitlines() if ln.startswith("dryer.moisture"))
+    assert "1870 ± 61 %" in line
+    assert [live.decimals_for(v) for v in (0.1012, 6.1, 61.3, 0.0042, float("inf"))] == \
+        [2, 1, 0, 4, 1]
+
+
+def test_freeze_and_resume_alerts_are_event_lines():
+    s = live.watch_state("ep")
+    line = live.watch_update(s, "alert/m", {"model": "m", "t": 1767571200.0, "kind": "action",
+                                            "action": "freeze", "reason": "analyzer down",
+                                            "by": "alice"}, 1.0)
+    assert line == "2026-01-05 00:00  m  learning frozen by alice: analyzer down"
+    assert list(s["events"]) == [line]
 
 
 class _Tty(io.StringIO):
@@ -308,8 +353,12 @@ def test_watch_over_a_socket(ctx):
     state = result[0]
     assert state["models"]["x"]["n_pred"] == 1 and state["models"]["x"]["n_fit"] == 1
     frame = out.getvalue()
-    assert "x " in frame and "5.0 ± 1.0 ppm" in frame and "90% [3.0, 7.0]" in frame
-    assert "5.5 (+0.5, +0.50)" in frame
+    assert "x " in frame and "5.0 ± 1.0 ppm" in frame and "[3.0, 7.0]" in frame
+    assert "interval (90%)" in frame
+    assert "5.5 (+0.5, z +0.50)" in frame
+    # not a terminal: the lab result came as an event line before the final table
+    assert frame.startswith("2026-01-04 23:58  x  lab 5.5 ppm  no prediction yet  z +0.50  "
+                            "learned\n")
 
 
 def test_watch_command_prints_the_last_frame(ctx, capsys):

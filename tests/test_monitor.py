@@ -75,12 +75,22 @@ def lab(z: float, *, mean: float = 150.0, scale: float = 10.0, dof: float = math
 
 
 class FakePosterior:
-    """What the monitor reads of a posterior: mean, scale matrix, flatten()."""
+    """What the monitor reads of a posterior: mean, square-root factor and noise variance
+    (as recursive.Posterior gives them: ``scale_matrix = noise_var (R^T R)^{-1}``),
+    flatten()."""
 
     def __init__(self, n: int = 3):
         self.mean = np.zeros(n)
         self.scale_matrix = np.eye(n)
         self.flattened: list[float] = []
+
+    identified = True
+    noise_var = 1.0
+
+    @property
+    def sqrt_information(self) -> np.ndarray:
+        # R upper triangular with R^T R = inverse of the scale matrix (numpy Cholesky)
+        return np.linalg.cholesky(np.linalg.inv(self.scale_matrix)).T
 
     def flatten(self, keep: float) -> None:
         self.flattened.append(keep)
@@ -297,7 +307,8 @@ def test_param_drift_is_the_mahalanobis_distance_in_the_reference_metric():
         inv = np.linalg.inv(ref_cov)
         kl = 0.5 * (np.trace(inv @ cov) + d * d - n
                     + np.log(np.linalg.det(ref_cov) / np.linalg.det(cov)))
-        assert mon.last["kl"] == pytest.approx(kl, rel=1e-9, abs=1e-12)
+        assert mon.kl == pytest.approx(kl, rel=1e-9, abs=1e-12)
+        assert mon.view()["param_drift"]["kl"] == mon.kl
         assert ("param_drift" in mon.lab_active) == (d > limit)
     assert mon.lab_active["param_drift"][0] == STATES.index(LEVEL["param_drift"])
     assert mon.view()["param_drift"]["mahalanobis"] == mon.last["drift"]

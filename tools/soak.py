@@ -36,8 +36,8 @@ import zmq
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.dirname(HERE))
 
-from daemon.workbench import plant  # noqa: E402
 from daemon.runtime.state_commands import read_export  # noqa: E402
+from daemon.workbench import plant  # noqa: E402
 
 SINGLE = "soak.single"   # one message per feature sample, ids on them, some results by id
 BLOCKS = "soak.blocks"   # blocks of 12 feature samples, identity basis

@@ -13,14 +13,14 @@ import asyncio
 import collections
 import contextlib
 import datetime as _dt
-import logging
 import math
-import time
+from pathlib import Path
 
 import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry, Counter, Gauge, start_http_server
 
+from daemon.logsetup import RateLimitedLog
 from daemon.runtime import wire
 
 # Why a bridge did not pass something on: a bounded set, so they can be metric labels.
@@ -35,6 +35,7 @@ REASONS = (
     "unknown_model",  # a topic or file naming no configured model
     "bad_lab",        # a lab result without a usable value or drawn time
     "bad_file",       # a lab CSV file that cannot be read as a whole
+    "write_refused",  # a value an existing OPC UA server did not take (type, access, status)
 )
 
 HOLD = 10000  # samples held per model while the daemon is not subscribed
@@ -61,24 +62,29 @@ def number(v) -> float | None:
     return None
 
 
-class RateLimitedLog:
-    """Logs one line per (key, reason) at most every ``interval`` seconds, with the count."""
-
-    def __init__(self, logger: logging.Logger, interval: float = 10.0):
-        self.log = logger
-        self.interval = interval
-        self._last: dict = {}
-        self._count: collections.Counter = collections.Counter()
-
-    def warn(self, key: str, reason: str, detail: str) -> None:
-        k = (key, reason)
-        self._count[k] += 1
-        now = time.monotonic()
-        if now - self._last.get(k, -math.inf) >= self.interval:
-            n = self._count.pop(k)
-            self._last[k] = now
-            self.log.warning("%s: %s (%s)%s", key, reason, detail,
-                             f" [{n} since the last report]" if n > 1 else "")
+# Every metric family of the bridges, declared once: (attribute, type, name, labels, help).
+# docs/bridge-metrics.md is generated from this table (:func:`metrics_markdown`).
+BRIDGE_METRICS = (
+    ("received", "counter", "posteriord_bridge_received_total", ("bridge", "model"),
+     "Readings, lab results or daemon outputs received by the bridge."),
+    ("published", "counter", "posteriord_bridge_published_total", ("bridge", "model"),
+     "Messages passed on by the bridge (to the feed, the broker or the served variables)."),
+    ("dropped", "counter", "posteriord_bridge_dropped_total", ("bridge", "model", "reason"),
+     "What the bridge did not pass on, by reason."),
+    ("uncertain", "counter", "posteriord_bridge_uncertain_total", ("bridge", "model"),
+     "Rows sent although a reading in them had an Uncertain OPC UA status."),
+    ("reconnects", "counter", "posteriord_bridge_reconnects_total", ("bridge",),
+     "Connections to the plant side (OPC UA server, broker, written server) lost and made "
+     "again."),
+    ("gaps", "counter", "posteriord_bridge_gaps_total", ("bridge",),
+     "Interruptions of the readings: a lost connection or subscription (what changed "
+     "meanwhile is not known)."),
+    ("connected", "gauge", "posteriord_bridge_connected", ("bridge",),
+     "1 while the bridge is connected to the plant side."),
+    ("subscribed", "gauge", "posteriord_bridge_daemon_subscribed", ("bridge", "model"),
+     "1 while a daemon is subscribed to the model on the bridge's feed; while it is 0 the "
+     "bridge holds the samples (a bounded queue; overflow is dropped as no_subscriber)."),
+)
 
 
 class Metrics:
@@ -87,40 +93,27 @@ class Metrics:
     def __init__(self, bridge: str, models=(), registry: CollectorRegistry | None = None):
         self.bridge = bridge
         self.registry = registry or CollectorRegistry()
-        r = self.registry
-        self.received = Counter("posteriord_bridge_received_total",
-                                "Readings, lab results or outputs received by the bridge",
-                                ["bridge", "model"], registry=r)
-        self.published = Counter("posteriord_bridge_published_total",
-                                 "Messages passed on by the bridge", ["bridge", "model"],
-                                 registry=r)
-        self.dropped = Counter("posteriord_bridge_dropped_total",
-                               "What the bridge did not pass on, by reason",
-                               ["bridge", "model", "reason"], registry=r)
-        self.uncertain = Counter("posteriord_bridge_uncertain_total",
-                                 "Readings used although their status was Uncertain",
-                                 ["bridge", "model"], registry=r)
-        self.reconnects = Counter("posteriord_bridge_reconnects_total",
-                                  "Connections to the plant side lost and made again",
-                                  ["bridge"], registry=r)
-        self.gaps = Counter("posteriord_bridge_gaps_total",
-                            "Interruptions of the readings (a lost connection or subscription)",
-                            ["bridge"], registry=r)
-        self.connected = Gauge("posteriord_bridge_connected",
-                               "1 while the bridge is connected to the plant side",
-                               ["bridge"], registry=r)
+        for attr, kind, name, labels, help_ in BRIDGE_METRICS:
+            family = Counter if kind == "counter" else Gauge
+            # prometheus_client adds _total to a counter's name itself
+            setattr(self, attr, family(name.removesuffix("_total"), help_, list(labels),
+                                       registry=self.registry))
         self.reconnects.labels(bridge)
         self.gaps.labels(bridge)
         self.connected.labels(bridge).set(0)
+        self.models: set[str] = set()
         for m in models:
             self.known(m)
         self._http = None
 
     def known(self, model: str) -> None:
         b = self.bridge
+        self.models.add(model)
         self.received.labels(b, model)
         self.published.labels(b, model)
         self.uncertain.labels(b, model)
+        for reason in REASONS:
+            self.dropped.labels(b, model, reason)
 
     def drop(self, model: str, reason: str, n: int = 1) -> None:
         self.dropped.labels(self.bridge, model, reason).inc(n)
@@ -174,18 +167,27 @@ class FeedEnd:
         self.subscribed: set[str] = set()
         self.held: dict[str, collections.deque] = {}
         self.seq: collections.Counter = collections.Counter()
+        self._gauges_set = False
 
     def _is_subscribed(self, model: str) -> bool:
         return model in self.subscribed or any(model.startswith(s) for s in self.subscribed)
 
     def take_events(self) -> None:
         """Read the subscription changes that have arrived, and flush what they unblock."""
+        changed = False
         while self.sock.poll(0):
             raw = self.sock.recv(zmq.NOBLOCK)
             if raw[:1] == b"\x01":
                 self.subscribed.add(raw[1:].decode("utf-8", "replace"))
+                changed = True
             elif raw[:1] == b"\x00":
                 self.subscribed.discard(raw[1:].decode("utf-8", "replace"))
+                changed = True
+        if changed or not self._gauges_set:
+            self._gauges_set = True
+            for model in self.metrics.models:
+                self.metrics.subscribed.labels(self.name, model).set(
+                    self._is_subscribed(model))
         for model, queue in self.held.items():
             if queue and self._is_subscribed(model):
                 while queue:
@@ -297,6 +299,48 @@ async def backoff_sleep(attempt: int, first: float, most: float) -> None:
     await asyncio.sleep(min(most, first * 2.0 ** min(attempt, 30)))
 
 
+async def opcua_client(url: str, timeout: float, default_uri: str, policy: str, mode: str,
+                       certificate: str, private_key: str, server_certificate: str,
+                       user: str | None, password_file: str, password: str | None = None):
+    """An asyncua client (not connected) with the security and identity of a bridge's
+    settings; the password is the first line of ``password_file`` unless given."""
+    from asyncua import Client, ua
+    from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
+
+    client = Client(url, timeout=timeout)
+    client.application_uri = certificate_uri(certificate) or default_uri
+    if policy == "Basic256Sha256":
+        await client.set_security(
+            SecurityPolicyBasic256Sha256, certificate=certificate, private_key=private_key,
+            server_certificate=server_certificate or None,
+            mode=(ua.MessageSecurityMode.SignAndEncrypt if mode == "sign_and_encrypt"
+                  else ua.MessageSecurityMode.Sign))
+    if user is not None:
+        client.set_user(user)
+        if password is None:
+            password = Path(password_file).read_text(encoding="utf-8").splitlines()[0]
+        client.set_password(password)
+    return client
+
+
+def certificate_uri(path: str) -> str | None:
+    """The application URI in a certificate's subject alternative names (OPC UA Part 6
+    wants the session's application URI to be that one), or None."""
+    if not path:
+        return None
+    from cryptography import x509
+
+    data = Path(path).read_bytes()
+    cert = (x509.load_pem_x509_certificate(data) if b"-----BEGIN" in data
+            else x509.load_der_x509_certificate(data))
+    try:
+        san = cert.extensions.get_extension_for_class(x509.SubjectAlternativeName).value
+    except x509.ExtensionNotFound:
+        return None
+    uris = san.get_values_for_type(x509.UniformResourceIdentifier)
+    return uris[0] if uris else None
+
+
 def run_bridge(factory, config_path: str, section: str) -> int:
     """Run one bridge process: its ``[section]`` of the config, SIGTERM/SIGINT to stop.
 
@@ -322,3 +366,20 @@ def run_bridge(factory, config_path: str, section: str) -> int:
 
     asyncio.run(go())
     return 0
+
+
+def metrics_markdown() -> str:
+    """The text of ``docs/bridge-metrics.md``."""
+    out = ["# Bridge metrics\n",
+           "<!-- Generated by daemon.bridges.common.metrics_markdown(); edit BRIDGE_METRICS "
+           "in\ndaemon/bridges/common.py and regenerate, do not edit by hand. -->\n",
+           "Each bridge serves these on its own Prometheus endpoint (`metrics` in its table, "
+           "docs/bridges.md), labelled with its `name`. The series of the configured models "
+           "exist from the start at zero, so `increase()` sees the first event.\n",
+           "Reasons (`reason` of `posteriord_bridge_dropped_total`): "
+           + ", ".join(f"`{r}`" for r in REASONS) + ".\n",
+           "| Metric | Type | Labels | Help |", "|---|---|---|---|"]
+    for _, kind, name, labels, help_ in BRIDGE_METRICS:
+        out.append(f"| `{name}` | {kind} | {', '.join(f'`{x}`' for x in labels)} | {help_} |")
+    out.append("")
+    return "\n".join(out)

@@ -27,8 +27,9 @@ from pathlib import Path
 
 import zmq
 
-from daemon.bridges.common import FeedEnd, Metrics, RateLimitedLog, number
+from daemon.bridges.common import FeedEnd, Metrics, number
 from daemon.config.bridges import BridgeConfig
+from daemon.logsetup import RateLimitedLog
 
 log = logging.getLogger("posteriord.bridge.lab_folder")
 

@@ -33,13 +33,13 @@ import zmq
 from daemon.bridges.common import (
     FeedEnd,
     Metrics,
-    RateLimitedLog,
     backoff_sleep,
     number,
     prediction_rows,
     read_output,
 )
 from daemon.config.bridges import BridgeConfig
+from daemon.logsetup import RateLimitedLog
 
 log = logging.getLogger("posteriord.bridge.mqtt")
 

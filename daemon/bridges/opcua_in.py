@@ -1,9 +1,11 @@
 """OPC UA in: a client of the plant's OPC UA server that puts input samples on the feed.
 
 One subscription carries every configured node (sampling and publishing intervals as set,
-no deadband). Each data change updates the model's table of last readings; the row is sent
-once the changes that arrived together have been applied, stamped with the newest source
-timestamp among them (the server's clock, never the bridge's). Status codes (OPC UA Part 4,
+no deadband, a queue per node so that a burst between two publications is not lost). The
+changes that arrive together are applied to the model's table of last readings in
+source-time order; a row is sent when an input changes a second time (the queue held
+several values of it) and after the last change, stamped with the newest source timestamp
+among the changes it holds (the server's clock, never the bridge's). Status codes (OPC UA Part 4,
 the two severity bits): Good is used; Uncertain is used and counted; Bad makes the reading
 missing, and the model gets no sample until every input is usable again (the daemon learns
 nothing from a row with a hole in it).
@@ -21,12 +23,19 @@ import asyncio
 import contextlib
 import logging
 import math
-from pathlib import Path
 
 import zmq
 
-from daemon.bridges.common import FeedEnd, Metrics, RateLimitedLog, backoff_sleep, epoch, number
+from daemon.bridges.common import (
+    FeedEnd,
+    Metrics,
+    backoff_sleep,
+    epoch,
+    number,
+    opcua_client,
+)
 from daemon.config.bridges import BridgeConfig
+from daemon.logsetup import RateLimitedLog
 
 log = logging.getLogger("posteriord.bridge.opcua_in")
 
@@ -58,6 +67,7 @@ class _Model:
         self.bad = [False] * len(tags)
         self.last_t = -math.inf
         self.new_t: float | None = None  # newest source time among changes not yet sent
+        self.changed: set[int] = set()  # inputs changed since the last row
 
 
 class _Lab:
@@ -68,6 +78,7 @@ class _Lab:
         self.value: float | None = None
         self.drawn: float | None = None
         self.sent_drawn: float | None = None
+        self.changed: set[str] = set()  # "value", "drawn": changed since the last send
 
 
 class OpcUaIn:
@@ -100,8 +111,17 @@ class OpcUaIn:
         self._password = password
         self._stop = asyncio.Event()
         self._flush_pending = False
+        self._batch: list[tuple] = []
         self.connected = asyncio.Event()
         self.metrics_address = None
+
+    @property
+    def queue_size(self) -> int:
+        """The monitored items' queue size asked of the server ([opcua_in] queue_size)."""
+        c = self.cfg
+        if c.queue_size:
+            return c.queue_size
+        return max(2, 2 * math.ceil(c.publishing_interval / c.sampling_interval - 1e-9))
 
     # ------------------------------------------------------------------ set-up
     def open(self) -> None:
@@ -117,26 +137,11 @@ class OpcUaIn:
         self._stop.set()
 
     async def _client(self):
-        from asyncua import Client, ua
-        from asyncua.crypto.security_policies import SecurityPolicyBasic256Sha256
-
         c = self.cfg
-        client = Client(c.server, timeout=c.timeout)
-        client.application_uri = certificate_uri(c.certificate) or f"urn:posteriord:{self.name}"
-        if c.security_policy == "Basic256Sha256":
-            mode = (ua.MessageSecurityMode.SignAndEncrypt if c.security_mode == "sign_and_encrypt"
-                    else ua.MessageSecurityMode.Sign)
-            await client.set_security(SecurityPolicyBasic256Sha256, certificate=c.certificate,
-                                      private_key=c.private_key,
-                                      server_certificate=c.server_certificate or None,
-                                      mode=mode)
-        if c.user is not None:
-            client.set_user(c.user)
-            password = self._password
-            if password is None:
-                password = Path(c.password_file).read_text(encoding="utf-8").splitlines()[0]
-            client.set_password(password)
-        return client
+        return await opcua_client(
+            c.server, c.timeout, f"urn:posteriord:{self.name}", c.security_policy,
+            c.security_mode, c.certificate, c.private_key, c.server_certificate, c.user,
+            c.password_file, self._password)
 
     # ------------------------------------------------------------------ the loop
     async def run(self) -> None:
@@ -198,8 +203,8 @@ class OpcUaIn:
         ids = [*self.targets, *self.lab_nodes]
         nodes = [client.get_node(i) for i in ids]
         # deadband none: the default data change filter reports every change of value
-        handles = await sub.subscribe_data_change(nodes, sampling_interval=c.sampling_interval
-                                                  * 1000.0)
+        handles = await sub.subscribe_data_change(nodes, queuesize=self.queue_size,
+                                                  sampling_interval=c.sampling_interval * 1000.0)
         for nid, h in zip(ids, handles, strict=True):
             if isinstance(h, ua.StatusCode):
                 raise RuntimeError(f"the server refused to monitor {nid}: {h}")
@@ -222,14 +227,17 @@ class OpcUaIn:
         for m in self.models.values():
             m.values = [None] * len(m.tags)
             m.new_t = None
+            m.changed.clear()
         for lab in self.labs:
             lab.value = lab.drawn = None
+            lab.changed.clear()
+        self._batch = []
 
     # ------------------------------------------------------------------ notifications
     def datachange_notification(self, node, val, data) -> None:
         """asyncua's handler call for one monitored item; never raises."""
         try:
-            self._change(node, val, data)
+            self._batch.append(self._reading(node, val, data))
         except Exception:  # noqa: BLE001 - a bad notification must not end the subscription
             log.exception("data change of %s could not be handled", node)
         if not self._flush_pending:
@@ -240,16 +248,38 @@ class OpcUaIn:
     def status_change_notification(self, status) -> None:
         log.warning("subscription status changed: %s", status)
 
-    def _change(self, node, val, data) -> None:
+    def _reading(self, node, val, data) -> tuple:
+        """(node id, value, severity, source time or None) of one notification."""
         nid = self._node_ids.get(node.nodeid) if hasattr(self, "_node_ids") else None
         if nid is None:
             nid = node.nodeid.to_string()
         dv = data.monitored_item.Value
-        sev = severity(status_of(dv))
         t = epoch(dv.SourceTimestamp)
         if t is None:
             t = epoch(dv.ServerTimestamp)
+        return nid, val, severity(status_of(dv)), t
+
+    def _flush(self) -> None:
+        """Apply the changes delivered together in source-time order. A model's row is sent
+        when a change comes for an input that already changed since its last row (a queue
+        of several values per node: one row per value, none overwritten) and at the end."""
+        self._flush_pending = False
+        batch, self._batch = self._batch, []
+        batch.sort(key=lambda r: -math.inf if r[3] is None else r[3])  # stable: arrival order
+        try:
+            for reading in batch:
+                self._apply(*reading)
+            for m in self.models.values():
+                self._send_row(m)
+            for lab in self.labs:
+                self._send_lab(lab)
+        except Exception:  # noqa: BLE001
+            log.exception("flushing readings failed")
+
+    def _apply(self, nid: str, val, sev: str, t: float | None) -> None:
         for m, i in self.targets.get(nid, ()):
+            if i in m.changed:
+                self._send_row(m)
             self.metrics.received.labels(self.name, m.name).inc()
             if t is None:
                 self.metrics.drop(m.name, "no_time")
@@ -268,25 +298,20 @@ class OpcUaIn:
                 m.bad[i] = False
             m.uncertain[i] = sev == UNCERTAIN
             m.new_t = t if m.new_t is None else max(m.new_t, t)
+            m.changed.add(i)
         for lab, part in self.lab_nodes.get(nid, ()):
+            if part in lab.changed:
+                self._send_lab(lab)
+            lab.changed.add(part)
             self.metrics.received.labels(self.name, lab.model).inc()
             if part == "value":
                 lab.value = None if sev == BAD else number(val)
             else:
                 lab.drawn = None if sev == BAD else _drawn(val)
 
-    def _flush(self) -> None:
-        self._flush_pending = False
-        try:
-            for m in self.models.values():
-                self._send_row(m)
-            for lab in self.labs:
-                self._send_lab(lab)
-        except Exception:  # noqa: BLE001
-            log.exception("flushing readings failed")
-
     def _send_row(self, m: _Model) -> None:
         t = m.new_t
+        m.changed.clear()
         if t is None:
             return
         m.new_t = None
@@ -307,6 +332,7 @@ class OpcUaIn:
         self.feed.send(m.name, {"t": t, "x": list(m.values)})
 
     def _send_lab(self, lab: _Lab) -> None:
+        lab.changed.clear()
         if lab.drawn is None or lab.drawn == lab.sent_drawn:
             return
         if lab.value is None:
@@ -320,24 +346,6 @@ class OpcUaIn:
             self.feed.close()
         if self._own_ctx and self._ctx is not None:
             self._ctx.term()
-
-
-def certificate_uri(path: str) -> str | None:
-    """The application URI in a certificate's subject alternative names (OPC UA Part 6
-    wants the session's application URI to be that one), or None."""
-    if not path:
-        return None
-    from cryptography import x509
-
-    data = Path(path).read_bytes()
-    cert = (x509.load_pem_x509_certificate(data) if b"-----BEGIN" in data
-            else x509.load_der_x509_certificate(data))
-    try:
-        san = cert.extensions.get_extension_for_class(x509.SubjectAlternativeName).value
-    except x509.ExtensionNotFound:
-        return None
-    uris = san.get_values_for_type(x509.UniformResourceIdentifier)
-    return uris[0] if uris else None
 
 
 def _drawn(v) -> float | None:

@@ -36,8 +36,16 @@ from pathlib import Path
 
 import zmq
 
-from daemon.bridges.common import Metrics, RateLimitedLog, prediction_rows, read_output
+from daemon.bridges.common import (
+    Metrics,
+    backoff_sleep,
+    certificate_uri,
+    opcua_client,
+    prediction_rows,
+    read_output,
+)
 from daemon.config.bridges import BridgeConfig
+from daemon.logsetup import RateLimitedLog
 
 log = logging.getLogger("posteriord.bridge.opcua_out")
 
@@ -173,11 +181,13 @@ class _Trusted:
             raise BadCertificateUntrusted()
 
 
-def _datavalue(value, kind, code: int, t: float | None):
+def _datavalue(value, kind, code: int, t: float | None, server_time: bool = True):
+    """A DataValue with the status code and source timestamp; the server timestamp is now
+    (the server's own variables) or left out (a write to another server: it sets its own)."""
     from asyncua import ua
 
     source = None if t is None else _dt.datetime.fromtimestamp(t, _dt.UTC)
-    now = _dt.datetime.now(_dt.UTC)
+    now = _dt.datetime.now(_dt.UTC) if server_time else None
     variant = ua.Variant(value, kind)
     try:
         return ua.DataValue(variant, StatusCode=ua.StatusCode(code), SourceTimestamp=source,
@@ -187,12 +197,156 @@ def _datavalue(value, kind, code: int, t: float | None):
                             ServerTimestamp=now)
 
 
+class _Writer:
+    """The client that writes the served values to nodes of an existing server.
+
+    Only the newest value of each node waits to be written: a server slower than the
+    predictions, or away for a while, gets the current values when it can take them, never
+    a backlog of superseded ones. The link is watched, lost, and made again like the
+    opcua-in bridge's; after a reconnection every node is written afresh.
+    """
+
+    def __init__(self, cfg: BridgeConfig, metrics: Metrics, rlog: RateLimitedLog,
+                 password: str | None = None):
+        self.cfg = cfg
+        self.metrics = metrics
+        self.rlog = rlog
+        self.name = cfg.name
+        self._password = password
+        self.targets: dict[tuple[str, str], list[str]] = {}
+        self.model_of: dict[str, str] = {}
+        for w in cfg.items["write"]:
+            self.targets.setdefault((w["model"], w["variable"]), []).append(w["node"])
+            self.model_of[w["node"]] = w["model"]
+        self.pending: dict[str, tuple] = {}  # node id -> (value, variant type, code, t)
+        self.last: dict[str, tuple] = {}  # what was last offered per node (rewritten on reconnect)
+        self.types: dict[str, object] = {}  # node id -> the node's variant type
+        self.wake = asyncio.Event()
+        self.connected = asyncio.Event()
+        self.written = 0  # writes the server accepted
+
+    def offer(self, model: str, var: str, value, vtype, code: int, t: float | None) -> None:
+        for nid in self.targets.get((model, var), ()):
+            self.pending[nid] = self.last[nid] = (value, vtype, code, t)
+            self.wake.set()
+
+    async def run(self, stop: asyncio.Event) -> None:
+        c = self.cfg
+        attempt = 0
+        while not stop.is_set():
+            was_up = False
+            try:
+                client = await opcua_client(
+                    c.write_server, c.write_timeout, f"urn:posteriord:{self.name}:writer",
+                    c.write_security_policy, c.write_security_mode, c.write_certificate,
+                    c.write_private_key, c.write_server_certificate, c.write_user,
+                    c.write_password_file, self._password)
+                try:
+                    await client.connect()
+                    await self._types(client)
+                    was_up = True
+                    attempt = 0
+                    self.pending = {**self.last, **self.pending}
+                    self.metrics.connected.labels(self.name).set(1)
+                    self.connected.set()
+                    log.info("writing to %s: %d node(s)", c.write_server, len(self.model_of))
+                    await self._loop(client, stop)
+                finally:
+                    with contextlib.suppress(Exception):
+                        await asyncio.wait_for(client.disconnect(), c.write_timeout)
+            except asyncio.CancelledError:
+                raise
+            except Exception as exc:  # noqa: BLE001 - any failure of the link: reconnect
+                self.rlog.warn(c.write_server, "connection", f"{type(exc).__name__}: {exc}"[:300])
+            self.connected.clear()
+            self.metrics.connected.labels(self.name).set(0)
+            if was_up:
+                self.metrics.reconnects.labels(self.name).inc()
+                self.metrics.gaps.labels(self.name).inc()
+            if stop.is_set():
+                break
+            waits = {asyncio.create_task(stop.wait()), asyncio.create_task(
+                backoff_sleep(attempt, c.reconnect_ivl, c.reconnect_ivl_max))}
+            await asyncio.wait(waits, return_when=asyncio.FIRST_COMPLETED)
+            for w in waits:
+                w.cancel()
+            attempt += 1
+
+    async def _types(self, client) -> None:
+        """The variant type of every target node (a Float node takes a Float variant)."""
+        from asyncua import ua
+
+        for nid in self.model_of:
+            node = client.get_node(nid)
+            try:
+                self.types[nid] = await node.read_data_type_as_variant_type()
+            except ua.UaError as exc:
+                self.types[nid] = None
+                self.rlog.warn(nid, "write_refused", f"its data type cannot be read: {exc}")
+
+    async def _loop(self, client, stop: asyncio.Event) -> None:
+        from asyncua import ua
+
+        clock = client.get_node(ua.NodeId(ua.ObjectIds.Server_ServerStatus_CurrentTime))
+        timeout = self.cfg.write_timeout
+        while not stop.is_set():
+            if self.pending:
+                batch, self.pending = self.pending, {}
+                try:
+                    await asyncio.wait_for(self._write(client, batch), timeout)
+                except BaseException:
+                    self.pending = {**batch, **self.pending}  # newer offers win
+                    raise
+                continue
+            waits = {asyncio.create_task(self.wake.wait()), asyncio.create_task(stop.wait())}
+            done, _ = await asyncio.wait(waits, timeout=timeout / 2,
+                                         return_when=asyncio.FIRST_COMPLETED)
+            for w in waits:
+                w.cancel()
+            self.wake.clear()
+            if not done:  # idle: is the server still there?
+                await asyncio.wait_for(clock.read_value(), timeout)
+
+    async def _write(self, client, batch: dict[str, tuple]) -> None:
+        from asyncua import ua
+
+        ids, dvs = [], []
+        for nid, (value, vtype, code, t) in batch.items():
+            want = self.types.get(nid)
+            if want is None:
+                self.metrics.drop(self.model_of[nid], "write_refused")
+                continue
+            if want == ua.VariantType.Float and vtype == ua.VariantType.Double:
+                vtype = want
+            elif want != vtype:
+                self.metrics.drop(self.model_of[nid], "write_refused")
+                self.rlog.warn(nid, "write_refused", f"the node holds {want.name}, the value "
+                               f"is {vtype.name}")
+                continue
+            ids.append(ua.NodeId.from_string(nid))
+            if self.cfg.write_timestamps:
+                dvs.append(_datavalue(value, vtype, code, t, server_time=False))
+            else:
+                dvs.append(ua.DataValue(ua.Variant(value, vtype)))
+        if not ids:
+            return
+        results = await client.uaclient.write_attributes(ids, dvs, ua.AttributeIds.Value)
+        for nid, result in zip(ids, results, strict=True):
+            if result.is_good():
+                self.written += 1
+            else:
+                name = nid.to_string()
+                self.metrics.drop(self.model_of.get(name, "?"), "write_refused")
+                self.rlog.warn(name, "write_refused", f"the server answered {result.name}")
+
+
 class OpcUaOut:
     """The server bridge; :meth:`run` until :meth:`stop`."""
 
     NUMBERS = ("Mean", "Std", "Lo", "Hi")
 
-    def __init__(self, cfg: BridgeConfig, *, context: zmq.Context | None = None):
+    def __init__(self, cfg: BridgeConfig, *, context: zmq.Context | None = None,
+                 write_password: str | None = None):
         self.cfg = cfg
         self.name = cfg.name
         self.units = {m["name"]: m["unit"] for m in cfg.items["model"]}
@@ -211,6 +365,8 @@ class OpcUaOut:
         # bench and the tests wait on it)
         self.last_t: dict[str, float] = {}
         self.changed = asyncio.Event()
+        self.writer = (_Writer(cfg, self.metrics, self.rlog, password=write_password)
+                       if cfg.write_server is not None else None)
 
     def stop(self) -> None:
         self._stop.set()
@@ -223,6 +379,9 @@ class OpcUaOut:
         await s.init()
         s.set_endpoint(c.endpoint)
         s.set_server_name(f"posteriord predictions ({self.name})")
+        uri = certificate_uri(c.certificate)
+        if uri:  # OPC UA Part 4: the server's application URI is its certificate's
+            await s.set_application_uri(uri)
         if c.security_policy == "Basic256Sha256":
             await s.load_certificate(c.certificate)
             await s.load_private_key(c.private_key)
@@ -290,6 +449,16 @@ class OpcUaOut:
     async def run(self) -> None:
         if self.server is None:
             await self.open()
+        writer = None if self.writer is None else asyncio.create_task(
+            self.writer.run(self._stop))
+        try:
+            await self._serve()
+        finally:
+            if writer is not None:
+                self._stop.set()
+                await writer
+
+    async def _serve(self) -> None:
         loop = asyncio.get_running_loop()
         wake = asyncio.Event()
         fd = self.sub.getsockopt(zmq.FD)
@@ -317,27 +486,28 @@ class OpcUaOut:
                 self.metrics.drop(model[:100] or "?", "unknown_model")
                 return
             self.metrics.received.labels(self.name, model).inc()
-            write = self.server.write_attribute_value
+            values = []  # (variable, value, variant type, status code, source time)
             if kind == "pred":
                 row = prediction_rows(body)[-1]
                 code = quality(row["status"], row["trust"])
-                for var in self.NUMBERS:
-                    await write(nodes[var].nodeid, _datavalue(
-                        row[var.lower()], ua.VariantType.Double, code, row["t"]))
+                values += [(var, row[var.lower()], ua.VariantType.Double, code, row["t"])
+                           for var in self.NUMBERS]
                 level = body.get("level")
                 if isinstance(level, float):
-                    await write(nodes["Level"].nodeid, _datavalue(
-                        level, ua.VariantType.Double, GOOD, row["t"]))
-                for var in ("Status", "Trust"):
-                    await write(nodes[var].nodeid, _datavalue(
-                        str(row[var.lower()]), ua.VariantType.String, GOOD, row["t"]))
+                    values.append(("Level", level, ua.VariantType.Double, GOOD, row["t"]))
+                values += [(var, str(row[var.lower()]), ua.VariantType.String, GOOD, row["t"])
+                           for var in ("Status", "Trust")]
                 self.last_t[model] = row["t"]
             elif kind == "fit":
                 t, y = float(body["t"]), float(body["y"])
-                await write(nodes["LabValue"].nodeid, _datavalue(
-                    y, ua.VariantType.Double, GOOD, t))
-                await write(nodes["LabTime"].nodeid, _datavalue(
-                    _dt.datetime.fromtimestamp(t, _dt.UTC), ua.VariantType.DateTime, GOOD, t))
+                values += [("LabValue", y, ua.VariantType.Double, GOOD, t),
+                           ("LabTime", _dt.datetime.fromtimestamp(t, _dt.UTC),
+                            ua.VariantType.DateTime, GOOD, t)]
+            write = self.server.write_attribute_value
+            for var, value, vtype, code, t in values:
+                await write(nodes[var].nodeid, _datavalue(value, vtype, code, t))
+                if self.writer is not None:
+                    self.writer.offer(model, var, value, vtype, code, t)
             self.written += 1
             self.metrics.published.labels(self.name, model).inc()
             self.changed.set()

@@ -20,6 +20,7 @@ from daemon.config.kinds import (
     BOOLEAN,
     DURATION,
     ENDPOINT,
+    GE0,
     GT0,
     HOST_PORT,
     INTEGER,
@@ -56,6 +57,9 @@ QOS = _Check("0, 1 or 2", lambda v: v in (0, 1, 2))
 PORT = _Check("in 1..65535", lambda v: 1 <= v <= 65535)
 POLICY = _choice("none", "Basic256Sha256")
 MODE = _choice("sign_and_encrypt", "sign")
+# the variables of a model served by [opcua_out] (daemon/bridges/opcua_out.py)
+VARIABLE = _choice("Mean", "Std", "Lo", "Hi", "Level", "Status", "Trust", "LabValue",
+                   "LabTime")
 
 BRIDGE_SECTIONS: tuple[Section, ...] = (
     Section("opcua_in", "[opcua_in]",
@@ -77,6 +81,12 @@ BRIDGE_SECTIONS: tuple[Section, ...] = (
     Section("opcua_out.model", "[[opcua_out.model]]",
             "Engineering unit of a model's prediction (models not listed have none).",
             array=True),
+    Section("opcua_out.write", "[[opcua_out.write]]",
+            "Optionally, the same values written to a node of an existing server (a DCS, a "
+            "historian, a plant-wide server), the bridge being its client (`write_server` and "
+            "the `write_` keys of `[opcua_out]`). One table per node; each write carries the "
+            "status code and source timestamp of the served variable unless "
+            "`write_timestamps = false`.", array=True),
     Section("mqtt", "[mqtt]",
             "The MQTT bridge (`posteriord bridge mqtt`): JSON input samples and lab results "
             "from `<prefix>/in/<model>` to the feed, predictions to `<prefix>/pred/<model>` "
@@ -100,6 +110,13 @@ BRIDGE_SETTINGS: tuple[Setting, ...] = (
             "Sampling interval asked of the server for every node (deadband none).", GT0),
     Setting("opcua_in", "publishing_interval", "publishing_interval", DURATION, 1.0,
             "Publishing interval of the subscription.", GT0),
+    Setting("opcua_in", "queue_size", "queue_size", INTEGER, 0,
+            "Values the server keeps per node between two publications (the monitored "
+            "item's queue; when it overflows the oldest is lost). A burst of changes "
+            "between two publishing intervals arrives whole, one row per value. 0: twice "
+            "the samplings in a publishing interval, so that a publication late by a whole "
+            "interval loses nothing.", GE0,
+            default_doc="0 (2 × publishing_interval / sampling_interval)"),
     Setting("opcua_in", "reconnect_ivl", "reconnect_ivl", DURATION, 1.0,
             "First wait before reconnecting; doubled on each failure.", GT0),
     Setting("opcua_in", "reconnect_ivl_max", "reconnect_ivl_max", DURATION, 60.0,
@@ -157,10 +174,46 @@ BRIDGE_SETTINGS: tuple[Setting, ...] = (
             '"" allows no user name.'),
     Setting("opcua_out", "anonymous", "anonymous", BOOLEAN, False,
             "Allow anonymous sessions (read-only either way)."),
+    Setting("opcua_out", "write_server", "write_server", OPC_URL, None,
+            "Address of an existing server the values are also written to (see "
+            "`[[opcua_out.write]]`); not set: none."),
+    Setting("opcua_out", "write_security_policy", "write_security_policy", POLICY, "none",
+            "Security policy of that connection (as `security_policy`)."),
+    Setting("opcua_out", "write_security_mode", "write_security_mode", MODE,
+            "sign_and_encrypt", "Message security of that connection."),
+    Setting("opcua_out", "write_certificate", "write_certificate", PATH, "",
+            "The bridge's client certificate for that server (DER or PEM)."),
+    Setting("opcua_out", "write_private_key", "write_private_key", PATH, "",
+            "The private key of that certificate (PEM)."),
+    Setting("opcua_out", "write_server_certificate", "write_server_certificate", PATH, "",
+            "That server's certificate; the bridge refuses a server presenting another."),
+    Setting("opcua_out", "write_user", "write_user", STRING, None,
+            "User name on that server; not set: anonymous (needs `write_anonymous = true`)."),
+    Setting("opcua_out", "write_password_file", "write_password_file", PATH, "",
+            "File holding that user's password (first line)."),
+    Setting("opcua_out", "write_anonymous", "write_anonymous", BOOLEAN, False,
+            "Write in an anonymous session when no `write_user` is set."),
+    Setting("opcua_out", "write_timestamps", "write_timestamps", BOOLEAN, True,
+            "Write the status code and the source timestamp with each value; false writes "
+            "the value alone (for servers that refuse them: BadWriteNotSupported)."),
+    Setting("opcua_out", "write_timeout", "write_timeout", DURATION, 4.0,
+            "Request timeout of that connection; a server silent this long counts as lost.",
+            GT0),
+    Setting("opcua_out", "reconnect_ivl", "reconnect_ivl", DURATION, 1.0,
+            "First wait before reconnecting to `write_server`; doubled on each failure.", GT0),
+    Setting("opcua_out", "reconnect_ivl_max", "reconnect_ivl_max", DURATION, 60.0,
+            "Longest wait between reconnection attempts.", GT0),
     # [[opcua_out.model]]
     Setting("opcua_out.model", "name", "name", NAME, REQUIRED, "The model."),
     Setting("opcua_out.model", "unit", "unit", STRING, REQUIRED,
             'Engineering unit of the prediction, e.g. "%wt" or "degC".'),
+    # [[opcua_out.write]]
+    Setting("opcua_out.write", "model", "model", NAME, REQUIRED, "The model."),
+    Setting("opcua_out.write", "variable", "variable", VARIABLE, REQUIRED,
+            "Which of its served variables."),
+    Setting("opcua_out.write", "node", "node", NODE_ID, REQUIRED,
+            "The node of the existing server written to (Double or Float for the numbers, "
+            "String for Status and Trust, DateTime for LabTime)."),
     # [mqtt]
     Setting("mqtt", "name", "name", NAME, "mqtt", "Name of the bridge (`src`, metrics)."),
     Setting("mqtt", "host", "host", STRING, "127.0.0.1", "The broker's host."),
@@ -201,6 +254,10 @@ BRIDGE_RULES = (
     "`[opcua_in]`: every `node` and `lab` names a configured model (and tag); a model named "
     "by one node has a node for every input.",
     "`[opcua_out]`: an endpoint other than loopback needs a security policy.",
+    "`[opcua_out]`: `[[opcua_out.write]]` tables need a `write_server`, and a `write_server` "
+    "at least one of them; a `write_user` needs a `write_password_file`; without one, "
+    "`write_anonymous = true`; a `write_security_policy` other than `\"none\"` needs "
+    "`write_certificate` and `write_private_key`.",
     "`reconnect_ivl_max` >= `reconnect_ivl`.",
 )
 
@@ -331,8 +388,36 @@ def _rules(cfg: BridgeConfig, raw: dict, ctx) -> None:
             if m["name"] not in by_name:
                 raise ctx.error(f"{s}.model[{i}].name", "the name of a [[model]]",
                                 _show(m["name"]))
+        _write_rules(cfg, ctx, by_name)
     if s == "mqtt" and v["user"] is not None and not v["password_file"]:
         raise ctx.error(f"{s}.password_file", "a file (required with user)", _show(REQUIRED))
+
+
+def _write_rules(cfg: BridgeConfig, ctx, by_name: dict) -> None:
+    s, v, writes = cfg.section, cfg.values, cfg.items["write"]
+    for i, w in enumerate(writes):
+        if w["model"] not in by_name:
+            raise ctx.error(f"{s}.write[{i}].model", "the name of a [[model]] "
+                            f"({', '.join(by_name) or 'none configured'})", _show(w["model"]))
+    if v["write_server"] is None:
+        if writes:
+            raise ctx.error(f"{s}.write_server", "the address of the server that "
+                            "[[opcua_out.write]] writes to", _show(REQUIRED))
+        return
+    if not writes:
+        raise ctx.error(f"{s}.write", "at least one [[opcua_out.write]] (with write_server)",
+                        "nothing")
+    if v["write_user"] is not None and not v["write_password_file"]:
+        raise ctx.error(f"{s}.write_password_file", "a file (required with write_user)",
+                        _show(REQUIRED))
+    if v["write_user"] is None and not v["write_anonymous"]:
+        raise ctx.error(f"{s}.write_user", "a user name, or write_anonymous = true",
+                        _show(REQUIRED))
+    if v["write_security_policy"] != "none":
+        for key in ("write_certificate", "write_private_key"):
+            if not v[key]:
+                raise ctx.error(f"{s}.{key}", "a file (required with write_security_policy = "
+                                f"\"{v['write_security_policy']}\")", _show(REQUIRED))
 
 
 def bridges_markdown() -> str:

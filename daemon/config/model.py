@@ -23,6 +23,9 @@ MODEL_STATE_SCHEMA = "posteriord.model-config/1"
 # default) and left out of the fingerprint while at their default, so that models
 # configured before they existed keep their fingerprints and learned state.
 _ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift")
+# Descriptive settings added after the schema above (not learning settings): absent from
+# older state folders, read as not set.
+_DESCRIPTIVE_LATER = ("target", "unit")
 
 
 @dataclass(frozen=True)
@@ -98,6 +101,8 @@ class ModelConfig:
     gate: float | None = _default("model.gate", "k")
     gate_release: int = _default("model.gate", "release")
     level: float = _default("model", "level")
+    target: str | None = _default("model", "target")
+    unit: str | None = _default("model", "unit")
     keep: float = _default("model.lab", "keep")
     keep_count: int = _default("model.lab", "keep_count")
     tolerance: float = _default("model.lab", "tolerance")
@@ -215,7 +220,8 @@ class ModelConfig:
             got = state.get("schema") if isinstance(state, dict) else type(state).__name__
             raise ValueError(f"model config schema must be {MODEL_STATE_SCHEMA!r}, got {got!r}")
         names = {f.name for f in fields(cls)}
-        state = {**{k: _default("model.forgetting", k) for k in _ADDED_LATER}, **state}
+        state = {**{k: _default("model.forgetting", k) for k in _ADDED_LATER},
+                 **{k: _default("model", k) for k in _DESCRIPTIVE_LATER}, **state}
         keys = set(state) - {"schema"}
         if keys != names:
             raise ValueError(f"model config keys differ from the settings: missing "

@@ -247,6 +247,14 @@ SETTINGS: tuple[Setting, ...] = (
             "Model name, unique across models; also the topic of its messages."),
     Setting("model", "level", "level", NUMBER, 0.95,
             "Probability of the published prediction interval.", OPEN01),
+    Setting("model", "target", "target", STRING, None,
+            "The lab column of the historian export this model predicts (its tag, as "
+            "`tune` prints it). Written by `tune`; `tune`, `backtest` and `replay` read it, "
+            "so `--target` need not be repeated (`--target` still overrides)."),
+    Setting("model", "unit", "unit", STRING, None,
+            'Engineering unit of the target, e.g. `"ppm"` or `"%"` (written by `tune` from '
+            "the export's units row or `--unit`). Shown in the tables of `tune`, `backtest`, "
+            "`ctl`, in `watch`, in record files and on the report's axes."),
     # inputs = [{...}, ...]
     Setting("model.inputs", "tag", "tag", TAG, REQUIRED, "Tag name of the reading.",
             learning=True),

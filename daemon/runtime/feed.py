@@ -46,6 +46,8 @@ from collections import Counter
 import zmq
 from zmq.utils.monitor import parse_monitor_message
 
+from daemon.logsetup import RateLimitedLog
+
 CAUSES = ("handshake_failed", "protocol_error", "publisher_gone")
 LOG_INTERVAL = 10.0  # seconds between two log lines of the same endpoint and cause
 
@@ -74,27 +76,6 @@ class FeedStats:
         self.disconnects: Counter = Counter({ep: 0 for ep in self.endpoints})
         self.reconnects: Counter = Counter({ep: 0 for ep in self.endpoints})
         self.failures: Counter = Counter({(ep, c): 0 for ep in self.endpoints for c in CAUSES})
-
-
-class _Limiter:
-    """At most one log line per key and ``interval`` seconds, counting the ones held back."""
-
-    def __init__(self, logger: logging.Logger, interval: float = LOG_INTERVAL):
-        self._log = logger
-        self._interval = interval
-        self._last: dict = {}
-        self._held: Counter = Counter()
-
-    def __call__(self, level: int, key, fmt: str, *args) -> None:
-        now = time.monotonic()
-        last = self._last.get(key)
-        if last is not None and now - last < self._interval:
-            self._held[key] += 1
-            return
-        self._last[key] = now
-        n = self._held.pop(key, 0)
-        more = f" ({n} more since the last report)" if n else ""
-        self._log.log(level, fmt + "%s", *args, more)
 
 
 class _Endpoint:
@@ -134,7 +115,7 @@ class Feed:
         self.ivl_max = float(daemon.reconnect_ivl_max)
         self.stats = stats
         self._log = logger
-        self._say = _Limiter(logger)
+        self._say = RateLimitedLog(logger, LOG_INTERVAL)
         sub = self.sock = ctx.socket(zmq.SUB)
         sub.setsockopt(zmq.LINGER, 0)
         sub.setsockopt(zmq.RCVHWM, daemon.hwm)

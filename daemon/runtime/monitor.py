@@ -79,6 +79,8 @@ class Monitor:
         self.pred_active: dict = {}
         self.last = dict(_LAST)
         self.clock: float | None = None
+        # the last ParamDrift step, whose KL is computed on request (view)
+        self._drift_step = None
 
     def reset(self) -> None:
         """Forget all detector state (with the model's reset)."""
@@ -140,10 +142,13 @@ class Monitor:
                 self.std.step(step.std, learn=True)
         if step.accepted:
             self.region.update(np.asarray(x, dtype=float))
-            cov = post.scale_matrix
-            if np.all(np.isfinite(cov)):
-                d = self.drift.step(clock, post.mean, cov)
-                self.last["drift"], self.last["kl"] = d.mahalanobis, d.kl
+            if post.identified:
+                # from the posterior's own square-root factor: no covariance, no Cholesky;
+                # the KL is computed when the detectors view asks for it
+                d = self.drift.step_sqrt(clock, post.mean, post.sqrt_information,
+                                         post.noise_var)
+                self.last["drift"], self.last["kl"] = d.mahalanobis, math.nan
+                self._drift_step = d
                 if cfg.drift_limit > 0 and d.mahalanobis > cfg.drift_limit:
                     act["param_drift"] = (1, d.mahalanobis, cfg.drift_limit)
                 else:
@@ -239,6 +244,18 @@ class Monitor:
             trust.append(self.trust.state)
         return trust, marks
 
+    def on_prediction_row(self, t: float, x: list, std: float, leverage: float,
+                          last_lab_t: float | None) -> tuple[list, list]:
+        """:meth:`on_prediction_rows` of one row (``x`` the raw inputs as floats), in plain
+        float arithmetic: the same values, bit for bit, and the same step."""
+        cfg = self.cfg
+        dist = None
+        if cfg.region_limit > 0 and self.region.count > len(cfg.inputs):
+            dist = self.region.distance_row(x)
+        ev = self._pred_step(t, std, leverage, dist, int(self.basis.row_out_of_range(x)),
+                             last_lab_t)
+        return [self.trust.state], [(0, ev)] if ev else []
+
     def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
         """True if no row would make a reason active and none is active or held now."""
         if self.lab_active or self.trust.level or self.trust.reasons:
@@ -301,11 +318,20 @@ class Monitor:
             "std": {"baseline": self.std.baseline, "ratio": self.last["std_ratio"]},
             "leverage": self.last["leverage"],
             "region_distance": self.last["region"],
-            "param_drift": {"mahalanobis": self.last["drift"], "kl": self.last["kl"]},
+            "param_drift": {"mahalanobis": self.last["drift"], "kl": self.kl},
             "out_of_range_rows": self.last["out_of_range"],
         }
 
+    @property
+    def kl(self) -> float:
+        """KL divergence of the weight posterior from the drift reference, at the last lab
+        result (computed now, on request; nan after a restore until the next result)."""
+        d = self._drift_step
+        return self.last["kl"] if d is None else d.kl
+
     def to_state(self) -> dict:
+        # ``last["kl"]`` is never computed for the state (only on request, by view()), so
+        # the state does not depend on whether the view was asked for
         return {
             "schema": SCHEMA,
             "cusum": self.cusum.to_state(), "spread": self.spread.to_state(),
@@ -341,6 +367,7 @@ class Monitor:
         last = d.get("last", {})
         self.last = {k: float(last.get(k, v)) for k, v in _LAST.items()}
         self.clock = d["clock"]
+        self._drift_step = None
 
 
 def _reasons(reasons) -> list[dict]:

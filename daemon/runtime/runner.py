@@ -41,6 +41,8 @@ _COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_l
 # lab results remembered for learning a late one in drawn-time order (besides the feature
 # buffer's span): each holds a snapshot, and a late result re-applies those drawn after it
 MAX_REWIND = 64
+# a visit with at most this many single samples takes the short path (_predict_few)
+_FEW = 4
 
 
 class _Offered:
@@ -96,6 +98,14 @@ def _blanked(pred: Prediction, rows: list) -> Prediction:
     return Prediction(**out)
 
 
+def _note(note: dict | None) -> dict:
+    """The audit fields of a freeze or resume: reason and who (strings), at (a time or None)."""
+    note = note or {}
+    at = note.get("at")
+    return {"reason": str(note.get("reason") or "")[:500], "by": str(note.get("by") or "")[:100],
+            "at": float(at) if isinstance(at, int | float) and math.isfinite(at) else None}
+
+
 def _drawn(entry: _Offered) -> float:
     return entry.t
 
@@ -125,6 +135,8 @@ class ModelRunner:
         # alert events waiting to be published by the service
         self.alerts: list[dict] = []
         self.frozen = False
+        # the last freeze or resume with its reason, who and when (see control)
+        self.learning_note: dict | None = None
         self.last_x_t: float | None = None
         # last sequence number per publisher (``src``; None for messages that name none)
         self.last_seq: dict = {}
@@ -192,7 +204,9 @@ class ModelRunner:
         """Count gaps in a publisher's sequence numbers on this model's topic.
 
         PUB/SUB drops silently when a queue is full. ``seq`` numbers one publisher's
-        messages on one topic; ``src`` tells publishers of the same topic apart.
+        messages on one topic; ``src`` tells publishers of the same topic apart. A number
+        not above the last one is a publisher that started again (a bridge restarted):
+        one gap, of a size nobody knows (nothing added to the lost messages).
         """
         if seq is None:
             return
@@ -200,6 +214,8 @@ class ModelRunner:
         if last is not None and seq > last + 1:
             self.n_gaps += 1
             self.n_lost += seq - last - 1
+        elif last is not None and seq <= last:
+            self.n_gaps += 1
         if len(self.last_seq) >= _MAX_SOURCES and src not in self.last_seq:
             self.last_seq.pop(next(iter(self.last_seq)))  # bounded: the first seen goes
         self.last_seq[src] = seq
@@ -259,6 +275,10 @@ class ModelRunner:
         posterior cannot promise that for a batch (`Posterior.rowwise`), rows are predicted
         one at a time.
         """
+        if singles and 0 < len(ts) <= _FEW and not self.delayed:
+            batch = self._predict_few(ts, rows, ids)
+            if batch is not None:
+                return batch
         t = np.asarray(ts, dtype=float)
         X = np.asarray(rows, dtype=float)
         waiting = None
@@ -272,6 +292,43 @@ class ModelRunner:
         else:
             pred = self.post.predict(self.basis(X), t=t)
         return self._finish(ts, t, X, ids, pred, singles, waiting)
+
+    def _predict_few(self, ts: list, rows, ids: list) -> PredBatch | None:
+        """:meth:`predict` of a few single samples (most visits have one): one kernel call
+        (`Posterior.predict_rows`) and plain float arithmetic for the distribution, the
+        interval, the detectors and the status, with the same bits as the general path
+        (tested against it). None where that path does not apply (the general one then
+        runs): a posterior that is not row by row, or not identified yet."""
+        xs = [np.array(r, dtype=float).tolist() for r in rows]
+        basis = self.basis
+        P = basis.row_terms(xs[0]) if len(xs) == 1 else np.concatenate(
+            [basis.row_terms(x) for x in xs])
+        out = self.post.predict_rows(P, ts, self.cfg.level)
+        if out is None:
+            return None
+        mean, std, var, lo, hi, dof, lev = out
+        k = len(ts)
+        trust, marks = None, ()
+        last = self.last_lab_t
+        if self.monitor is not None:
+            # each row stepped as if it had come alone: what on_prediction_rows publishes
+            # (its shortcut for quiet rows steps only the last one, to the same effect)
+            step = self.monitor.on_prediction_row
+            trust, marks = [], []
+            for j in range(k):
+                tr, mk = step(ts[j], xs[j], std[j], lev[j], last)
+                trust += tr
+                if mk:
+                    marks.append((j, mk[0][1]))
+        if not self.post.identified or self.frozen or last is None:
+            status = [self.status_at(ts[0])] * k
+        else:
+            sa = self.cfg.stale_after
+            status = ["stale" if t - last > sa else "learning" for t in ts]
+        self.n_predictions += k
+        self.last_mean, self.last_std = mean[-1], std[-1]
+        a = np.array((ts, mean, std, var, lo, hi, dof), dtype=float)
+        return PredBatch(a[0], ids, a[1], a[2], a[3], a[4], a[5], a[6], status, trust, marks)
 
     def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
         """The rows the predictions at ``ts`` use: each input at t - its dead time, looked
@@ -593,16 +650,22 @@ class ModelRunner:
             del offered[:n]
 
     # ------------------------------------------------------------------ control
-    def control(self, cmd: str) -> None:
+    def control(self, cmd: str, note: dict | None = None) -> None:
         """Apply a control action (:data:`CONTROLS`), live and in replay.
 
         Alert events it causes are queued on :attr:`alerts`. ``acknowledge`` needs the
-        monitor (raises ValueError without one).
+        monitor (raises ValueError without one). ``note`` (``freeze`` and ``resume``) is
+        the audit trail of the action, ``{"reason", "by", "at"}`` (``at``: wall-clock time
+        of the request); it is kept as :attr:`learning_note`, shown by ``status`` and
+        published as an ``action`` alert.
         """
-        if cmd == "freeze":
-            self.frozen = True
-        elif cmd == "resume":
-            self.frozen = False
+        if cmd in ("freeze", "resume"):
+            self.frozen = cmd == "freeze"
+            note = _note(note)
+            self.learning_note = {"action": cmd, **note}
+            if self.monitor is not None:
+                self.alerts.append({"t": self.last_x_t, "kind": "action", "action": cmd,
+                                    "reason": note["reason"], "by": note["by"]})
         elif cmd == "reset":
             self.reset()
             if self.monitor is not None:
@@ -622,9 +685,12 @@ class ModelRunner:
     def status(self) -> dict:
         p = self.post
         return {
+            "target": self.cfg.target,
+            "unit": self.cfg.unit,
             "updates": p.n_updates,
             "identified": p.identified,
             "frozen": self.frozen,
+            "learning_note": self.learning_note,
             "last_lab_t": self.last_lab_t,
             "last_sample_t": self.last_x_t,
             "std": self.last_std,
@@ -652,6 +718,8 @@ class ModelRunner:
     def posterior(self) -> dict:
         p = self.post
         return {
+            "target": self.cfg.target,
+            "unit": self.cfg.unit,
             "terms": list(self.basis.names),
             "mean": p.mean.tolist(),
             "cov": p.cov.tolist(),
@@ -660,6 +728,58 @@ class ModelRunner:
             "updates": p.n_updates,
             "t_last": p.t_last,
         }
+
+    def operating_point(self, at: dict | None = None) -> tuple[np.ndarray, str, float | None]:
+        """The input point sensitivities are taken at: ``(x, source, t)``.
+
+        ``at`` ({tag: value}, each tag of the model) gives it; else the readings a lab sample
+        drawn at the last sample time would be learned with (each input at ``t - dead
+        time``), as the last prediction used them; else the centre of the instrument ranges.
+        """
+        if at is not None:
+            missing = [tag for tag in self.tags if tag not in at]
+            unknown = [tag for tag in at if tag not in self.index]
+            if missing or unknown:
+                raise ValueError(f"\"at\" must give every input of {self.name} "
+                                 f"({', '.join(self.tags)}): missing {missing}, "
+                                 f"unknown {unknown}")
+            x = np.array([float(at[tag]) for tag in self.tags])
+            if not np.isfinite(x).all():
+                raise ValueError(f"\"at\" values must be finite numbers, got {at!r}")
+            return x, "given", None
+        t = self.last_x_t
+        row = None if t is None else self.aligner.lookup(t)
+        if row is not None and all(math.isfinite(v) for v in row):
+            return np.array(row, dtype=float), "last sample", t
+        centre = [(float(i.lo) + float(i.hi)) / 2.0 for i in self.cfg.inputs]
+        return np.array(centre), "range centre", None
+
+    def sensitivities(self, at: dict | None = None) -> dict:
+        """dy/dx of the posterior mean model in engineering units, with its std.
+
+        ``sensitivity[i] = w @ J[:, i]`` with ``J = basis.jacobian(x0)`` (target units per
+        unit of input ``i``) and ``std[i] = sqrt(J[:, i]' C J[:, i])`` with the weights'
+        posterior covariance ``C``; at the operating point of :meth:`operating_point`
+        (it matters only for bases of degree 2 or more).
+        """
+        x0, source, t = self.operating_point(at)
+        sens, std = [], []
+        # nan or inf where the posterior is not identified yet, or a reading overflows
+        with np.errstate(invalid="ignore", over="ignore"):
+            J = self.basis.jacobian(x0)
+            w = self.post.mean
+            cov = self.post.cov
+            for i in range(len(self.tags)):
+                g = J[:, i]
+                used = np.flatnonzero(g)
+                sens.append(float(w[used] @ g[used]))
+                var = float(g[used] @ cov[np.ix_(used, used)] @ g[used]) if used.size else 0.0
+                std.append(math.sqrt(var) if var >= 0 else math.nan)
+        degree = int(self.basis.exponents.sum(axis=1).max())
+        return {"unit": self.cfg.unit, "inputs": list(self.tags), "sensitivity": sens,
+                "std": std,
+                "at": {"source": source, "t": t, "x": x0.tolist()},
+                "depends_on_point": degree > 1}
 
     # ------------------------------------------------------------------ persistence
     def to_state(self) -> dict:
@@ -674,6 +794,7 @@ class ModelRunner:
             "aligner": al,
             "ids": [[k, float(t)] for k, t in self.ids.items()],
             "frozen": self.frozen,
+            "learning_note": self.learning_note,
             "last_x_t": self.last_x_t,
             "last_seq": self.last_seq.get(None),
             "last_seqs": [[k, v] for k, v in self.last_seq.items() if k is not None],
@@ -751,6 +872,10 @@ class ModelRunner:
                 r.monitor.load_state(state["monitor"])
             r.ids = OrderedDict((k, float(t)) for k, t in state["ids"])
             r.frozen = bool(state["frozen"])
+            # absent from states written before freeze took a reason
+            note = state.get("learning_note")
+            r.learning_note = None if note is None else {"action": str(note["action"]),
+                                                         **_note(note)}
             r.last_x_t = state["last_x_t"]
             r.last_seq = {} if state["last_seq"] is None else {None: int(state["last_seq"])}
             for k, v in state.get("last_seqs", ()):

@@ -27,12 +27,14 @@ import contextlib
 import gc
 import logging
 import math
+import re
 import signal
 import socket
 import threading
 import time
 from collections import Counter, deque
 from contextlib import contextmanager
+from datetime import UTC, datetime
 
 import numpy as np
 import zmq
@@ -40,6 +42,7 @@ from prometheus_client import CollectorRegistry, start_http_server
 
 from daemon.config import ModelConfig
 from daemon.exitcodes import EXIT_DURABILITY, EXIT_OK
+from daemon.logsetup import RateLimitedLog
 from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
@@ -66,8 +69,8 @@ class StateError(StoreError):
     """The state folder is intact but its content cannot be used (schema, bad record)."""
 
 PUB_LINGER_MS = 2000
-COMMANDS = ("ping", "status", "posterior", "detectors", "acknowledge", "freeze", "resume",
-            "reset", "checkpoint", "reload")
+COMMANDS = ("ping", "status", "posterior", "sensitivities", "detectors", "acknowledge",
+            "freeze", "resume", "reset", "checkpoint", "reload")
 
 
 # most single samples of a model with dead times predicted together (see _feed)
@@ -92,26 +95,41 @@ class _Pending:
         self.block = block
 
 
-class RateLimitedLog:
-    """Log a (model, reason) at most once per ``interval`` seconds, counting the rest."""
+# an epoch time in seconds between 2001 and 2286 as the runner's messages write it
+_EPOCH = re.compile(r"(?<![\d.e+-])(\d{10}(?:\.\d+)?)(?![\d.e])")
 
-    def __init__(self, logger: logging.Logger, interval: float = 10.0):
-        self._log = logger
-        self._interval = interval
-        self._last: dict = {}
-        self._suppressed: Counter = Counter()
 
-    def warn(self, model: str, reason: str, detail: str) -> None:
-        key = (model, reason)
-        now = time.monotonic()
-        last = self._last.get(key)
-        if last is not None and now - last < self._interval:
-            self._suppressed[key] += 1
-            return
-        n = self._suppressed.pop(key, 0)
-        self._last[key] = now
-        more = f" ({n} more since last report)" if n else ""
-        self._log.warning("rejected model=%s reason=%s: %s%s", model or "-", reason, detail, more)
+def iso(t) -> str:
+    """A sample time (epoch seconds) as ISO 8601 UTC, for log lines; ``-`` if none."""
+    try:
+        return datetime.fromtimestamp(float(t), UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    except (TypeError, ValueError, OverflowError, OSError):
+        return "-"
+
+
+def with_iso_times(text: str) -> str:
+    """``text`` with each epoch time in it followed by its ISO form, so that a log line
+    says which sample it is about: ``t=1767571200.0 (2026-01-05T00:00:00Z)``."""
+    return _EPOCH.sub(lambda m: f"{m[1]} ({iso(m[1])})", text)
+
+
+class _IsoTimes:
+    """A log detail whose epoch times get their ISO form only when the line is written."""
+
+    __slots__ = ("text",)
+
+    def __init__(self, text: str):
+        self.text = text
+
+    def __str__(self) -> str:
+        return with_iso_times(self.text)
+
+
+class _RejectLog(RateLimitedLog):
+    """The rejection log: a held-back line costs no formatting."""
+
+    def warn(self, key: str, reason: str, detail: str) -> bool:
+        return super().warn(key, reason, _IsoTimes(detail))
 
 
 class Service:
@@ -140,7 +158,7 @@ class Service:
         self._own_ctx = context is None
         self._events: deque = deque()
         self._stop = False
-        self._rlog = RateLimitedLog(log)
+        self._rlog = _RejectLog(log, template="rejected model=%s reason=%s: %s")
         self._wake_r = self._wake_w = None
         self._http = None
         self.sub = self.pub = self.rep = None
@@ -301,7 +319,8 @@ class Service:
         if runner is None:
             raise StateError(f"record for model {name!r}, which the state does not hold")
         if kind == "ctl":
-            runner.control(record["cmd"])
+            # "note": the reason, who and when of a freeze or resume (absent in older logs)
+            runner.control(record["cmd"], record.get("note"))
             return
         try:
             runner.replay(record, snapshot)
@@ -490,8 +509,12 @@ class Service:
     def run(self) -> int:
         if self.sub is None:
             self.open()
-        log.info("ready: %d model(s), publishing on %s, control on %s", len(self.runners),
-                 self.publish_endpoint, self.control_endpoint)
+        metrics = self.metrics_address
+        log.info("ready: %d model(s); feed from %s, publishing on %s, control on %s, %s",
+                 len(self.runners), ", ".join(self.config.daemon.feeds), self.publish_endpoint,
+                 self.control_endpoint,
+                 "metrics off" if metrics is None
+                 else f"metrics on http://{_host(metrics[0])}:{metrics[1]}/metrics")
         # start-up objects never become garbage: keep them out of every later collection
         gc.freeze()
         self.ready.set()
@@ -573,7 +596,8 @@ class Service:
         publisher that records what would have been sent.
         """
         max_bytes = self.config.daemon.max_message_bytes
-        specs = {name: r.spec for name, r in self.runners.items()}
+        # a view of the runners' specs, not a copy: nothing per model on each wake-up
+        specs = _Specs(self.runners)
         pending: dict[str, _Pending] = {}
         if not batch:
             return
@@ -785,10 +809,15 @@ class Service:
         for event in runner.alerts:
             event = {"model": runner.name, **event}
             if event["kind"] == "state":
-                log.warning("trust %s: %s -> %s (%s)", runner.name, event["old"], event["new"],
-                            ", ".join(r["name"] for r in event["reasons"]) or "no reasons")
+                log.warning("trust %s: %s -> %s (%s) at sample time %s", runner.name,
+                            event["old"], event["new"],
+                            ", ".join(r["name"] for r in event["reasons"]) or "no reasons",
+                            iso(event.get("t")))
+            elif event["kind"] == "action" and event["action"] in ("freeze", "resume"):
+                pass  # logged by the control command, with who and why
             elif event["kind"] == "action":
-                log.warning("%s: %s after %s", runner.name, event["action"], event["reason"])
+                log.warning("%s: %s after %s at sample time %s", runner.name, event["action"],
+                            event["reason"], iso(event.get("t")))
             self.pub.send_multipart([topic, wire.packb(event)])
         runner.alerts.clear()
 
@@ -853,31 +882,64 @@ class Service:
         name = msg.get("model")
         runner = self.runners.get(name) if isinstance(name, str) else None
         if runner is None:
-            return {"ok": False, "error": f"{cmd} needs \"model\": one of "
-                                          f"{', '.join(sorted(self.runners))}; "
-                                          f"got {wire.show(name)}"}
-        if cmd == "posterior":
-            return {"ok": True, "model": name, **runner.posterior()}
+            models = sorted(self.runners)
+            what = ("no model given" if name is None
+                    else f"no model {wire.show(name)} in this daemon")
+            return {"ok": False, "error": f"{cmd} needs a model ({what}); models: "
+                                          f"{', '.join(models) or 'none'}",
+                    "needs": "model", "models": models}
+        if cmd in ("posterior", "sensitivities"):
+            # "sensitivities": true adds them to the posterior (ctl asks for them)
+            at = msg.get("at")
+            if at is not None and not isinstance(at, dict):
+                return {"ok": False, "error": f"\"at\" must be a map {{tag: value}}, got "
+                                              f"{wire.show(at)}"}
+            sens = None
+            if cmd == "sensitivities" or msg.get("sensitivities"):
+                try:
+                    sens = runner.sensitivities(at)
+                except (ValueError, TypeError) as exc:
+                    return {"ok": False, "error": str(exc)[:300]}
+            if cmd == "sensitivities":
+                return {"ok": True, "model": name, **sens}
+            reply = {"ok": True, "model": name, **runner.posterior()}
+            if sens is not None:
+                reply["sensitivities"] = sens
+            return reply
         if cmd in ("detectors", "acknowledge"):
             if runner.monitor is None:
                 return {"ok": False, "error": f"alerts are disabled for {name} "
                                               "([model.alerts] enabled = false)"}
             if cmd == "detectors":
                 return {"ok": True, "model": name, **runner.monitor.view()}
-        self._control_action(runner, cmd)
+        note = None
+        if cmd in ("freeze", "resume"):
+            note, error = _control_note(msg)
+            if error:
+                return {"ok": False, "error": error}
+        self._control_action(runner, cmd, note)
         reply = {"ok": True, "model": name, "command": cmd}
+        if note is not None and (note["reason"] or note["by"]):
+            reply["note"] = runner.learning_note
         if cmd == "acknowledge":
             reply["state"] = runner.monitor.state
         return reply
 
-    def _control_action(self, runner: ModelRunner, cmd: str) -> None:
-        runner.control(cmd)
-        self._log({"k": "ctl", "m": runner.name, "cmd": cmd})
+    def _control_action(self, runner: ModelRunner, cmd: str, note: dict | None = None) -> None:
+        runner.control(cmd, note)
+        record = {"k": "ctl", "m": runner.name, "cmd": cmd}
+        if note is not None:
+            record["note"] = note
+        self._log(record)
         if self.store is not None:
             self.store.sync()  # acknowledged actions are durable in either fsync mode
         if self.pub is not None and runner.alerts:
             self._alerts(runner)
-        log.info("control: %s %s", cmd, runner.name)
+        if note is not None:
+            log.info("control: %s %s by %s: %s", cmd, runner.name, note["by"] or "(unnamed)",
+                     note["reason"] or "(no reason given)")
+        else:
+            log.info("control: %s %s", cmd, runner.name)
 
     def state_status(self) -> dict | None:
         """The state folder's part of the ``status`` reply (None in memory)."""
@@ -1075,11 +1137,51 @@ def _future_detail(ts, now: float) -> str:
             "daemon.future_tolerance); check the publisher's clock and time unit")
 
 
+class _Specs:
+    """What `wire.decode_feed` asks of the models: ``get(name)`` -> ``(tags, index)``.
+
+    Looks the runner up when asked, so the service builds nothing per model on a wake-up
+    and always sees its current runners.
+    """
+
+    __slots__ = ("_runners",)
+
+    def __init__(self, runners: dict):
+        self._runners = runners
+
+    def get(self, name):
+        r = self._runners.get(name)
+        return None if r is None else r.spec
+
+
 def _topic(frames) -> str:
     try:
         return bytes(frames[0]).decode("utf-8") if frames else ""
     except UnicodeDecodeError:
         return ""
+
+
+def _host(host: str) -> str:
+    return f"[{host}]" if ":" in host else host
+
+
+def _control_note(msg: dict) -> tuple[dict | None, str | None]:
+    """The reason and who of a freeze or resume request, and the wall-clock time it came.
+
+    Both are optional strings (``reason`` up to 500 characters, ``by`` up to 100); the time
+    is only an audit stamp, never used for learning.
+    """
+    note = {}
+    for key, limit in (("reason", 500), ("by", 100)):
+        value = msg.get(key, "")
+        if value is None:
+            value = ""
+        if not isinstance(value, str) or len(value) > limit:
+            return None, (f"{key} must be a text of at most {limit} characters, got "
+                          f"{wire.show(value)}")
+        note[key] = value
+    note["at"] = time.time()
+    return note, None
 
 
 def _plain(obj):

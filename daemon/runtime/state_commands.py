@@ -50,7 +50,7 @@ def start_failure(exc: BaseException) -> tuple[int, str]:
 def add_state_commands(sub) -> None:
     """Add ``state inspect|export|import`` to the ``posteriord`` sub-command parsers."""
     p = sub.add_parser("state", help="inspect a state folder; export or import a model")
-    ss = p.add_subparsers(dest="state_what", required=True)
+    ss = p.add_subparsers(dest="state_what", metavar="SUBCOMMAND")
     i = ss.add_parser("inspect", help="what a state folder holds (read-only, works while a "
                                       "daemon runs)")
     i.add_argument("dir", help="the state folder (daemon.state_dir)")
@@ -136,7 +136,11 @@ def _summarize_records(info: dict, first_after: int, models: dict) -> None:
                 m["lab_records_after"] += 1
                 m["last_lab_record_t"] = rec.get("t")
             elif kind == "ctl":
-                m["actions_after"].append(rec.get("cmd"))
+                note = rec.get("note") or {}
+                why = " ".join(part for part in (
+                    f"by {note['by']}" if note.get("by") else "",
+                    f"({note['reason']})" if note.get("reason") else "") if part)
+                m["actions_after"].append(f"{rec.get('cmd')} {why}".strip())
 
 
 def _new_entry(rec: dict) -> dict:

@@ -4,6 +4,7 @@ watch. `add_work_commands` registers them on the main command's subparsers."""
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
 import signal
 import sys
@@ -89,13 +90,32 @@ def _one_model(config, name):
     return models[0]
 
 
-def _history(args, tags):
-    """Read the CSV (all of it, before any long computation) and say what was read."""
+def _target(args, models) -> str | None:
+    """--target, else the models' configured ``target`` (one for all of them)."""
+    if args.target:
+        return args.target
+    targets = {m.target for m in models if m.target}
+    if len(targets) > 1:
+        raise _Fail(EXIT_USAGE, "the models have different targets ("
+                                + ", ".join(f"{m.name}: {m.target}" for m in models
+                                            if m.target)
+                                + "); choose one with --model or give --target")
+    return targets.pop() if targets else None
+
+
+def _history(args, tags, target=None):
+    """Read the CSV (all of it, before any long computation) and say what was read.
+
+    ``target``: the lab column when --target is not given (a model's configured target).
+    """
     from daemon.workbench.backtest import load_history
     from daemon.workbench.historian import reading_text
 
+    target = args.target or target
+    if target and not args.target:
+        print(f"target {target} (from the config; --target overrides)", file=sys.stderr)
     try:
-        history = load_history(args.data, tags, target=args.target, tz=args.tz,
+        history = load_history(args.data, tags, target=target, tz=args.tz,
                                time_format=args.time_format, progress=True,
                                time_column=args.time_column, delimiter=args.sep,
                                decimal=args.decimal)
@@ -108,10 +128,13 @@ def _history(args, tags):
     return history
 
 
-def _unit(args, history) -> str:
-    """--unit, else the target's unit from the file's units row or header."""
+def _unit(args, history, model=None) -> str:
+    """--unit, else the model's configured unit, else the target's unit from the file's units
+    row or header."""
     if getattr(args, "unit", None):
         return args.unit
+    if model is not None and model.unit:
+        return model.unit
     return history.summary.get("units", {}).get(history.target, "") or ""
 
 
@@ -200,8 +223,8 @@ def cmd_backtest(args) -> int:
     from daemon.workbench import backtest
 
     model = _one_model(_config(args.config), args.model)
-    history = _history(args, [i.tag for i in model.inputs])
-    unit = _unit(args, history)
+    history = _history(args, [i.tag for i in model.inputs], _target(args, [model]))
+    unit = _unit(args, history, model)
     try:
         res = backtest.backtest(history, model, train=args.train, lab_delay=args.lab_delay,
                                 block=args.block, unit=unit)
@@ -233,7 +256,7 @@ def cmd_tune(args) -> int:
 
     if args.config or args.model:
         base = _one_model(_config(args.config), args.model)
-        history = _history(args, [i.tag for i in base.inputs])
+        history = _history(args, [i.tag for i in base.inputs], _target(args, [base]))
         until = None if args.until is None else float(history.t[0]) + args.until
     else:
         history = _history(args, args.inputs or None)
@@ -262,13 +285,16 @@ def cmd_tune(args) -> int:
           f"{with_inputs} matched to inputs, {read - with_inputs} unmatched"
           + (_tolerance_hint(history, base) if read > with_inputs else "")
           + (f"; {late} drawn after --until not used" if late else ""), file=sys.stderr)
+    unit = _unit(args, history, base)
     try:
         res = tune.tune(history, base, until=until, burn_in=args.burn_in, policy=args.policy,
                         keep_outliers=args.keep_outliers, lab_delay=args.lab_delay)
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
-    print(tune.table_text(res, top=args.top, unit=_unit(args, history),
-                          source=os.path.basename(args.data)))
+    # the lab column and its unit go into the block, so later commands need no --target
+    res = dataclasses.replace(res, model=dataclasses.replace(
+        res.model, target=history.target, unit=unit or None))
+    print(tune.table_text(res, top=args.top, unit=unit, source=os.path.basename(args.data)))
     block = tune.model_toml(res.model, tune.header_comments(res, args.data))
     print()
     print(block, end="")
@@ -289,11 +315,15 @@ def cmd_report(args) -> int:
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
     k = h = stale = None
+    unit = args.unit
     if args.config:
         cfg = _one_model(_config(args.config), args.model or track.model or None)
         k, h, stale = cfg.cusum_k, cfg.cusum_h, cfg.stale_after
+        if cfg.target:
+            track.meta["target"] = cfg.target
+        unit = unit if unit is not None else cfg.unit
     try:
-        paths = report.report(track, args.out, unit=args.unit, title=args.title,
+        paths = report.report(track, args.out, unit=unit, title=args.title,
                               note=args.note, cusum_k=k, cusum_h=h, stale_after=stale)
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
@@ -310,7 +340,7 @@ def cmd_replay(args) -> int:
     config = _config(args.config)
     models = _models(config, args.model)
     tags = list(dict.fromkeys(i.tag for m in models for i in m.inputs))
-    history = _history(args, tags)
+    history = _history(args, tags, _target(args, models))
     try:
         messages = backtest.feed_messages(history, models, lab_delay=args.lab_delay,
                                           block=args.block)
@@ -373,31 +403,50 @@ def cmd_replay(args) -> int:
 def cmd_record(args) -> int:
     from daemon.workbench import live
 
-    endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
-                                 else _PUBLISH)
+    config = _config(args.config) if args.config else None
+    endpoint = args.endpoint or (config.daemon.publish if config else _PUBLISH)
     keys = _client_keys(args)
+    described = None
+    if config is not None:
+        described = {m.name: describe_model(m) for m in _models(config, args.model)}
     stop = _stop_on_signals()
+    counter = live.Counter(sys.stderr)
+    print(f"record: subscribed to {endpoint}; Ctrl-C stops", file=sys.stderr)
     try:
-        n = live.record(endpoint, args.out, models=args.model or (), stop=stop,
-                        duration=args.duration, count=args.count, curve=keys)
+        live.record(endpoint, args.out, models=args.model or (), stop=stop,
+                    duration=args.duration, count=args.count, curve=keys,
+                    described=described, counter=counter)
     except HandshakeError as exc:
         raise _Fail(EXIT_RUNTIME, f"{exc}; nothing recorded from it") from None
     except ValueError as exc:
         raise _Fail(EXIT_USAGE, str(exc)) from None
-    print(f"record: {n} messages appended to {args.out}", file=sys.stderr)
+    counter.done(args.out)
     return EXIT_OK
+
+
+def describe_model(m) -> dict:
+    """What a record file's header keeps of a model's config (for report and watch)."""
+    out = {"target": m.target, "unit": m.unit, "level": m.level, "cusum_k": m.cusum_k,
+           "cusum_h": m.cusum_h, "stale_after": m.stale_after}
+    return {k: v for k, v in out.items() if v is not None}
 
 
 def cmd_watch(args) -> int:
     from daemon.workbench import live
 
-    endpoint = args.endpoint or (_config(args.config).daemon.publish if args.config
-                                 else _PUBLISH)
+    config = _config(args.config) if args.config else None
+    endpoint = args.endpoint or (config.daemon.publish if config else _PUBLISH)
     keys = _client_keys(args)
+    known, units = (), {}
+    if config is not None:
+        watched = _models(config, args.model)
+        known = [m.name for m in watched]
+        units = {m.name: m.unit for m in watched if m.unit and not args.unit}
     stop = _stop_on_signals()
     try:
         live.watch(endpoint, models=args.model or (), unit=args.unit, duration=args.duration,
-                   count=args.count, refresh=args.refresh, stop=stop, curve=keys)
+                   count=args.count, refresh=args.refresh, stop=stop, curve=keys,
+                   known=known, units=units, events=args.events)
     except HandshakeError as exc:
         raise _Fail(EXIT_RUNTIME, str(exc)) from None
     return EXIT_OK
@@ -547,7 +596,11 @@ def add_work_commands(sub) -> None:
                                       f"{_PUBLISH})")
     w.add_argument("--config", help="TOML config to take the publish endpoint from")
     w.add_argument("--model", action="append", help="only this model (repeatable)")
-    w.add_argument("--unit", default="", help="unit of the targets, for the display")
+    w.add_argument("--unit", default="", help="unit of the targets, for the display "
+                                              "(default: each model's configured unit)")
+    w.add_argument("--events", type=int, default=8,
+                   help="event lines (lab results, trust changes) shown below the table on "
+                        "a terminal (default 8); elsewhere every event is printed")
     w.add_argument("--refresh", type=float, default=0.5, help="seconds between redraws")
     w.add_argument("--duration", type=_duration, help="stop after this long")
     w.add_argument("--count", type=int, help="stop after this many messages")

@@ -30,15 +30,18 @@ import struct
 import sys
 import threading
 import time
+from collections import deque
 from datetime import UTC, datetime
 
 import zmq
 
 from daemon.runtime import wire
+from daemon.runtime.control_text import decimals_for, fmt_number
 from daemon.runtime.security import ClientKeys, CurveServer, Handshake, apply_client
 
 __all__ = [
     "FORMAT",
+    "Counter",
     "RecordReader",
     "RecordWriter",
     "Screen",
@@ -63,7 +66,7 @@ MAX_FRAME = 1 << 28
 class RecordWriter:
     """Append messages to a record file, writing the header line if the file is new."""
 
-    def __init__(self, path, *, endpoint: str = "", topics=TOPICS):
+    def __init__(self, path, *, endpoint: str = "", topics=TOPICS, models: dict | None = None):
         self.path = os.fspath(path)
         exists = os.path.exists(self.path) and os.path.getsize(self.path) > 0
         if exists:
@@ -71,6 +74,9 @@ class RecordWriter:
         self._fh = open(self.path, "ab")
         if not exists:
             head = {"created": time.time(), "endpoint": endpoint, "topics": list(topics)}
+            if models:
+                # what the config says of each model: target tag, unit, level, detectors
+                head["models"] = models
             self._fh.write(f"{FORMAT} {json.dumps(head, sort_keys=True)}\n".encode("ascii"))
         self.n = 0
 
@@ -119,6 +125,9 @@ class RecordReader:
     def __init__(self, path, *, raw: bool = False):
         self.path = os.fspath(path)
         self.header, self._start = _read_header(self.path)
+        # optional: {model: {"target", "unit", ...}} when the recorder was given a config
+        self.models = self.header.get("models") if isinstance(self.header.get("models"),
+                                                              dict) else {}
         self.raw = raw
         self.truncated = False
         self.n = 0
@@ -283,17 +292,61 @@ def _wait(sock: zmq.Socket, hs: Handshake, ms: int) -> bool:
     return sock in ready
 
 
+class Counter:
+    """What a recording has taken so far, shown on ``stream`` (stderr), never in the file.
+
+    On a terminal one line is rewritten in place (at most every ``every_tty`` seconds);
+    elsewhere a line is printed every ``every`` seconds. `done` prints the final count.
+    """
+
+    def __init__(self, stream=None, *, every: float = 10.0, every_tty: float = 0.5):
+        self.stream = stream if stream is not None else sys.stderr
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.every = every_tty if self.tty else every
+        self.kinds = {"pred": 0, "fit": 0, "alert": 0}
+        self.n = 0
+        self.start = time.monotonic()
+        self._shown = self.start
+
+    def add(self, topic: bytes) -> None:
+        self.n += 1
+        kind = topic.partition(b"/")[0].decode("ascii", "replace")
+        if kind in self.kinds:
+            self.kinds[kind] += 1
+
+    def text(self) -> str:
+        kinds = ", ".join(f"{v} {k}" for k, v in self.kinds.items())
+        return (f"record: {self.n} message{'s' if self.n != 1 else ''} ({kinds}) in "
+                f"{_age(time.monotonic() - self.start)}")
+
+    def tick(self) -> None:
+        now = time.monotonic()
+        if now - self._shown < self.every:
+            return
+        self._shown = now
+        self.stream.write(("\r\x1b[K" if self.tty else "") + self.text()
+                          + ("" if self.tty else "\n"))
+        self.stream.flush()
+
+    def done(self, path) -> None:
+        self.stream.write(("\r\x1b[K" if self.tty else "") + self.text()
+                          + f", appended to {os.fspath(path)}\n")
+        self.stream.flush()
+
+
 def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Event | None = None,
            duration: float | None = None, count: int | None = None,
-           ctx: zmq.Context | None = None, curve: ClientKeys | None = None) -> int:
+           ctx: zmq.Context | None = None, curve: ClientKeys | None = None,
+           described: dict | None = None, counter: Counter | None = None) -> int:
     """Subscribe to ``endpoint`` and append every message to the record file ``path``.
 
     Runs until ``stop`` is set, ``duration`` seconds have passed or ``count`` messages were
     written; returns the number written. ``models`` restricts the topics to those models.
     The file is flushed whenever the stream pauses and at least every quarter second.
-    ``curve`` makes the subscriber a CURVE client. Raises
-    :class:`~daemon.runtime.security.HandshakeError` when the daemon refuses the connection
-    (what was written until then stays in the file).
+    ``curve`` makes the subscriber a CURVE client. ``described`` ({model: {"target",
+    "unit", ...}}, from the config) goes into the header of a new file; ``counter`` shows
+    the count while it runs. Raises :class:`~daemon.runtime.security.HandshakeError` when
+    the daemon refuses the connection (what was written until then stays in the file).
     """
     own = ctx is None
     ctx = ctx or zmq.Context()
@@ -301,13 +354,15 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
     deadline = None if duration is None else time.monotonic() + duration
     n = 0
     try:
-        with RecordWriter(path, endpoint=endpoint, topics=topics) as out:
+        with RecordWriter(path, endpoint=endpoint, topics=topics, models=described) as out:
             last_flush = time.monotonic()
             while (stop is None or not stop.is_set()) and (count is None or n < count):
                 now = time.monotonic()
                 if deadline is not None and now >= deadline:
                     break
                 wait = 100 if deadline is None else max(0, min(100, int((deadline - now) * 1e3)))
+                if counter is not None:
+                    counter.tick()
                 if not _wait(sock, hs, wait):
                     out.flush()
                     last_flush = time.monotonic()
@@ -321,6 +376,8 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
                         continue
                     out.write(time.time(), topic, payload)
                     n += 1
+                    if counter is not None:
+                        counter.add(topic)
                 if time.monotonic() - last_flush > 0.25:
                     out.flush()
                     last_flush = time.monotonic()
@@ -333,21 +390,49 @@ def record(endpoint: str, path, *, topics=TOPICS, models=(), stop: threading.Eve
 
 
 # ---------------------------------------------------------------------------------- watch
-def watch_state(endpoint: str = "", unit: str = "") -> dict:
-    """An empty view: fill it with `watch_update`, show it with `render`."""
-    return {"endpoint": endpoint, "unit": unit, "now": None, "models": {}}
+#: event lines kept in a watch view (lab results, trust changes, actions)
+EVENTS_KEPT = 200
 
 
-def watch_update(state: dict, topic: str, body: dict, received: float) -> None:
-    """Take one daemon message into the view (the last prediction, fit and alert per model)."""
+def watch_state(endpoint: str = "", unit: str = "", *, models=(),
+                units: dict | None = None) -> dict:
+    """An empty view: fill it with `watch_update`, show it with `render`.
+
+    ``models``: names known in advance (from the config), shown before their first message;
+    ``units``: {model: unit} (the config's ``unit``), else ``unit`` for every model.
+    """
+    state = {"endpoint": endpoint, "unit": unit, "units": dict(units or {}), "now": None,
+             "models": {}, "events": deque(maxlen=EVENTS_KEPT)}
+    for name in models:
+        _entry(state, name)
+    return state
+
+
+def _entry(state: dict, name: str) -> dict:
+    return state["models"].setdefault(name, {
+        "pred": None, "fit": None, "trust": None, "reasons": [], "seen": None, "n_pred": 0,
+        "n_fit": 0, "n_alert": 0, "last_lab_t": None, "scale": None})
+
+
+def _scale(m: dict, std) -> None:
+    """The model's number scale: its latest finite predictive std."""
+    if isinstance(std, int | float) and math.isfinite(std) and std > 0:
+        m["scale"] = float(std)
+
+
+def watch_update(state: dict, topic: str, body: dict, received: float) -> str | None:
+    """Take one daemon message into the view (the last prediction, fit and alert per model).
+
+    Returns the event line of a lab result, trust change or action (also kept in
+    ``state["events"]``), None for other messages.
+    """
     kind, _, name = topic.partition("/")
     if kind not in ("pred", "fit", "alert") or not name:
-        return
-    m = state["models"].setdefault(name, {"pred": None, "fit": None, "trust": None,
-                                          "reasons": [], "seen": None, "n_pred": 0,
-                                          "n_fit": 0, "n_alert": 0, "last_lab_t": None})
+        return None
+    m = _entry(state, name)
     m["seen"] = received
     state["now"] = received if state["now"] is None else max(state["now"], received)
+    event = None
     if kind == "pred":
         if isinstance(body.get("t"), list):
             k = len(body["t"])
@@ -355,27 +440,100 @@ def watch_update(state: dict, topic: str, body: dict, received: float) -> None:
                    for key in ("t", "mean", "std", "lo", "hi", "status", "dof")}
             row["level"] = body.get("level")
             m["n_pred"] += k
+        elif isinstance(body.get("t"), bytes | bytearray):
+            row = _packed_last(body)
+            m["n_pred"] += max(1, len(body["t"]) // 8)
         else:
             row = dict(body)
             m["n_pred"] += 1
         m["pred"] = row
+        _scale(m, row.get("std"))
         if body.get("trust") is not None:
             m["trust"] = body["trust"]
     elif kind == "fit":
         m["fit"] = dict(body)
         m["n_fit"] += 1
+        _scale(m, body.get("pred_std"))
         if body.get("accepted"):
             m["last_lab_t"] = body.get("t")
         if body.get("trust") is not None:
             m["trust"] = body["trust"]
+        event = _lab_event(state, name, m, body)
     else:
         m["n_alert"] += 1
         if body.get("kind") == "state":
             m["trust"] = body.get("new")
-            m["reasons"] = [r.get("name", "?") for r in body.get("reasons", [])]
+            m["reasons"] = [r.get("name", "?") for r in body.get("reasons", [])
+                            if isinstance(r, dict)]
+            why = ", ".join(m["reasons"]) or "no reasons left"
+            event = (f"{_stamp(body.get('t'))}  {name}  trust {body.get('old')} -> "
+                     f"{body.get('new')} ({why})")
         elif body.get("kind") == "reset":
             m["reasons"] = []
             m["trust"] = body.get("state", m["trust"])
+            event = f"{_stamp(body.get('t'))}  {name}  reset to its prior"
+        elif body.get("kind") == "ack":
+            event = f"{_stamp(body.get('t'))}  {name}  alert reasons acknowledged"
+        elif body.get("kind") == "action":
+            action = body.get("action")
+            if action in ("freeze", "resume"):
+                who = f" by {body['by']}" if body.get("by") else ""
+                what = "learning frozen" if action == "freeze" else "learning resumed"
+                if action == "freeze" and m["pred"]:
+                    m["pred"]["status"] = "frozen"  # as the next prediction will say
+                event = (f"{_stamp(body.get('t'))}  {name}  {what}{who}: "
+                         f"{body.get('reason') or '(no reason given)'}")
+            else:
+                event = (f"{_stamp(body.get('t'))}  {name}  {action} after "
+                         f"{body.get('reason')}")
+    if event is not None:
+        state["events"].append(event)
+    return event
+
+
+def _packed_last(body: dict) -> dict:
+    """The last row of a packed block's answer (bins of little-endian float64)."""
+    row = {"level": body.get("level")}
+    for key in ("t", "mean", "std", "lo", "hi", "dof"):
+        v = body.get(key)
+        row[key] = (struct.unpack_from("<d", v, len(v) - 8)[0]
+                    if isinstance(v, bytes | bytearray) and len(v) >= 8 else None)
+    status = body.get("status")
+    row["status"] = status[-1] if isinstance(status, list) and status else status
+    return row
+
+
+def _unit_of(state: dict, name: str) -> str:
+    return state["units"].get(name) or state.get("unit") or ""
+
+
+def _lab_event(state: dict, name: str, m: dict, f: dict) -> str:
+    d = decimals_for(m["scale"])
+    unit = _unit_of(state, name)
+    pm, ps = f.get("pred_mean"), f.get("pred_std")
+    if not isinstance(pm, int | float) or not math.isfinite(pm):
+        pred = "no prediction yet"
+    else:
+        pred = f"pred {fmt_number(pm, d)} ± {fmt_number(ps, d)}"
+    z = f.get("z")
+    zs = f"z {z:+.2f}" if isinstance(z, int | float) and math.isfinite(z) else "z -"
+    if f.get("accepted"):
+        what = "learned" + (" (gate opened)" if f.get("reason") == "gate_open" else "")
+    else:
+        what = f"REJECTED ({f.get('reason')})"
+    late = " late" if f.get("late") else ""
+    return (f"{_stamp(f.get('t'))}  {name}  lab {fmt_number(f.get('y'), d)}{_u(unit)}  "
+            f"{pred}  {zs}  {what}{late}")
+
+
+def _u(unit: str) -> str:
+    return f" {unit}" if unit else ""
+
+
+def _stamp(t) -> str:
+    if not isinstance(t, int | float) or not math.isfinite(t):
+        return "-"
+    return datetime.fromtimestamp(float(t), UTC).strftime("%Y-%m-%d %H:%M")
 
 
 _COLORS = {"normal": "\x1b[32m", "caution": "\x1b[33m", "untrusted": "\x1b[31;1m"}
@@ -398,63 +556,90 @@ def _age(seconds) -> str:
     return f"{s / 86400:.1f}d"
 
 
-def _f(v, fmt: str = ".1f") -> str:
-    if v is None or not isinstance(v, int | float) or not math.isfinite(v):
-        return "-"
-    return format(v, fmt)
+#: the width the layout is made for (a terminal of 80 columns shows every field)
+WIDTH = 80
 
 
-def render(state: dict, *, width: int | None = None, color: bool = False) -> str:
-    """The watch view as text: a title line, a header, one line per model.
+def render(state: dict, *, width: int | None = None, color: bool = False,
+           events: int = 0) -> str:
+    """The watch view as text: a title line, a header, two lines per model, and the last
+    ``events`` event lines (lab results at their drawn time, trust changes, actions).
 
-    Pure: everything comes from ``state`` (``state["now"]`` is the wall-clock time the ages
-    are measured against). Prediction and lab ages are in feed time (the time stamps of the
-    messages), message age in wall-clock time.
+    Fits 80 columns. Pure: everything comes from ``state`` (``state["now"]`` is the
+    wall-clock time the ages are measured against). Numbers show the model's std to two
+    significant digits (`decimals_for`). Prediction and lab ages are in feed time (the time
+    stamps of the messages), message age in wall-clock time.
     """
-    unit = state.get("unit") or ""
-    u = f" {unit}" if unit else ""
     now = state.get("now")
-    feed_t = max((m["pred"]["t"] for m in state["models"].values()
+    models = state["models"]
+    feed_t = max((m["pred"]["t"] for m in models.values()
                   if m["pred"] and isinstance(m["pred"].get("t"), int | float)), default=None)
-    title = f"posteriord watch  {state.get('endpoint', '')}".rstrip()
+    n = len(models)
+    tail = f"  {n} model{'s' if n != 1 else ''}"
     if feed_t is not None:
-        title += f"  feed time {datetime.fromtimestamp(feed_t, UTC):%Y-%m-%d %H:%M} UTC"
-    n = len(state["models"])
-    title += f"  {n} model{'s' if n != 1 else ''}"
-    head = (f"{'model':<24} {'prediction':>18} {'interval':>18} {'status':<9} {'trust':<9} "
-            f"{'reasons':<24} {'last lab (resid, z)':<36} {'lab age':>8} {'msg age':>8}")
+        tail = f"  feed {datetime.fromtimestamp(feed_t, UTC):%Y-%m-%d %H:%M} UTC" + tail
+    endpoint = state.get("endpoint", "")
+    room = WIDTH - len("posteriord watch  ") - len(tail)
+    if len(endpoint) > room:
+        # a long ipc path: its start and end (the socket's name) within 80 columns
+        keep = max(8, room - 1)
+        endpoint = endpoint[:keep // 2] + "~" + endpoint[len(endpoint) - (keep - keep // 2):]
+    title = f"posteriord watch  {endpoint}".rstrip() + tail
+    levels = {m["pred"].get("level") for m in models.values() if m["pred"]}
+    level = levels.pop() if len(levels) == 1 else None
+    pct = f" ({100 * level:.0f}%)" if isinstance(level, int | float) else ""
+    head = (f"{'model':<20} {'prediction':>18} {'interval' + pct:>17} {'status':<9} "
+            f"{'trust':<9}")
     lines = [title, head]
-    if not state["models"]:
+    if not models:
         lines.append("(no messages yet)")
-    for name in sorted(state["models"]):
-        m = state["models"][name]
+    for name in sorted(models):
+        m = models[name]
         p, f = m["pred"], m["fit"]
+        d = decimals_for(m["scale"])
+        u = _u(_unit_of(state, name))
         if p:
-            pred = f"{_f(p.get('mean'))} ± {_f(p.get('std'))}{u}"
-            lvl = p.get("level")
-            pct = f"{100 * lvl:.0f}% " if isinstance(lvl, int | float) else ""
-            interval = f"{pct}[{_f(p.get('lo'))}, {_f(p.get('hi'))}]"
+            pred = f"{fmt_number(p.get('mean'), d)} ± {fmt_number(p.get('std'), d)}{u}"
+            interval = f"[{fmt_number(p.get('lo'), d)}, {fmt_number(p.get('hi'), d)}]"
             status = str(p.get("status") or "-")
         else:
             pred, interval, status = "-", "-", "-"
         trust = m["trust"] or "-"
-        reasons = "+".join(m["reasons"]) if m["reasons"] and trust != "normal" else "-"
-        if f:
-            mark = "" if f.get("accepted") else " REJECTED"
-            lab = (f"{_f(f.get('y'))} ({_f(f.get('resid'), '+.1f')}, "
-                   f"{_f(f.get('z'), '+.2f')}){mark}")
-        else:
-            lab = "-"
-        lab_age = None
-        if p and m["last_lab_t"] is not None and isinstance(p.get("t"), int | float):
-            lab_age = p["t"] - m["last_lab_t"]
-        msg_age = None if now is None or m["seen"] is None else now - m["seen"]
         trust_cell = f"{trust:<9}"
         if color and trust in _COLORS:
             trust_cell = f"{_COLORS[trust]}{trust:<9}{_RESET}"
-        line = (f"{name[:24]:<24} {pred:>18} {interval:>18} {status[:9]:<9} {trust_cell} "
-                f"{reasons[:24]:<24} {lab[:36]:<36} {_age(lab_age):>8} {_age(msg_age):>8}")
-        lines.append(line)
+        shown = name if len(name) <= 20 else name[:19] + "~"
+        lines.append(f"{shown:<20} {pred:>18} {interval:>17} {status[:9]:<9} {trust_cell}")
+        if m["seen"] is None:
+            lines.append("  no messages yet")
+            continue
+        parts = []
+        if f:
+            mark = "" if f.get("accepted") else " REJECTED"
+            z = f.get("z")
+            zs = f", z {z:+.2f}" if isinstance(z, int | float) and math.isfinite(z) else ""
+            parts.append(f"lab {fmt_number(f.get('y'), d)} "
+                         f"({fmt_number(f.get('resid'), d, sign=True)}{zs}){mark}")
+        lab_age = None
+        if p and m["last_lab_t"] is not None and isinstance(p.get("t"), int | float):
+            lab_age = p["t"] - m["last_lab_t"]
+        if lab_age is not None:
+            parts.append(f"lab age {_age(lab_age)}")
+        msg_age = None if now is None or m["seen"] is None else now - m["seen"]
+        parts.append(f"msg {_age(msg_age)}")
+        if m["reasons"] and trust != "normal":
+            # the reasons first; as many as leave the rest of the line within 80 columns
+            room = WIDTH - len("  why: ; " + "; ".join(parts))
+            why = "+".join(m["reasons"])
+            k = len(m["reasons"])
+            while len(why) > room and k > 1:
+                k -= 1
+                why = "+".join(m["reasons"][:k]) + f" +{len(m['reasons']) - k}"
+            parts.insert(0, f"why: {why}")
+        lines.append("  " + "; ".join(parts))
+    if events and state.get("events"):
+        lines.append("events (lab results at their drawn time, as they arrive):")
+        lines += ["  " + e for e in list(state["events"])[-events:]]
     if width:
         lines = [_clip(line, width) for line in lines]
     return "\n".join(lines)
@@ -529,11 +714,16 @@ class Screen:
 def watch(endpoint: str, *, models=(), unit: str = "", duration: float | None = None,
           count: int | None = None, refresh: float = 0.5, stop: threading.Event | None = None,
           stream=None, color: bool | None = None, ctx: zmq.Context | None = None,
-          curve: ClientKeys | None = None) -> dict:
+          curve: ClientKeys | None = None, known=(), units: dict | None = None,
+          events: int = 8) -> dict:
     """Subscribe to a daemon's publisher and keep the view on the screen up to date.
 
     Stops when ``stop`` is set, after ``duration`` seconds or ``count`` messages; returns
-    the final state. ``curve`` makes the subscriber a CURVE client; raises
+    the final state. ``known`` (model names from the config) are shown before their first
+    message, ``units`` ({model: unit}) label their numbers. On a terminal the last
+    ``events`` event lines (lab results, trust changes, actions) are shown below the table;
+    elsewhere each event line is printed as it comes and the table once at the end.
+    ``curve`` makes the subscriber a CURVE client; raises
     :class:`~daemon.runtime.security.HandshakeError` when the daemon refuses it.
     """
     import shutil
@@ -543,13 +733,19 @@ def watch(endpoint: str, *, models=(), unit: str = "", duration: float | None = 
     sock, hs = _subscriber(ctx, endpoint, TOPICS, models, curve)
     screen = Screen(stream)
     color = screen.tty if color is None else color
-    state = watch_state(endpoint, unit)
+    state = watch_state(endpoint, unit, models=known, units=units)
     deadline = None if duration is None else time.monotonic() + duration
     drawn = 0.0
     n = 0
 
-    def width():
-        return shutil.get_terminal_size().columns if screen.tty else None
+    def frame() -> str:
+        if not screen.tty:
+            return render(state, color=color)
+        size = shutil.get_terminal_size()
+        # the table, then as many event lines as the terminal has room for (up to events)
+        table = 3 + 2 * len(state["models"])
+        room = max(0, min(events, size.lines - table - 2))
+        return render(state, width=size.columns, color=color, events=room)
 
     try:
         while (stop is None or not stop.is_set()) and (count is None or n < count):
@@ -569,15 +765,17 @@ def watch(endpoint: str, *, models=(), unit: str = "", duration: float | None = 
                     except wire.WireError:
                         continue
                     if isinstance(body, dict):
-                        watch_update(state, frames[0].decode("utf-8", "replace"), body,
-                                     time.time())
+                        line = watch_update(state, frames[0].decode("utf-8", "replace"),
+                                            body, time.time())
+                        if line is not None and not screen.tty:
+                            screen.above(line)
                     n += 1
             if time.monotonic() - drawn >= refresh:
                 state["now"] = time.time()
-                screen.show(render(state, width=width(), color=color))
+                screen.show(frame())
                 drawn = time.monotonic()
         state["now"] = time.time()
-        screen.show(render(state, width=width(), color=color))
+        screen.show(frame())
         screen.final()
     finally:
         hs.close()

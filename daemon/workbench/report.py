@@ -56,7 +56,10 @@ def load_track(path, model: str | None = None, *, level: float | None = None) ->
             model = names[0]
         elif model not in names:
             raise ValueError(f"{path}: no messages of model {model!r} (models: {names})")
-        track = collect(msgs, model, {"model": model, "source": os.path.basename(path)})
+        described = live.RecordReader(path).models.get(model)
+        meta = dict(described) if isinstance(described, dict) else {}
+        track = collect(msgs, model, {**meta, "model": model,
+                                      "source": os.path.basename(path)})
     else:
         track = read_predictions(path)
         if model is not None and track.model and track.model != model:

@@ -935,7 +935,12 @@ _ALERT_KEYS = (
 def model_toml(m: ModelConfig, comments=()) -> str:
     """A ``[[model]]`` block that `daemon.config.loads` reads back as ``m``."""
     out = [f"# {c}" for c in comments]
-    out += ["[[model]]", f"name = {_str(m.name)}", f"level = {_num(m.level)}", "inputs = ["]
+    out += ["[[model]]", f"name = {_str(m.name)}"]
+    if m.target:
+        out.append(f"target = {_str(m.target)}")
+    if m.unit:
+        out.append(f"unit = {_str(m.unit)}")
+    out += [f"level = {_num(m.level)}", "inputs = ["]
     for i in m.inputs:
         dead = f", dead_time = {_dur(i.dead_time)}" if i.dead_time > 0 else ""
         out.append(f"    {{ tag = {_str(i.tag)}, lo = {_num(i.lo)}, hi = {_num(i.hi)}{dead} }},")

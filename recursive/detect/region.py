@@ -95,6 +95,7 @@ class InputRegion:
         "_count",
         "_chol",
         "_chol_inv",
+        "_row_cache",
     )
 
     def __init__(self, n_inputs: int, half_life: float, limit: float, ridge: float = 1e-8) -> None:
@@ -124,6 +125,7 @@ class InputRegion:
         self._count = 0
         self._chol = None
         self._chol_inv = None
+        self._row_cache = None
 
     @property
     def count(self) -> int:
@@ -156,6 +158,7 @@ class InputRegion:
         self._count += 1
         self._chol = None
         self._chol_inv = None
+        self._row_cache = None
 
     def _factor(self) -> Any:
         if self._chol is None:
@@ -215,17 +218,8 @@ class InputRegion:
             if len(D) <= 2:
                 # plain floats for a row or two: the same operations in the same order as
                 # the array path below, hence the same bits, without its per-call overhead
-                rows = []
                 Ml = inv.tolist()
-                for d in D.tolist():
-                    acc = None
-                    for m in Ml:
-                        y = d[0] * m[0]
-                        for dj, mj in zip(d[1:], m[1:], strict=True):
-                            y = y + dj * mj
-                        acc = y * y if acc is None else acc + y * y
-                    rows.append(acc)
-                return np.sqrt(np.array(rows, dtype=float))
+                return np.sqrt(np.array([_row_sq(d, Ml) for d in D.tolist()], dtype=float))
             # Y[r, i] = sum_j inv[i, j] D[r, j], summed in the order j = 0, 1, ... for every row
             Y = D[:, :1] * inv[:, 0]
             for j in range(1, n):
@@ -236,6 +230,44 @@ class InputRegion:
             return np.sqrt(acc)
         Y = self._chol_inv @ D.T
         return np.sqrt(np.einsum("ij,ij->j", Y, Y))
+
+    def distance_row(self, x: list) -> float:
+        """``distances([x], rowwise=True)[0]`` for one row given as a list of floats (same
+        bits), in plain float arithmetic: the monitor's check of a single sample."""
+        if len(x) != self._n_inputs:
+            raise ValueError(f"x must have {self._n_inputs} values, got {x!r}")
+        if self._count < self._n_inputs + 1:
+            return math.nan
+        cached = self._row_cache
+        if cached is None:
+            chol = self._factor()
+            if isinstance(chol, str):
+                cached = (self._mean.tolist(), None, None)
+            else:
+                if self._chol_inv is None:
+                    inv, info = _dtrtri(chol, lower=1)
+                    if info != 0:  # pragma: no cover - a Cholesky factor is non-singular
+                        raise np.linalg.LinAlgError(f"singular region factor (info={info})")
+                    self._chol_inv = inv
+                Ml = self._chol_inv.tolist()
+                # each row of the (lower-triangular) inverse without its trailing zeros
+                cut = []
+                for m in Ml:
+                    k = len(m)
+                    while k > 1 and m[k - 1] == 0.0:
+                        k -= 1
+                    cut.append(m[:k])
+                cached = (self._mean.tolist(), Ml, cut)
+            self._row_cache = cached
+        mean, Ml, cut = cached
+        d = [a - b for a, b in zip(x, mean, strict=True)]
+        if Ml is None:
+            return math.inf if any(v != 0 for v in d) else 0.0
+        if math.isfinite(sum(d)):
+            # a finite d_j times a zero adds a zero, which changes no sum (y + 0.0 == y,
+            # a -0.0 only where y is 0 and then squared): the trailing terms are skipped
+            return math.sqrt(_row_sq_cut(d, cut))
+        return math.sqrt(_row_sq(d, Ml))
 
     def step(self, x: Any, learn: bool = False) -> RegionStep:
         """Distance of ``x`` from the region and the flag; then learn ``x`` if ``learn``."""
@@ -272,3 +304,25 @@ class InputRegion:
         obj._scatter = scatter
         obj._count = _count("count", _get(state, "count"), 0)
         return obj
+
+
+def _row_sq(d: list, Ml: list) -> float:
+    """``sum_i (sum_j Ml[i][j] d[j])^2`` summed in index order, on floats."""
+    acc = None
+    for m in Ml:
+        y = d[0] * m[0]
+        for dj, mj in zip(d[1:], m[1:], strict=True):
+            y = y + dj * mj
+        acc = y * y if acc is None else acc + y * y
+    return acc
+
+
+def _row_sq_cut(d: list, cut: list) -> float:
+    """:func:`_row_sq` with row ``i`` of the matrix cut after its last nonzero entry."""
+    acc = None
+    for m in cut:
+        y = d[0] * m[0]
+        for j in range(1, len(m)):
+            y = y + d[j] * m[j]
+        acc = y * y if acc is None else acc + y * y
+    return acc
