@@ -113,6 +113,7 @@ DAEMON_DEFAULTS = {
     "reconnect_ivl_max": 10.0,
     "hwm": 100000,
     "checkpoint_every": 300.0,
+    "checkpoint_wal_bytes": 512 * 1024,
     "fsync": "group",
     "group_commit": 0.05,
     "future_tolerance": 3600.0,

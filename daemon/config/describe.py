@@ -40,7 +40,9 @@ def describe(config: Config) -> str:
     lines.append(f"  hwm                    {d.hwm}" + (" (no limit)" if d.hwm == 0 else ""))
     lines.append(f"  reconnect              {format_duration(d.reconnect_ivl)} .. "
                  f"{format_duration(d.reconnect_ivl_max)}")
-    lines.append(f"  checkpoint every       {format_duration(d.checkpoint_every)}")
+    lines.append(f"  checkpoint every       {format_duration(d.checkpoint_every)}"
+                 + (f" or {d.checkpoint_wal_bytes} bytes of log" if d.checkpoint_wal_bytes
+                    else ""))
     sync = "every record" if d.fsync == "always" else \
         f"grouped, at most {format_duration(d.group_commit)} apart"
     lines.append(f"  fsync                  {sync}")

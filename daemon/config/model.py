@@ -60,6 +60,7 @@ class DaemonConfig:
     reconnect_ivl_max: float = _default("daemon", "reconnect_ivl_max")
     hwm: int = _default("daemon", "hwm")
     checkpoint_every: float = _default("daemon", "checkpoint_every")
+    checkpoint_wal_bytes: int = _default("daemon", "checkpoint_wal_bytes")
     fsync: str = _default("daemon", "fsync")
     group_commit: float = _default("daemon", "group_commit")
     future_tolerance: float = _default("daemon", "future_tolerance")

@@ -208,6 +208,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("daemon", "checkpoint_every", "checkpoint_every", DURATION, 300.0,
             "Interval between checkpoints of the learned state (one is also written at "
             "start-up, on shutdown and on the `checkpoint` command).", GT0),
+    Setting("daemon", "checkpoint_wal_bytes", "checkpoint_wal_bytes", INTEGER, _MIB // 2,
+            "Bytes of write-ahead log after which a checkpoint is written even before "
+            "`checkpoint_every` has passed, so that a restart never replays more than about "
+            "this much log (a lab record of a 4-input model is about 110 bytes). 0: by time "
+            "only.", GE0),
     Setting("daemon", "fsync", "fsync", _choice("group", "always"), "group",
             "When write-ahead log records reach the disk: `group` fsyncs at most once per "
             "`group_commit` (a power loss may lose that much; a crash of the process loses "

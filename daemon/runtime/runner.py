@@ -497,12 +497,14 @@ class ModelRunner:
         record = {"k": "lab", "m": self.name, "t": t, "x": x, "y": y, "id": ident, "c": clock}
         return fit, record
 
-    def replay(self, record: dict) -> dict:
-        """Learn a lab result again from its write-ahead log record."""
+    def replay(self, record: dict, snapshot: bool = True) -> dict:
+        """Learn a lab result again from its write-ahead log record (``snapshot``: as in
+        :meth:`learn_row`)."""
         return self.learn_row(record["t"], record["x"], record["y"], record["id"],
-                              record["c"])
+                              record["c"], snapshot)
 
-    def learn_row(self, t: float, x, y: float, ident, clock: float) -> dict:
+    def learn_row(self, t: float, x, y: float, ident, clock: float,
+                  snapshot: bool = True) -> dict:
         """Learn from a lab result already matched with its features ``x`` (tags order).
 
         The one path by which lab results change the model, live and in replay. Returns the
@@ -518,6 +520,10 @@ class ModelRunner:
         drawn at the time of one already offered is a duplicate (``lab_out_of_order``); one
         drawn at or before :attr:`lab_floor` (older than the results kept for re-ordering:
         the feature buffer's span, at most :data:`MAX_REWIND`) is ``lab_too_old``.
+
+        ``snapshot=False`` (a replay that knows this result will be trimmed from
+        :attr:`offered` before any later result is put before it) skips the snapshot taken
+        for a rewind; nothing else changes.
         """
         self.n_lab += 1
         if self.frozen:
@@ -532,7 +538,7 @@ class ModelRunner:
             # finite readings far outside the range can overflow the basis
             raise Rejected("bad_x", f"the basis of the features at t={t!r} is not finite")
         if k == len(offered):
-            step = self._offer(t, x, y, ident, clock, phi)
+            step = self._offer(t, x, y, ident, clock, phi, snapshot)
             fit = self._fit(step, t, y, ident)
         else:
             fit = self._offer_late(k, t, x, y, ident, clock, phi)
@@ -568,9 +574,10 @@ class ModelRunner:
         if mon is not None:
             self.monitor.load_state(mon)
 
-    def _offer(self, t: float, x, y: float, ident, clock: float, phi) -> object:
+    def _offer(self, t: float, x, y: float, ident, clock: float, phi,
+               snapshot: bool = True) -> object:
         """Offer one result to the posterior and the detectors; append it to :attr:`offered`."""
-        entry = _Offered(t, x, y, ident, clock, self._snapshot())
+        entry = _Offered(t, x, y, ident, clock, self._snapshot() if snapshot else None)
         try:
             step = self.post.update(phi, y, t)
         except OutOfOrderError as exc:

@@ -47,7 +47,7 @@ from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
 from daemon.runtime.notify import Notifier
-from daemon.runtime.runner import ModelRunner, PredBatch, Rejected
+from daemon.runtime.runner import MAX_REWIND, ModelRunner, PredBatch, Rejected
 from daemon.runtime.security import (
     DOMAIN_CONTROL,
     DOMAIN_PUBLISH,
@@ -214,17 +214,30 @@ class Service:
                             rec.checkpoint_seq)
             with _gc_paused():
                 self.restore(rec, lenient=d.on_corruption == "checkpoint")
+            same = {n: r.cfg for n, r in self.runners.items()} == \
+                {m.name: m for m in self.config.models}
             self.adopt(self.config.models, at_start=True)
             self.store = store
             self.recovery = rec
-            self.checkpoint()
+            if same and rec.checkpoint is not None and rec.dropped_after_seq is None \
+                    and not rec.corrupt_segments:
+                # the config changed nothing: the state is the checkpoint plus the log, as a
+                # crash before this checkpoint is durable would find it again, so it need
+                # not hold up the start
+                self.checkpoint_seq = rec.checkpoint_seq
+                with _gc_paused():
+                    store.begin_checkpoint(self.state_body)
+                written = "being written in the background"
+            else:
+                self.checkpoint()
+                written = "written"
         except BaseException:
             self.store = None
             store.close()
             raise
         log.info("state: %s holds checkpoint %d and %d record(s) after it; replayed %d; "
-                 "checkpoint %d written", store.path, rec.checkpoint_seq, len(rec.records),
-                 self.replayed, self.checkpoint_seq)
+                 "checkpoint %d %s", store.path, rec.checkpoint_seq, len(rec.records),
+                 self.replayed, store.last_seq, written)
 
     def restore(self, rec: Recovery, *, lenient: bool = False) -> None:
         """Rebuild the runners from a recovered checkpoint and replay the records after it.
@@ -239,9 +252,11 @@ class Service:
         else:
             self.load_body(rec.checkpoint, rec.checkpoint_seq)
         self.replayed = 0
-        for record in rec.records:
+        # a lenient replay may skip records, and then keeps every snapshot
+        snaps = None if lenient else _snapshots_needed(rec.records)
+        for i, record in enumerate(rec.records):
             try:
-                self.apply_record(record)
+                self.apply_record(record, True if snaps is None else snaps[i])
             except (StateError, ValueError, KeyError, TypeError) as exc:
                 if not lenient:
                     raise StateError(f"write-ahead log record {record.get('seq')} cannot be "
@@ -279,8 +294,12 @@ class Service:
         self.runners = runners
         self.received, self.rejected_unknown, self.reloads = received, unknown, reloads
 
-    def apply_record(self, record: dict) -> None:
-        """Replay one write-ahead log record (see the module docstring for the kinds)."""
+    def apply_record(self, record: dict, snapshot: bool = True) -> None:
+        """Replay one write-ahead log record (see the module docstring for the kinds).
+
+        ``snapshot=False`` for a lab record whose rewind snapshot no later record can use
+        (see :func:`_snapshots_needed`); the result is the same to the last bit.
+        """
         kind = record.get("k")
         name = record.get("m")
         if kind not in RECORD_KINDS:
@@ -304,7 +323,7 @@ class Service:
             runner.control(record["cmd"], record.get("note"))
             return
         try:
-            runner.replay(record)
+            runner.replay(record, snapshot)
         except Rejected as exc:
             raise StateError(f"lab result of {name} at t={record['t']!r} was learned before "
                              f"the restart but not in replay ({exc})") from None
@@ -358,6 +377,8 @@ class Service:
         """Write a checkpoint now; returns its sequence number."""
         if self.store is None:
             raise StoreError("no state folder is open (an in-memory service)")
+        if self.store.checkpoint_running:
+            self._checkpoint_polled(self.store.wait_checkpoint())
         with _gc_paused():
             seq = self.store.checkpoint(self.state_body())
         self.checkpoints += 1
@@ -367,21 +388,49 @@ class Service:
         return seq
 
     def _housekeeping(self) -> None:
-        """Periodic checkpoint, group commit."""
+        """Periodic checkpoint (by time or by log size, written in the background), group
+        commit."""
         store = self.store
         if store is None:
             return
         now = time.monotonic()
-        if self._dirty and now - self._last_checkpoint >= self.config.daemon.checkpoint_every:
-            self.checkpoint()
+        if store.checkpoint_running:
+            self._checkpoint_polled(store.poll_checkpoint())
+        d = self.config.daemon
+        if self._dirty and not store.checkpoint_running and (
+                now - self._last_checkpoint >= d.checkpoint_every
+                or 0 < d.checkpoint_wal_bytes <= store.wal_bytes):
+            # a fork of the loop at this WAL position builds, encodes and writes it
+            with _gc_paused():
+                store.begin_checkpoint(self.state_body)
+            self._dirty = False
+            self._last_checkpoint = now
         else:
             store.maybe_sync(now)
+
+    def _checkpoint_polled(self, seq: int | None) -> None:
+        """Account for a background checkpoint that ended (``seq``: it is durable)."""
+        store = self.store
+        if store.checkpoint_running:
+            return
+        for note in store.notes:
+            log.error("state: %s", note)
+        store.notes.clear()
+        if seq is None:
+            self._dirty = True  # it failed: the next turn tries again
+            return
+        self.checkpoints += 1
+        self.checkpoint_seq = seq
 
     def _poll_ms(self) -> int:
         store = self.store
         if store is None:
             return 1000
-        if store.pending:
+        if store.checkpoint_running:
+            wait = 0.05  # look after the background checkpoint
+            if store.pending:
+                wait = min(wait, self.config.daemon.group_commit)
+        elif store.pending:
             wait = self.config.daemon.group_commit
         elif self._dirty:
             wait = self.config.daemon.checkpoint_every - (time.monotonic()
@@ -899,7 +948,9 @@ class Service:
         return {"dir": self.store.path, "last_seq": self.store.last_seq,
                 "checkpoint_seq": self.checkpoint_seq, "pending": self.store.pending,
                 "fsync": self.store.fsync_mode, "replayed": self.replayed,
-                "records": self.wal_records, "checkpoints": self.checkpoints}
+                "records": self.wal_records, "checkpoints": self.checkpoints,
+                "checkpoint_running": self.store.checkpoint_running,
+                "wal_bytes": self.store.wal_bytes}
 
     # ------------------------------------------------------------------ reload
     def reload(self):
@@ -991,6 +1042,8 @@ class Service:
         store = self.store
         self.store = None
         try:
+            if store.checkpoint_running:
+                store.wait_checkpoint()  # the one below covers it anyway
             if store.failed is None:
                 with _gc_paused():
                     seq = store.checkpoint(self.state_body())
@@ -1009,6 +1062,43 @@ class Service:
             except DurabilityError as exc:
                 log.critical("state: closing the folder failed: %s", exc)
                 self.exit_code = EXIT_DURABILITY
+
+
+def _snapshots_needed(records: list) -> list[bool]:
+    """For each record of a replay, whether a lab record's rewind snapshot may be used.
+
+    A lab result keeps a snapshot of the learning state from just before it, for a later
+    result drawn before it (:meth:`ModelRunner.learn_row`). In a replay the later records are
+    known: when at least ``MAX_REWIND`` more lab records of the same model follow, all drawn
+    after it, its entry is trimmed before any of them could rewind to it, so the snapshot
+    (a copy of the detectors' state, most of a replayed record's bookkeeping) is work whose
+    result is thrown away. Records of a model that a later ``model`` or ``import`` record
+    replaces need none either. Anything else keeps it.
+    """
+    out = [True] * len(records)
+    later: dict = {}  # model -> [lab records after this one, earliest drawn time among them]
+    replaced: set = set()
+    for i in range(len(records) - 1, -1, -1):
+        r = records[i]
+        kind, name = r.get("k"), r.get("m")
+        if kind in ("model", "import"):
+            replaced.add(name)
+            continue
+        if kind != "lab" or name in replaced:
+            out[i] = kind != "lab"
+            continue
+        t = r.get("t")
+        if not isinstance(t, float) or t != t:
+            continue
+        seen = later.get(name)
+        if seen is None:
+            later[name] = [1, t]
+            continue
+        if seen[0] >= MAX_REWIND and seen[1] > t:
+            out[i] = False
+        seen[0] += 1
+        seen[1] = min(seen[1], t)
+    return out
 
 
 @contextmanager

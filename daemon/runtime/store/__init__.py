@@ -41,7 +41,11 @@ nothing) but fsynced by :meth:`StateDir.maybe_sync`, at most once per ``group_ms
 loss up to ``group_ms`` worth of records may be missing. A segment is fsynced before the next one
 is created, the folder is fsynced after a file is created or renamed, and a checkpoint is made
 durable by writing a temporary file, fsyncing it, renaming it over its final name and fsyncing
-the folder. Any failed write or fsync raises :class:`DurabilityError` and the
+the folder. :meth:`StateDir.begin_checkpoint` does the same from a ``fork()`` of the caller
+(the state at one WAL position, whatever the caller does next): the caller fsyncs the WAL and
+starts a new segment, the child builds, encodes, writes, fsyncs and renames, and
+:meth:`StateDir.poll_checkpoint` picks up the outcome; the retention rule is applied only then.
+Any failed write or fsync raises :class:`DurabilityError` and the
 :class:`StateDir` refuses every later write: after a failed fsync the state of the page cache is
 unknown, so retrying and carrying on could silently lose records.
 

@@ -48,6 +48,42 @@ def encode_checkpoint(seq: int, body: dict) -> bytes:
     return CHECKPOINT_MAGIC + _HEADER.pack(len(payload), zlib.crc32(payload)) + payload
 
 
+def checkpoint_seq(data: bytes) -> int:
+    """The seq of a checkpoint file's bytes, checking the framing and the CRC of the whole
+    payload but decoding only the ``"seq"`` at its start; raises :class:`StoreError`.
+
+    For the fallback checkpoint, whose body recovery does not use: a checkpoint that passes
+    this and yet does not decode would have been written by a broken encoder, not damaged.
+    """
+    data = bytes(data)
+    head = len(CHECKPOINT_MAGIC) + _HEADER.size
+    if len(data) < head:
+        raise StoreError(f"checkpoint too short: {len(data)} bytes")
+    if data[:len(CHECKPOINT_MAGIC)] != CHECKPOINT_MAGIC:
+        raise StoreError(f"checkpoint magic is {data[:8]!r}, expected {CHECKPOINT_MAGIC!r}")
+    length, crc = _HEADER.unpack_from(data, len(CHECKPOINT_MAGIC))
+    if len(data) != head + length:
+        raise StoreError(f"checkpoint is {len(data)} bytes, its header says {head + length}")
+    if zlib.crc32(memoryview(data)[head:]) != crc:
+        raise StoreError("checkpoint CRC mismatch")
+    # the payload is the map {"seq": n, "body": ...} (fixmap of 2, fixstr "seq", then n as a
+    # msgpack unsigned integer: positive fixint, or 0xcc..0xcf and 1, 2, 4, 8 big-endian bytes)
+    key = b"\x82" + _SEQ_KEY
+    seq = None
+    if data[head:head + len(key)] == key:
+        p = head + len(key)
+        tag = data[p] if p < len(data) else None
+        if tag is not None and tag < 0x80:
+            seq = tag
+        elif tag is not None and 0xCC <= tag <= 0xCF:
+            width = 1 << (tag - 0xCC)
+            if p + 1 + width <= len(data):
+                seq = int.from_bytes(data[p + 1:p + 1 + width], "big")
+    if type(seq) is not int or seq < 0:
+        raise StoreError("checkpoint payload does not start with a non-negative 'seq'")
+    return seq
+
+
 def decode_checkpoint(data: bytes) -> tuple[int, dict]:
     """``(seq, body)`` of a checkpoint file's bytes; raises :class:`StoreError` if damaged."""
     data = bytes(data)

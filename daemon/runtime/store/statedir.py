@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
+import ctypes
 import errno
 import fcntl
+import gc
 import math
 import os
+import signal
 import stat
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 
 from daemon.runtime.store.errors import CorruptionError, DurabilityError, LockedError, StoreError
@@ -24,6 +28,7 @@ from daemon.runtime.store.layout import (
     _seg_name,
 )
 from daemon.runtime.store.records import (
+    checkpoint_seq,
     decode_checkpoint,
     encode_checkpoint,
     encode_record,
@@ -87,6 +92,9 @@ class StateDir:
         self._chain: list[int] = []  # seqs of the valid checkpoints kept: [previous,] newest
         self._pending = 0
         self._last_sync: float | None = None
+        # WAL bytes appended since the newest checkpoint (written or being written) began
+        self._wal_bytes = 0
+        self._bg: _Background | None = None  # the checkpoint being written by a child process
         self.notes: list[str] = []
 
     # ------------------------------------------------------------------ properties
@@ -99,6 +107,16 @@ class StateDir:
     def last_seq(self) -> int:
         """Sequence number of the last record (or of the checkpoint, when it is newer)."""
         return self._next_seq - 1
+
+    @property
+    def wal_bytes(self) -> int:
+        """WAL bytes appended since the newest checkpoint (durable or in the making) began."""
+        return self._wal_bytes
+
+    @property
+    def checkpoint_running(self) -> bool:
+        """Whether a background checkpoint (:meth:`begin_checkpoint`) is being written."""
+        return self._bg is not None
 
     @property
     def failed(self) -> str | None:
@@ -169,6 +187,11 @@ class StateDir:
         """Fsync what is pending and release the lock (idempotent)."""
         if self._lock_fd is None:
             return
+        try:
+            if self._bg is not None:
+                self.wait_checkpoint()
+        except DurabilityError:
+            pass  # the folder refuses writes from now on; what is pending goes to the WAL
         try:
             if self._failed is None and self._pending:
                 self.sync()
@@ -299,7 +322,11 @@ class StateDir:
                 fallback = fallback or not valid
                 continue
             try:
-                cseq, body = decode_checkpoint(data)
+                # the fallback's body is not used: its framing and CRC are checked, not decoded
+                if valid:
+                    cseq, body = checkpoint_seq(data), None
+                else:
+                    cseq, body = decode_checkpoint(data)
                 if cseq != seq:
                     raise StoreError(f"it holds seq {cseq} but its name says {seq}")
             except StoreError as exc:
@@ -421,6 +448,7 @@ class StateDir:
         self._recovered = True
         self._pending = 0
         self._last_sync = None
+        self._wal_bytes = 0
         return Recovery(checkpoint=checkpoint, checkpoint_seq=ckpt_seq, records=records,
                         torn_tail=torn, truncated_bytes=truncated,
                         corrupt_segments=tuple(moved_aside), fallback_checkpoint=fallback,
@@ -463,6 +491,7 @@ class StateDir:
         except OSError as exc:
             raise self._fail(f"write of record {seq}", exc) from exc
         self._seg_size += len(frame)
+        self._wal_bytes += len(frame)
         self._next_seq = seq + 1
         self._pending += 1
         if self.fsync_mode == "always":
@@ -537,11 +566,28 @@ class StateDir:
 
     # ------------------------------------------------------------------ checkpoints
     def checkpoint(self, body: dict) -> int:
-        """Durably write a checkpoint covering every record so far; returns its seq."""
+        """Durably write a checkpoint covering every record so far; returns its seq.
+
+        Waits first for a background checkpoint still being written.
+        """
         self._require_writable()
+        if self._bg is not None:
+            self.wait_checkpoint()
         seq = self._next_seq - 1
         data = encode_checkpoint(seq, body)
         self._fsync_segment()  # the fallback path needs the WAL up to here
+        try:
+            self._write_checkpoint_file(seq, data)
+        except OSError as exc:
+            raise self._fail(f"writing checkpoint {_ckpt_name(seq)}", exc) from exc
+        if self._seg_size:
+            self._roll()  # an empty open segment is already named for the next record
+        self._wal_bytes = 0
+        self._checkpoint_done(seq)
+        return seq
+
+    def _write_checkpoint_file(self, seq: int, data: bytes) -> None:
+        """Temporary file, fsync, rename over the final name, fsync of the folder."""
         final = _ckpt_name(seq)
         tmp = final + ".tmp"
         try:
@@ -554,17 +600,101 @@ class StateDir:
                 self._fs.close(fd)
             self._fs.rename(self._p(tmp), self._p(final))
             self._fsync_dir()
-        except OSError as exc:
+        except OSError:
             try:
                 self._fs.unlink(self._p(tmp))
             except OSError:
                 pass  # the next recovery removes it
-            raise self._fail(f"writing checkpoint {final}", exc) from exc
-        if self._seg_size:
-            self._roll()  # an empty open segment is already named for the next record
+            raise
+
+    def _checkpoint_done(self, seq: int) -> None:
         self._chain = [s for s in self._chain if s != seq][-1:] + [seq]
         self._prune()
+
+    # ------------------------------------------------------------------ background checkpoints
+    def begin_checkpoint(self, make_body: Callable[[], dict]) -> int:
+        """Start a checkpoint covering every record so far, written by a child process.
+
+        The child is a ``fork()`` of this process at this instant: its memory is the state at
+        exactly this WAL position, whatever the caller does next, so ``make_body`` (building
+        the body), the encoding, the write and the fsyncs all run there, off the caller's
+        thread, while the caller carries on appending records (they go to a new segment).
+        The caller's pause is the fork and one WAL fsync. Completion is picked up by
+        :meth:`poll_checkpoint` (or :meth:`wait_checkpoint`); until then the previous
+        checkpoints and the whole WAL stay, so a crash at any moment recovers as before (a
+        half-written ``.tmp`` file is removed by the next recovery). The child holds the
+        folder's lock with this process and dies with it (``PR_SET_PDEATHSIG``), so no
+        second daemon can open the folder while it writes. Returns the checkpoint's seq.
+        """
+        self._require_writable()
+        if self._bg is not None:
+            raise StoreError("a background checkpoint is already being written")
+        seq = self._next_seq - 1
+        self._fsync_segment()  # the fallback path needs the WAL up to here
+        if self._seg_size:
+            self._roll()  # records after the fork go to a segment of their own
+        r, w = os.pipe()
+        parent = os.getpid()
+        pid = os.fork()
+        if pid == 0:  # the child: never returns
+            os.close(r)
+            _child_checkpoint(self, seq, make_body, w, parent)
+        os.close(w)
+        os.set_blocking(r, False)
+        self._bg = _Background(pid, seq, r, time.monotonic())
+        self._wal_bytes = 0
         return seq
+
+    def poll_checkpoint(self) -> int | None:
+        """The seq of a background checkpoint that has just become durable, else None.
+
+        Raises :class:`DurabilityError` (and the folder refuses writes) when the child
+        could not write or fsync it; a child that failed otherwise (killed, out of memory)
+        is logged in :attr:`notes` and the next checkpoint tries again.
+        """
+        bg = self._bg
+        if bg is None:
+            return None
+        try:
+            done, status = os.waitpid(bg.pid, os.WNOHANG)
+        except ChildProcessError:
+            done, status = bg.pid, -1  # reaped elsewhere: its outcome is unknown
+        if done == 0:
+            return None
+        return self._reap(status)
+
+    def wait_checkpoint(self) -> int | None:
+        """Block until the background checkpoint ends; as :meth:`poll_checkpoint`."""
+        bg = self._bg
+        if bg is None:
+            return None
+        try:
+            _, status = os.waitpid(bg.pid, 0)
+        except ChildProcessError:
+            status = -1
+        return self._reap(status)
+
+    def _reap(self, status: int) -> int | None:
+        bg, self._bg = self._bg, None
+        try:
+            why = os.read(bg.pipe, 4096).decode("utf-8", "replace")
+        except OSError:
+            why = ""
+        finally:
+            os.close(bg.pipe)
+        if status == 0:
+            self._checkpoint_done(bg.seq)
+            return bg.seq
+        if why.startswith("io:"):
+            self._failed = f"writing checkpoint {_ckpt_name(bg.seq)}: {why[3:]}"
+            raise DurabilityError(f"writing checkpoint {_ckpt_name(bg.seq)} failed in "
+                                  f"{self.path}: {why[3:]}; the state folder refuses further "
+                                  f"writes")
+        what = why or (f"killed by signal {-status if status < 0 else os.WTERMSIG(status)}"
+                       if status < 0 or os.WIFSIGNALED(status) else f"exit status {status}")
+        self.notes.append(f"background checkpoint {bg.seq} failed ({what}); the previous one "
+                          f"and the WAL still cover it")
+        return None
 
     def _prune(self) -> None:
         try:
@@ -588,6 +718,49 @@ class StateDir:
             self._fs.unlink(self._p(name))
         except OSError:
             pass  # a leftover is harmless and removed at a later checkpoint
+
+
+@dataclass
+class _Background:
+    pid: int
+    seq: int
+    pipe: int
+    started: float
+
+
+_PR_SET_PDEATHSIG = 1
+
+
+def _child_checkpoint(store: StateDir, seq: int, make_body, w: int, parent: int) -> None:
+    """The forked child's whole life: build, encode, write, fsync, rename; then ``_exit``.
+
+    Exit status 0 on success; otherwise a line on the pipe (``io:`` for a failed write or
+    fsync) and status 1. Nothing here touches the sockets or the logging of the parent.
+    """
+    code, why = 1, ""
+    try:
+        gc.disable()  # acyclic garbage only (see the service), and a short life
+        try:
+            ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, signal.SIGKILL)
+        except (OSError, AttributeError):
+            pass  # not Linux: a killed daemon's child may finish its file; it is still valid
+        if os.getppid() != parent:
+            os._exit(1)  # the daemon died before the death signal was armed
+        data = encode_checkpoint(seq, make_body())
+        try:
+            store._write_checkpoint_file(seq, data)
+        except OSError as exc:
+            why = f"io:{exc}"
+        else:
+            code = 0
+    except BaseException as exc:  # noqa: BLE001 - the child reports and exits, whatever it was
+        why = f"{type(exc).__name__}: {str(exc)[:300]}"
+    finally:
+        try:
+            if why:
+                os.write(w, why.encode("utf-8", "replace")[:4000])
+        finally:
+            os._exit(code)
 
 
 def _read_pid(fd: int) -> int | None:
