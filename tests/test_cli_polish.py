@@ -297,7 +297,10 @@ def test_record_counts_to_stderr_and_keeps_target_and_unit_in_its_header(
         probe_t[0] += 1.0
         h.feed.send(MODEL, {"t": probe_t[0], "x": [110.0, 14.0, 1.2, 5.0]})
         h.barrier()
-        return rec.exists() and any(True for _ in live.RecordReader(rec))
+        try:
+            return any(True for _ in live.RecordReader(rec))
+        except (OSError, ValueError):
+            return False  # not created yet, or its header line not written yet
 
     wait_until(recorded, what="the recorder sees the daemon")
     _teach(h, n=10)
