@@ -740,6 +740,15 @@ def _child_checkpoint(store: StateDir, seq: int, make_body, w: int, parent: int)
     code, why = 1, ""
     try:
         gc.disable()  # acyclic garbage only (see the service), and a short life
+        # the parent's handlers queue into the parent's loop (through a wake-up socket the
+        # child shares): a stop signal to the whole group (systemd's default) must not make
+        # the child wake its parent or run on; it dies, its .tmp is dropped at recovery
+        try:
+            signal.set_wakeup_fd(-1)
+        except ValueError:
+            pass
+        for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+            signal.signal(sig, signal.SIG_DFL)
         try:
             ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, signal.SIGKILL)
         except (OSError, AttributeError):
