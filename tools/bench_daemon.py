@@ -30,6 +30,7 @@ drift detectors on and off. Each prints markdown rows ready to paste into the RE
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import platform
 import shutil
@@ -459,9 +460,12 @@ class Table:
         self.rows = []
 
     def add(self, case, result, baseline="", ratios=None, bar="", inverse=False):
-        if ratios:
-            ratio = f"{med(ratios):.2f}"
-            sp = f"{spread(ratios)} ({len(ratios)})"
+        finite = [r for r in ratios or () if math.isfinite(r)]
+        if finite:
+            ratio = f"{med(finite):.2f}"
+            sp = f"{spread(finite)} ({len(finite)})"
+        elif ratios:
+            ratio, sp = "n/a", "too short to measure"
         else:
             ratio = sp = ""
         self.rows.append((case, result, baseline, ratio, sp, bar))
@@ -477,6 +481,12 @@ class Table:
                  "|" + "---|" * len(self.HEAD)]
         lines += ["| " + " | ".join(r) + " |" for r in self.rows]
         return "\n".join(lines)
+
+
+def ratio(a, b):
+    """a / b; nan when b is 0 (CPU time is read in clock ticks of 10 ms: a short --quick run
+    can spend less than one)."""
+    return a / b if b else math.nan
 
 
 def fmt_rate(x, unit="msg/s"):
@@ -522,14 +532,14 @@ class Bench:
         lost = f" ({self.lost:,} answers lost)" if self.lost else ""
         table.add(f"{label}: throughput", fmt_rate(med([r.rate for r in tr])) + lost,
                   f"floor {fmt_rate(med([r.rate for r in fr]))}",
-                  [t.rate / f.rate for f, t in zip(fr, tr, strict=True)], bar)
+                  [ratio(t.rate, f.rate) for f, t in zip(fr, tr, strict=True)], bar)
         if cpu_rows:
             table.add(f"{label}: loop-thread CPU per message",
                       f"{med([r.loop_us for r in tr]):.1f} us "
                       f"(process {med([r.proc_us for r in tr]):.1f})",
                       f"floor {med([r.loop_us for r in fr]):.1f} us "
                       f"(process {med([r.proc_us for r in fr]):.1f})",
-                      [t.loop_us / f.loop_us for f, t in zip(fr, tr, strict=True)])
+                      [ratio(t.loop_us, f.loop_us) for f, t in zip(fr, tr, strict=True)])
         return fr, tr
 
     def paced_case(self, table, target, label_cpu, label_lat, rate=5000):
@@ -547,14 +557,14 @@ class Bench:
                              f"(process {med([r.proc_us for r in tr]):.1f})",
                   f"floor {med([r.loop_us for r in fr]):.1f} us "
                   f"(process {med([r.proc_us for r in fr]):.1f})",
-                  [t.loop_us / f.loop_us for f, t in zip(fr, tr, strict=True)], "<= 40 us")
+                  [ratio(t.loop_us, f.loop_us) for f, t in zip(fr, tr, strict=True)], "<= 40 us")
         p99 = [np.percentile(x, 99) * 1e3 for x in tl]
         f99 = [np.percentile(x, 99) * 1e3 for x in fl]
         p50 = med([np.percentile(x, 50) * 1e3 for x in tl])
         table.add(label_lat, f"p99 {med(p99):.2f} ms (p50 {p50:.2f}; runs "
                              f"{spread(p99)})",
                   f"floor p99 {med(f99):.2f} ms (runs {spread(f99)})",
-                  [a / b for a, b in zip(p99, f99, strict=True)], "<= floor p99 + 0.5 ms")
+                  [ratio(a, b) for a, b in zip(p99, f99, strict=True)], "<= floor p99 + 0.5 ms")
 
     def blocks_case(self, table, target):
         nb = 20 if self.quick else max(20, self.n // 256)
@@ -565,7 +575,7 @@ class Bench:
             table.add(f"1 model, blocks of 256 ({form}): samples/s",
                       fmt_rate(med([r.rate * 256 for r in tr]), "samples/s"),
                       f"floor {fmt_rate(med([r.rate * 256 for r in fr]), 'samples/s')}",
-                      [t.rate / f.rate for f, t in zip(fr, tr, strict=True)],
+                      [ratio(t.rate, f.rate) for f, t in zip(fr, tr, strict=True)],
                       ">= 1.5 M samples/s" if packed else "")
 
     def memory_case(self, table):
@@ -643,7 +653,7 @@ class Bench:
                   f"{med(pause):.0f} ms (runs {spread(pause, '{:.0f}')}; command reply "
                   f"{med(reply):.0f} ms; {med(size):.0f} MB)",
                   f"longest answer without checkpoint {med(base):.1f} ms",
-                  [p / b for p, b in zip(pause, base, strict=True)], "<= 20 ms")
+                  [ratio(p, b) for p, b in zip(pause, base, strict=True)], "<= 20 ms")
 
     def restart_case(self, table):
         """Start to ready after a SIGKILL with ``n`` WAL records to replay, vs a clean stop."""
@@ -730,10 +740,10 @@ class Bench:
         a, b = runs[True], runs[False]
         t.add("detectors on vs off: throughput", fmt_rate(med([r.rate for r in a])),
               f"off {fmt_rate(med([r.rate for r in b]))}",
-              [x.rate / y.rate for x, y in zip(a, b, strict=True)], ">= 0.90")
+              [ratio(x.rate, y.rate) for x, y in zip(a, b, strict=True)], ">= 0.90")
         t.add("detectors on vs off: loop-thread CPU per message",
               f"{med([r.loop_us for r in a]):.1f} us", f"off {med([r.loop_us for r in b]):.1f} us",
-              [x.loop_us / y.loop_us for x, y in zip(a, b, strict=True)])
+              [ratio(x.loop_us, y.loop_us) for x, y in zip(a, b, strict=True)])
         return t
 
     def scaling(self):
@@ -770,7 +780,7 @@ class Bench:
             t.add(f"{models}: memory ({train} lab results each)", mem)
             t.add(f"{models}: start to ready, with their state",
                   f"{again.ready_s:.2f} s", f"first start (no state) {fresh:.2f} s",
-                  [again.ready_s / fresh])
+                  [ratio(again.ready_s, fresh)])
         for n_inputs, degree in ((2, 1), (8, 1), (8, 2), (32, 2)):
             terms = comb(n_inputs + degree, degree)
             label = f"1 model, {terms} terms ({n_inputs} inputs, degree {degree})"
@@ -801,7 +811,7 @@ class Bench:
         t.add("lab results (one WAL record each), fsync always vs group",
               f"always {fmt_rate(med([r.rate for r in a]), 'results/s')}",
               f"group {fmt_rate(med([r.rate for r in g]), 'results/s')}",
-              [x.rate / y.rate for x, y in zip(a, g, strict=True)])
+              [ratio(x.rate, y.rate) for x, y in zip(a, g, strict=True)])
         return t
 
 
