@@ -746,7 +746,7 @@ def _child_checkpoint(store: StateDir, seq: int, make_body, w: int, parent: int)
         try:
             signal.set_wakeup_fd(-1)
         except ValueError:
-            pass
+            pass  # not the main thread: no wake-up fd was set there
         for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
             signal.signal(sig, signal.SIG_DFL)
         try:
