@@ -72,6 +72,9 @@ class Null:
 PARENT = os.getpid()
 text, msgs_path, at, stop = sys.argv[2], sys.argv[3], int(sys.argv[4]), int(sys.argv[5])
 slow = sys.argv[6] == "1"
+if len(sys.argv) > 7:  # the service's kind of handler: it only queues, the loop decides
+    import signal
+    signal.signal(signal.SIGTERM, lambda *_: None)
 msgs = msgpack.unpackb(open(msgs_path, "rb").read())
 svc = Service(loads(open(text).read(), "<kill>"), fs=SlowFs() if slow else None)
 svc.open_state()
@@ -340,3 +343,39 @@ def test_fallback_checkpoint_seq_read_without_decoding_the_body(seq):
     bad[-3] ^= 1
     with pytest.raises(Exception, match="CRC"):
         checkpoint_seq(bytes(bad))
+
+
+def test_a_stop_signal_ends_the_checkpoint_child_not_only_the_daemon(tmp_path):
+    """systemd's default stop signals the whole group: the child must not take the parent's
+    queueing handler and write on."""
+    frames = [m[3] for m in shuffled_labs(kill_stream()[0], seed=31, size=3)]
+    state = tmp_path / "state"
+    cfg = tmp_path / "term.toml"
+    cfg.write_text(config_text(state, [model_a(), model_b()], checkpoint_every="1h"))
+    feed = tmp_path / "msgs.msgpack"
+    feed.write_bytes(msgpack.packb(frames))
+    n = len(frames) // 3
+    proc = subprocess.Popen([sys.executable, "-c", DAEMON, str(ROOT), str(cfg), str(feed),
+                             str(n), str(n), "1", "term"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=blas_env())
+    try:
+        line = proc.stdout.readline().decode()
+        assert line, proc.stderr.read().decode()[-3000:]
+        child = int(line.split()[0])
+        os.kill(child, 0)  # asleep in the fsync of its temporary file
+        os.kill(child, signal.SIGTERM)
+
+        def reaped():  # the daemon's zombie child, or gone
+            try:
+                with open(f"/proc/{child}/stat") as fh:
+                    return fh.read().split(")")[-1].split()[0] == "Z"
+            except FileNotFoundError:
+                return True
+
+        wait_until(reaped, TIMEOUT, "the checkpoint child ended by SIGTERM")
+        assert proc.poll() is None  # the daemon itself ignores it (its handler queues)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(TIMEOUT)
+        proc.stdout.close()
+        proc.stderr.close()

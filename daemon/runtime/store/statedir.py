@@ -635,10 +635,17 @@ class StateDir:
             self._roll()  # records after the fork go to a segment of their own
         r, w = os.pipe()
         parent = os.getpid()
-        pid = os.fork()
-        if pid == 0:  # the child: never returns
-            os.close(r)
-            _child_checkpoint(self, seq, make_body, w, parent)
+        # stop signals wait (blocked) across the fork: one arriving before the child has
+        # dropped the parent's handlers would be swallowed by them; it is delivered, to a
+        # default disposition, when the child unblocks
+        mask = signal.pthread_sigmask(signal.SIG_BLOCK, _STOP_SIGNALS)
+        try:
+            pid = os.fork()
+            if pid == 0:  # the child: never returns
+                os.close(r)
+                _child_checkpoint(self, seq, make_body, w, parent, mask)
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, mask)
         os.close(w)
         os.set_blocking(r, False)
         self._bg = _Background(pid, seq, r, time.monotonic())
@@ -731,7 +738,11 @@ class _Background:
 _PR_SET_PDEATHSIG = 1
 
 
-def _child_checkpoint(store: StateDir, seq: int, make_body, w: int, parent: int) -> None:
+_STOP_SIGNALS = (signal.SIGTERM, signal.SIGINT, signal.SIGHUP)
+
+
+def _child_checkpoint(store: StateDir, seq: int, make_body, w: int, parent: int,
+                      mask) -> None:
     """The forked child's whole life: build, encode, write, fsync, rename; then ``_exit``.
 
     Exit status 0 on success; otherwise a line on the pipe (``io:`` for a failed write or
@@ -747,8 +758,9 @@ def _child_checkpoint(store: StateDir, seq: int, make_body, w: int, parent: int)
             signal.set_wakeup_fd(-1)
         except ValueError:
             pass  # not the main thread: no wake-up fd was set there
-        for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+        for sig in _STOP_SIGNALS:
             signal.signal(sig, signal.SIG_DFL)
+        signal.pthread_sigmask(signal.SIG_SETMASK, mask)  # a pending stop signal ends it here
         try:
             ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, signal.SIGKILL)
         except (OSError, AttributeError):
