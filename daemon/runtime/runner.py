@@ -713,6 +713,9 @@ class ModelRunner:
             "noise_std": math.sqrt(p.noise_var) if p.noise_var == p.noise_var else math.nan,
             "status": self._status_now(),
             "features": self.n_features,
+            # the feature buffer: rows held and the bytes of its arrays (check-config's estimate)
+            "buffer_rows": len(self.aligner),
+            "buffer_bytes": self.aligner.nbytes,
             "predictions": self.n_predictions,
             "lab_results": self.n_lab,
             "learned": self.n_learned,
