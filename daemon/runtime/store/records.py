@@ -48,14 +48,9 @@ def encode_checkpoint(seq: int, body: dict) -> bytes:
     return CHECKPOINT_MAGIC + _HEADER.pack(len(payload), zlib.crc32(payload)) + payload
 
 
-def checkpoint_seq(data: bytes) -> int:
-    """The seq of a checkpoint file's bytes, checking the framing and the CRC of the whole
-    payload but decoding only the ``"seq"`` at its start; raises :class:`StoreError`.
-
-    For the fallback checkpoint, whose body recovery does not use: a checkpoint that passes
-    this and yet does not decode would have been written by a broken encoder, not damaged.
-    """
-    data = bytes(data)
+def _checked_frame(data: bytes) -> int:
+    """The offset of a checkpoint file's payload, once its magic, length and CRC check;
+    raises :class:`StoreError`."""
     head = len(CHECKPOINT_MAGIC) + _HEADER.size
     if len(data) < head:
         raise StoreError(f"checkpoint too short: {len(data)} bytes")
@@ -66,6 +61,18 @@ def checkpoint_seq(data: bytes) -> int:
         raise StoreError(f"checkpoint is {len(data)} bytes, its header says {head + length}")
     if zlib.crc32(memoryview(data)[head:]) != crc:
         raise StoreError("checkpoint CRC mismatch")
+    return head
+
+
+def checkpoint_seq(data: bytes) -> int:
+    """The seq of a checkpoint file's bytes, checking the framing and the CRC of the whole
+    payload but decoding only the ``"seq"`` at its start; raises :class:`StoreError`.
+
+    For the fallback checkpoint, whose body recovery does not use: a checkpoint that passes
+    this and yet does not decode would have been written by a broken encoder, not damaged.
+    """
+    data = bytes(data)
+    head = _checked_frame(data)
     # the payload is the map {"seq": n, "body": ...} (fixmap of 2, fixstr "seq", then n as a
     # msgpack unsigned integer: positive fixint, or 0xcc..0xcf and 1, 2, 4, 8 big-endian bytes)
     key = b"\x82" + _SEQ_KEY
@@ -87,17 +94,8 @@ def checkpoint_seq(data: bytes) -> int:
 def decode_checkpoint(data: bytes) -> tuple[int, dict]:
     """``(seq, body)`` of a checkpoint file's bytes; raises :class:`StoreError` if damaged."""
     data = bytes(data)
-    head = len(CHECKPOINT_MAGIC) + _HEADER.size
-    if len(data) < head:
-        raise StoreError(f"checkpoint too short: {len(data)} bytes")
-    if data[:len(CHECKPOINT_MAGIC)] != CHECKPOINT_MAGIC:
-        raise StoreError(f"checkpoint magic is {data[:8]!r}, expected {CHECKPOINT_MAGIC!r}")
-    length, crc = _HEADER.unpack_from(data, len(CHECKPOINT_MAGIC))
-    if len(data) != head + length:
-        raise StoreError(f"checkpoint is {len(data)} bytes, its header says {head + length}")
-    payload = data[head:]
-    if zlib.crc32(payload) != crc:
-        raise StoreError("checkpoint CRC mismatch")
+    head = _checked_frame(data)
+    payload, length = data[head:], len(data) - head
     try:
         obj = wire.unpack(payload, max(length, 1))
     except wire.WireError as exc:
