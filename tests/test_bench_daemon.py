@@ -30,7 +30,7 @@ def test_quick_benchmark_completes_and_prints_both_tables():
     for case in ("1 model x 8 inputs: throughput", "models interleaved: throughput",
                  "CPU per message at 5 000 msg/s paced", "latency at 5 000 msg/s",
                  "blocks of 256 (packed)", "memory per model, full buffers",
-                 "checkpoint of", "restart after", "50 models: start to ready",
+                 "checkpoint command of", "restart after", "50 models: start to ready",
                  "terms", "fsync always vs group"):
         rows = [line for line in out.splitlines() if line.startswith("| ") and case in line]
         assert rows, f"no row for {case!r}:\n{out[-4000:]}"
