@@ -74,3 +74,24 @@ def test_summaries_say_when_coverage_is_outside_the_band(pred_file):
     bad = report.summary_text(track)
     assert "BELOW the band" in bad and "too narrow" in bad and "a bias" in bad
     assert "calibration" in backtest.summary_text(res, "ppm").lower()
+
+
+def test_summary_gives_the_rmse_without_the_gated_results_too():
+    # a hand-made track: 4 lab results, one of them a blunder the gate rejected; the RMSE of
+    # the published predictions computed here by hand (numpy) with and without it
+    t = np.array([0.0, 10.0, 20.0, 30.0, 40.0])
+    mean = np.array([1.0, 2.0, 3.0, 4.0, 5.0])
+    fits = [{"t": 5.0, "y": 1.5, "z": 0.5, "reason": "ok"},
+            {"t": 15.0, "y": 2.0, "z": 0.0, "reason": "ok"},
+            {"t": 25.0, "y": 30.0, "z": 9.0, "reason": "gated"},
+            {"t": 35.0, "y": 3.0, "z": -1.0, "reason": "ok"}]
+    track = backtest.Track(model="m", t=t, mean=mean, std=np.ones(5), lo=mean - 2,
+                           hi=mean + 2, status=["learning"] * 5, trust=["normal"] * 5,
+                           fits=fits, alerts=[], meta={"level": 0.95})
+    text = report.summary_text(track)
+    published = np.array([1.0, 2.0, 3.0, 4.0])  # the newest prediction at or before each t
+    y = np.array([1.5, 2.0, 30.0, 3.0])
+    every = np.sqrt(np.mean((y - published) ** 2))
+    kept = np.sqrt(np.mean((y[[0, 1, 3]] - published[[0, 1, 3]]) ** 2))
+    assert f"RMSE at 4 lab results (as published at sample time): published {every:#.4g}" in text
+    assert f"without the 1 the gate rejected: published {kept:#.4g}" in text

@@ -111,16 +111,18 @@ _REF_LABELS = (("published", "published"), ("noforget_mean", "no forgetting"),
                ("persist", "persistence"))
 
 
-def reference_scores(track: Track) -> dict:
+def reference_scores(track: Track, *, without_gated: bool = False) -> dict:
     """RMSE at the lab results of the published prediction and of each reference the file
     holds: ``{label: (n, rmse)}`` over the same results (those where all of them exist).
 
     The published prediction for a lab sample is the one of the newest prediction time at or
     before the drawn time. In a backtest's file only the results after its training period
-    count, as in its summary.
+    count, as in its summary. ``without_gated``: leave out the results the model's gate
+    rejected (a blunder ten times off dominates every model's RMSE alike).
     """
     start = float(track.meta.get("static_train_end", -math.inf))
-    fits = [f for f in track.fits if math.isfinite(f.get("y", math.nan)) and f["t"] >= start]
+    fits = [f for f in track.fits if math.isfinite(f.get("y", math.nan)) and f["t"] >= start
+            and not (without_gated and f.get("reason") == "gated")]
     if not fits or track.t.size == 0:
         return {}
     order = np.argsort(track.t, kind="stable")
@@ -216,6 +218,11 @@ def summary_text(track: Track) -> str:
             ratio = refs["published"][1] / refs["bias update"][1]
             lines.append(f"  published / bias update = {ratio:.3g} "
                          + ("(the model wins)" if ratio < 1 else "(the bias update wins)"))
+        accepted = reference_scores(track, without_gated=True)
+        if accepted and next(iter(accepted.values()))[0] < n:
+            m = next(iter(accepted.values()))[0]
+            lines.append(f"  without the {n - m} the gate rejected: "
+                         + ", ".join(f"{k} {r:#.4g}" for k, (_, r) in accepted.items()))
     v = coverage_verdict(lab["z"][keep], level)
     pct = f"{100 * level:g}%"
     if v["n"]:
