@@ -357,7 +357,7 @@ class Target:
                 try:
                     self.request({"cmd": "stop"}, timeout=5)
                 except RuntimeError:
-                    pass
+                    pass  # a relay that does not answer is killed below
             elif clean:
                 self.proc.terminate()
             else:

@@ -28,18 +28,10 @@ MODEL_STATE_SCHEMA = "posteriord.model-config/1"
 _ADDED_LATER = ("offset_drift", "linear_drift", "higher_drift", "noise_adaptive",
                 "noise_half_life", "vb_iterations", "adapt_offset", "offset_drift_min",
                 "offset_drift_max", "adapt_window")
-# Descriptive settings added after the schema above (not learning settings): absent from
-# older state folders, read as not set.
-_DESCRIPTIVE_LATER = ("target", "unit")
-# Settings of the lab and alerts added later (they never enter the fingerprint): absent
-# from older state folders and read as their default there.
-_ADDED_LATER_RUNTIME = {
-    "stale_factor": ("model.lab", "stale_factor"), "stale_min": ("model.lab", "stale_min"),
-    "stale_max": ("model.lab", "stale_max"),
-    "region_min_samples": ("model.alerts", "region_min_samples"),
-    "commissioning_labs": ("model.alerts", "commissioning_labs"),
-    "commissioning_time": ("model.alerts", "commissioning_time"),
-}
+# Settings added after the schema above that are no learning settings (descriptive, lab and
+# alerts; never in the fingerprint): absent from older state folders, read as their default.
+_OTHER_LATER = ("target", "unit", "stale_factor", "stale_min", "stale_max",
+                "region_min_samples", "commissioning_labs", "commissioning_time")
 
 
 @dataclass(frozen=True)
@@ -266,11 +258,9 @@ class ModelConfig:
             got = state.get("schema") if isinstance(state, dict) else type(state).__name__
             raise ValueError(f"model config schema must be {MODEL_STATE_SCHEMA!r}, got {got!r}")
         names = {f.name for f in fields(cls)}
-        later = {f.name: f.default for f in fields(cls) if f.name in _ADDED_LATER}
+        later = {f.name: f.default for f in fields(cls)
+                 if f.name in _ADDED_LATER or f.name in _OTHER_LATER}
         state = {**later, **state}
-        state = {**{k: _default("model", k) for k in _DESCRIPTIVE_LATER}, **state}
-        state = {**{k: _default(sec, key) for k, (sec, key) in _ADDED_LATER_RUNTIME.items()},
-                 **state}
         keys = set(state) - {"schema"}
         if keys != names:
             raise ValueError(f"model config keys differ from the settings: missing "
