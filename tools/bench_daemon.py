@@ -24,7 +24,7 @@ times), 3 / 9 / 45 / 561 terms, and WAL fsync group vs always; ``--detectors`` 1
 drift detectors on and off. Each prints markdown rows ready to paste into the README.
 
     OPENBLAS_NUM_THREADS=1 .venv/bin/python tools/bench_daemon.py [--quick] [--scaling] \
-        [--only-scaling] [--detectors] [--repeats N]
+        [--only-scaling] [--detectors] [--repeats N] [--only CASE ...]
 """
 
 from __future__ import annotations
@@ -705,21 +705,32 @@ class Bench:
                   [killed[0] / c for c in clean], "<= 2 s")
 
     # ------------------------------------------------------------------ the two tables
+    CASES = ("single", "paced", "blocks", "200", "10000", "memory", "checkpoint", "restart")
+
+    def want(self, case):
+        return not self.args.only or case in self.args.only
+
     def cases(self):
         t = Table("posteriord daemon benchmark, case table of issue 13")
         n = self.n
-        one = Target("daemon")
-        try:
-            self.throughput_case(t, "1 model x 8 inputs", one, n, ">= 0.85")
-            self.paced_case(t, one, "1 model: CPU per message at 5 000 msg/s paced",
-                            "1 model: latency at 5 000 msg/s")
-            self.blocks_case(t, one)
-        finally:
-            one.close()
-            one.remove()
-        sizes = ((50, ">= 0.75"), (200, ">= 0.50")) if self.quick else \
-            ((200, ">= 0.75"), (10000, ">= 0.50"))
-        for n_models, bar in sizes:
+        if any(self.want(c) for c in ("single", "paced", "blocks")):
+            one = Target("daemon")
+            try:
+                if self.want("single"):
+                    self.throughput_case(t, "1 model x 8 inputs", one, n, ">= 0.85")
+                if self.want("paced"):
+                    self.paced_case(t, one, "1 model: CPU per message at 5 000 msg/s paced",
+                                    "1 model: latency at 5 000 msg/s")
+                if self.want("blocks"):
+                    self.blocks_case(t, one)
+            finally:
+                one.close()
+                one.remove()
+        sizes = ((50, ">= 0.75", "200"), (200, ">= 0.50", "10000")) if self.quick else \
+            ((200, ">= 0.75", "200"), (10000, ">= 0.50", "10000"))
+        for n_models, bar, case in sizes:
+            if not self.want(case):
+                continue
             tg = Target("daemon", n_models=n_models, train=self.train(n_models))
             try:
                 self.throughput_case(t, f"{n_models:,} models interleaved", tg,
@@ -727,9 +738,12 @@ class Bench:
             finally:
                 tg.close()
                 tg.remove()
-        self.memory_case(t)
-        self.checkpoint_case(t)
-        self.restart_case(t)
+        if self.want("memory"):
+            self.memory_case(t)
+        if self.want("checkpoint"):
+            self.checkpoint_case(t)
+        if self.want("restart"):
+            self.restart_case(t)
         return t
 
     def detectors(self):
@@ -834,6 +848,8 @@ def main():
     ap.add_argument("--detectors", action="store_true",
                     help="also 1 model with the drift detectors on and off")
     ap.add_argument("--repeats", type=int, default=0, help="runs per case (default 3, quick 2)")
+    ap.add_argument("--only", action="append", choices=Bench.CASES, default=[],
+                    help="run only this case of the case table (repeatable)")
     args = ap.parse_args()
     bench = Bench(args)
     started = time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime())
