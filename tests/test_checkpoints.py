@@ -237,17 +237,17 @@ def test_checkpoint_by_wal_size(tmp_path, limit):
     started = []
     folder = tmp_path / "state"
     for m in msgs:
-        before = svc.store.wal_bytes
+        before, last = svc.store.wal_bytes, svc.store.last_seq
         svc.process([m[3]])
-        now = svc.store.wal_bytes
-        svc._housekeeping()
         if not svc.store.checkpoint_running:
-            assert limit == 0 or now < limit
+            svc._housekeeping()  # nor between wake-ups: neither size nor time is due
+            assert not svc.store.checkpoint_running
+            assert limit == 0 or svc.store.wal_bytes < limit
             continue
-        # started in this turn, by size alone: the log crossed the limit just now
-        assert before < limit <= now
+        # started in this turn, by size alone, right after the record that crossed the limit
+        assert before < limit and svc.store._bg.seq == svc.store.last_seq == last + 1
         if not started:  # the count is that of the framing on disk
-            assert now == wal_frame_bytes(folder)
+            assert before < limit <= wal_frame_bytes(folder)
         started.append(svc.store._bg.seq)
         svc._checkpoint_polled(svc.store.wait_checkpoint())
         assert svc.checkpoint_seq == started[-1] == svc.store.last_seq
@@ -267,6 +267,41 @@ def test_checkpoint_by_wal_size(tmp_path, limit):
             assert learned_state(back.runners[m]) == learned_state(svc.runners[m])
         back.close()
     svc.close()
+
+
+def test_checkpoint_by_wal_size_inside_one_batch(tmp_path):
+    # a backlog taken in one wake-up: the housekeeping between wake-ups never runs, yet the
+    # log is checkpointed as it crosses the limit, and what is published does not change
+    msgs = [m[3] for m in kill_stream()[0]]
+    runs = {}
+    for limit in (0, 3000):
+        svc = bench(tmp_path / f"state{limit}", [model_a(), model_b()], fs=NoSyncFs(),
+                    checkpoint_every="1h", checkpoint_wal_bytes=limit)
+        first = svc.checkpoints
+        svc.process(msgs)
+        if svc.store.checkpoint_running:
+            svc._checkpoint_polled(svc.store.wait_checkpoint())
+        runs[limit] = svc
+        if limit == 0:
+            assert svc.checkpoints == first and svc.checkpoint_seq == 0
+            continue
+        n = svc.store.last_seq
+        assert svc.checkpoints - first >= 2 and 0 < svc.checkpoint_seq < n
+        copy = crash_copy(svc, tmp_path / "copy")
+        back = bench(copy, [model_a(), model_b()], fs=NoSyncFs())
+        assert back.recovery.checkpoint_seq == svc.checkpoint_seq
+        assert back.replayed == n - svc.checkpoint_seq
+        for m in (A, B):
+            assert learned_state(back.runners[m]) == learned_state(svc.runners[m])
+        back.close()
+    sent = {k: [(topic, msgpack.packb(body)) for topic, body in svc.pub.sent]
+            for k, svc in runs.items()}  # bytes: nan is not equal to itself
+    assert sent[0] == sent[3000]
+    assert runs[0].store.last_seq == runs[3000].store.last_seq
+    for m in (A, B):
+        assert learned_state(runs[0].runners[m]) == learned_state(runs[3000].runners[m])
+    for svc in runs.values():
+        svc.close()
 
 
 def test_replay_that_skips_snapshots_gives_the_bytes_of_the_per_record_replay(tmp_path):

@@ -408,6 +408,29 @@ class Service:
         else:
             store.maybe_sync(now)
 
+    def _checkpoint_if_log_full(self) -> None:
+        """The checkpoint by log size inside a batch, right after a lab record is logged.
+
+        One wake-up may take a whole backlog (up to ``batch_limit`` messages, ``batch_bytes``
+        of payload: minutes of lab records after an outage); checked only between wake-ups,
+        the log would grow far past ``checkpoint_wal_bytes`` and a crash would replay all
+        of it. Here every runner's state is exactly that of the log up to this record, so a
+        fork is a checkpoint at this WAL position; the predictions still pending in the batch
+        are not state.
+        """
+        store = self.store
+        limit = self.config.daemon.checkpoint_wal_bytes
+        if store is None or limit <= 0 or store.wal_bytes < limit:
+            return
+        if store.checkpoint_running:
+            self._checkpoint_polled(store.poll_checkpoint())
+            if store.checkpoint_running:
+                return  # the log waits for the one being written
+        with _gc_paused():
+            store.begin_checkpoint(self.state_body)
+        # _dirty stays set: the rest of the batch changes the feature buffers
+        self._last_checkpoint = time.monotonic()
+
     def _checkpoint_polled(self, seq: int | None) -> None:
         """Account for a background checkpoint that ended (``seq``: it is durable)."""
         store = self.store
@@ -831,6 +854,7 @@ class Service:
         # logged before it is published: with fsync = "always" the fit/ message never tells
         # of a lab result a restart would not know
         self._log(record)
+        self._checkpoint_if_log_full()
         if not fit["accepted"]:
             self._rlog.warn(runner.name, fit["reason"], f"z={fit['z']:.2f} at t={fit['t']!r}")
         self.pub.send_multipart([b"fit/" + runner.name.encode(), wire.packb(fit)])
