@@ -22,6 +22,7 @@ import sys
 from pathlib import Path
 
 import msgpack
+import numpy as np
 import pytest
 from conftest import TIMEOUT, blas_env, wait_until
 from test_durability import (
@@ -43,7 +44,7 @@ from test_durability import (
 )
 
 from daemon.config import loads
-from daemon.runtime.service import Service, _snapshots_needed
+from daemon.runtime.service import Service, _ReplayTerms, _snapshots_needed
 from daemon.runtime.store import DurabilityError, OsFs, StateDir
 from daemon.workbench import plant
 
@@ -341,6 +342,54 @@ def test_replay_that_skips_snapshots_gives_the_bytes_of_the_per_record_replay(tm
         assert msgpack.packb(got) == msgpack.packb(want), m
         assert {k: got["monitor"][k] for k in LAB_DRIVEN} == \
             {k: want["monitor"][k] for k in LAB_DRIVEN}
+
+
+def test_replay_with_the_basis_of_a_block_gives_the_bytes_of_the_per_record_replay(
+        tmp_path, monkeypatch):
+    # the replay evaluates the basis of a block of one model's lab records in one call; a
+    # reload halfway replaces model A by one of another basis, where its blocks must end.
+    # Late results before the reload rewind to snapshots of A's first life, which the
+    # replay must still take (it once skipped them all and refused to start)
+    monkeypatch.setattr(_ReplayTerms, "BLOCK", 8)  # many blocks, some cut by the reload
+    msgs = shuffled_labs(kill_stream()[0], seed=37, size=3)
+    half = len(msgs) // 2
+    svc = bench(tmp_path / "state", [model_a(), model_b()], fs=NoSyncFs(),
+                checkpoint_every="1h", checkpoint_wal_bytes=0)
+    for i in range(0, half, 64):
+        svc.process([m[3] for m in msgs[i:min(i + 64, half)]])
+    changed = model_a(basis={"kind": "polynomial", "degree": 3, "family": "chebyshev"})
+    new = loads(config_text(tmp_path / "state", [changed, model_b()]), "<reload>").models
+    assert svc.adopt(new) == [B]
+    for i in range(half, len(msgs), 64):
+        svc.process([m[3] for m in msgs[i:i + 64]])
+    copy = crash_copy(svc, tmp_path / "copy")
+    svc.close()
+    store = StateDir(copy, fs=NoSyncFs())
+    store.open()
+    rec = store.recover()
+    store.close()
+    kinds = [r["k"] for r in rec.records]
+    assert kinds.count("model") == 1 and kinds.count("lab") > 8 * _ReplayTerms.BLOCK
+    text = config_text(copy, [model_a(), model_b()])
+    slow = Service(loads(text, "<slow>"))
+    slow.load_body(rec.checkpoint, rec.checkpoint_seq)
+    terms = _ReplayTerms(slow.runners, rec.records)
+    widths = set()
+    for i, record in enumerate(rec.records):  # record by record, each basis of its own
+        if record["k"] == "lab":
+            basis = slow.runners[record["m"]].basis
+            got = terms.get(i)
+            want = basis(np.asarray(record["x"], dtype=float))
+            assert got.shape == want.shape and got.tobytes() == want.tobytes(), i
+            widths.add((record["m"], len(got)))
+        slow.apply_record(record)
+    assert len({w for m, w in widths if m == A}) == 2  # both bases of A were used
+    fast = Service(loads(text, "<fast>"))
+    fast.restore(rec)
+    assert fast.replayed == len(rec.records)
+    for m in (A, B):
+        got, want = fast.runners[m].to_state(), slow.runners[m].to_state()
+        assert msgpack.packb(got) == msgpack.packb(want), m
 
 
 def test_startup_checkpoint_runs_in_the_background_only_when_the_config_changed_nothing(

@@ -497,14 +497,14 @@ class ModelRunner:
         record = {"k": "lab", "m": self.name, "t": t, "x": x, "y": y, "id": ident, "c": clock}
         return fit, record
 
-    def replay(self, record: dict, snapshot: bool = True) -> dict:
-        """Learn a lab result again from its write-ahead log record (``snapshot``: as in
-        :meth:`learn_row`)."""
+    def replay(self, record: dict, snapshot: bool = True, terms=None) -> dict:
+        """Learn a lab result again from its write-ahead log record (``snapshot``, ``terms``:
+        as in :meth:`learn_row`)."""
         return self.learn_row(record["t"], record["x"], record["y"], record["id"],
-                              record["c"], snapshot)
+                              record["c"], snapshot, terms)
 
     def learn_row(self, t: float, x, y: float, ident, clock: float,
-                  snapshot: bool = True) -> dict:
+                  snapshot: bool = True, terms=None) -> dict:
         """Learn from a lab result already matched with its features ``x`` (tags order).
 
         The one path by which lab results change the model, live and in replay. Returns the
@@ -523,7 +523,8 @@ class ModelRunner:
 
         ``snapshot=False`` (a replay that knows this result will be trimmed from
         :attr:`offered` before any later result is put before it) skips the snapshot taken
-        for a rewind; nothing else changes.
+        for a rewind; nothing else changes. ``terms``: the basis of ``x``, when a replay
+        has evaluated it already (the same bits).
         """
         self.n_lab += 1
         if self.frozen:
@@ -533,7 +534,7 @@ class ModelRunner:
         last = self.last_offered_t
         if last is not None and t <= last:
             k = self._place(t)
-        phi = self.basis(np.asarray(x, dtype=float))
+        phi = self.basis(np.asarray(x, dtype=float)) if terms is None else terms
         if not np.isfinite(phi).all():
             # finite readings far outside the range can overflow the basis
             raise Rejected("bad_x", f"the basis of the features at t={t!r} is not finite")

@@ -254,9 +254,10 @@ class Service:
         self.replayed = 0
         # a lenient replay may skip records, and then keeps every snapshot
         snaps = None if lenient else _snapshots_needed(rec.records)
+        terms = _ReplayTerms(self.runners, rec.records)
         for i, record in enumerate(rec.records):
             try:
-                self.apply_record(record, True if snaps is None else snaps[i])
+                self.apply_record(record, True if snaps is None else snaps[i], terms.get(i))
             except (StateError, ValueError, KeyError, TypeError) as exc:
                 if not lenient:
                     raise StateError(f"write-ahead log record {record.get('seq')} cannot be "
@@ -294,11 +295,13 @@ class Service:
         self.runners = runners
         self.received, self.rejected_unknown, self.reloads = received, unknown, reloads
 
-    def apply_record(self, record: dict, snapshot: bool = True) -> None:
+    def apply_record(self, record: dict, snapshot: bool = True, terms=None) -> None:
         """Replay one write-ahead log record (see the module docstring for the kinds).
 
         ``snapshot=False`` for a lab record whose rewind snapshot no later record can use
-        (see :func:`_snapshots_needed`); the result is the same to the last bit.
+        (see :func:`_snapshots_needed`); ``terms``: the basis terms of a lab record's
+        features, evaluated with those of the records after it (:class:`_ReplayTerms`).
+        The result is the same to the last bit.
         """
         kind = record.get("k")
         name = record.get("m")
@@ -323,7 +326,7 @@ class Service:
             runner.control(record["cmd"], record.get("note"))
             return
         try:
-            runner.replay(record, snapshot)
+            runner.replay(record, snapshot, terms)
         except Rejected as exc:
             raise StateError(f"lab result of {name} at t={record['t']!r} was learned before "
                              f"the restart but not in replay ({exc})") from None
@@ -1096,20 +1099,20 @@ def _snapshots_needed(records: list) -> list[bool]:
     known: when at least ``MAX_REWIND`` more lab records of the same model follow, all drawn
     after it, its entry is trimmed before any of them could rewind to it, so the snapshot
     (a copy of the detectors' state, most of a replayed record's bookkeeping) is work whose
-    result is thrown away. Records of a model that a later ``model`` or ``import`` record
-    replaces need none either. Anything else keeps it.
+    result is thrown away. A ``model`` or ``import`` record starts the model afresh: no
+    result after it rewinds to one before it, so the records before it are counted as those
+    of a model of their own (the late results among them still rewind to each other).
+    Anything else keeps it.
     """
     out = [True] * len(records)
     later: dict = {}  # model -> [lab records after this one, earliest drawn time among them]
-    replaced: set = set()
     for i in range(len(records) - 1, -1, -1):
         r = records[i]
         kind, name = r.get("k"), r.get("m")
         if kind in ("model", "import"):
-            replaced.add(name)
+            later.pop(name, None)
             continue
-        if kind != "lab" or name in replaced:
-            out[i] = kind != "lab"
+        if kind != "lab":
             continue
         t = r.get("t")
         if not isinstance(t, float) or t != t:
@@ -1123,6 +1126,70 @@ def _snapshots_needed(records: list) -> list[bool]:
         seen[0] += 1
         seen[1] = min(seen[1], t)
     return out
+
+
+class _ReplayTerms:
+    """The basis terms of the lab records of a replay, a block of one model's records at a
+    time.
+
+    One basis call for up to :attr:`BLOCK` rows instead of one per record: a basis is
+    evaluated elementwise, row by row (the batch/row equivalence every basis keeps, see
+    DEVELOPERS.md), so each row has the bits of its own call; each is handed out as a copy,
+    a fresh array as a call of its own returns. A block is evaluated with the runner that
+    holds the model when its first record is replayed, and ends before the next ``model`` or
+    ``import`` record of that model (which replaces the runner, and maybe its basis). A
+    record whose features are not a list of the basis's length gets None, and the runner
+    evaluates it as a live result (raising as it would).
+    """
+
+    BLOCK = 256
+
+    def __init__(self, runners: dict, records: list):
+        self.runners = runners
+        self.records = records
+        self.done: dict[int, np.ndarray | None] = {}
+        # per model, the indices of its lab records in order, None where a record replaces
+        # the runner; and where each lab record is in that list
+        self.order: dict = {}
+        self.at: dict[int, int] = {}
+        for j, r in enumerate(records):
+            kind = r.get("k")
+            if kind == "lab" or kind in ("model", "import"):
+                seq = self.order.setdefault(r.get("m"), [])
+                if kind == "lab":
+                    self.at[j] = len(seq)
+                seq.append(j if kind == "lab" else None)
+
+    def get(self, i: int):
+        done = self.done
+        if i in done:
+            return done.pop(i)
+        if i not in self.at:
+            return None
+        record = self.records[i]
+        name = record.get("m")
+        runner = self.runners.get(name)
+        if runner is None:
+            return None
+        n_inputs = runner.basis.n_inputs
+        k = self.at[i]
+        rows, where = [], []
+        for j in self.order[name][k:k + self.BLOCK]:
+            if j is None:
+                break
+            x = self.records[j].get("x")
+            if type(x) is list and len(x) == n_inputs:
+                rows.append(x)
+                where.append(j)
+        try:
+            block = runner.basis(np.array(rows, dtype=float))
+        except (TypeError, ValueError):
+            # some row is not numbers: each is evaluated (and refused) on its own
+            done.update(dict.fromkeys(where))
+            return done.pop(i, None)
+        for j, row in zip(where, block, strict=True):
+            done[j] = row.copy()
+        return done.pop(i, None)
 
 
 @contextmanager
