@@ -94,17 +94,21 @@ def run_one(preset: str, seed: int, *, days: float | None, train_days: float,
             "rmse": ug["model"].rmse, "bias": ug["bias"].rmse, "static": ug["static"].rmse,
             "ratio": bt.ratio_ungated, "ratio_static": ug["model"].rmse / ug["static"].rmse,
             "coverage": cov, "in_band": lo <= cov <= hi, "band": (lo, hi), "n": n,
-            "choice": tune._describe_choice(res.best) + _adapt_text(m),
+            "choice": tune._describe_choice(res.best) if label == "tuned"
+            else f"{label}: {_model_text(m)}",
             "warnings": len(res.warnings), "tune_s": t_tune})
     return rows
 
 
-def _adapt_text(m) -> str:
-    if not m.adapt_offset:
-        return ""
-    lo = m.offset_drift_min if m.offset_drift_min is not None else m.offset_drift / 100
-    hi = m.offset_drift_max if m.offset_drift_max is not None else m.offset_drift * 100
-    return (f", adapted {math.sqrt(lo * 3600):.3g}..{math.sqrt(hi * 3600):.3g} per 1h")
+def _model_text(m) -> str:
+    def per_h(q):
+        return f"{math.sqrt(q * 3600):.3g}"
+    out = f"offset drift {per_h(m.offset_drift or 0.0)} per 1h"
+    if m.adapt_offset:
+        rate = m.adaptation().rate
+        out += (f", adapted {per_h(rate.lo)}..{per_h(rate.hi)} per 1h, window "
+                f"{m.adapt_window:g}")
+    return out
 
 
 def table(rows: list[dict]) -> str:
