@@ -748,24 +748,32 @@ def _search_policy(p: dict, evaluate, dt_lab: float, around: dict | None = None)
 #: hour) scoring within :data:`FLAT_NATS` of the best counts as undetermined from this span.
 FLAT_SPAN = 16.0
 _FLAT_STEPS = 8  # steps of 4 in the offset rate scanned each way from the best
+#: Bounds of an adapted offset drift: the rates whose total score is within this of the best,
+#: the 95 % likelihood-ratio interval of one parameter (chi-square(1) 0.95 quantile / 2,
+#: Wilks 1938), with the prequential score as the log-likelihood.
+ADAPT_NATS = float(stats.chi2.ppf(0.95, 1) / 2.0)
 
 
-def _flat_range(p: dict, evaluate, top: float) -> tuple[float, float, dict]:
+def _flat_range(p: dict, evaluate, top: float, nats: float) -> tuple[float, float, dict]:
     """The contiguous offset drift rates around ``p["q"]`` (steps of 4) whose total score is
-    within :data:`FLAT_NATS` of the best (of them and ``top``): ``(lo, hi, best point)``."""
+    within ``nats`` of the best (of them and ``top``): ``(lo, hi, best point)``. The scan
+    goes on each way until a rate falls more than ``nats`` below the best, or
+    :data:`_FLAT_STEPS` steps."""
     res = {0: evaluate(p)}
+
+    def best_total():
+        return max(top, *(c.total for c in res.values() if math.isfinite(c.score)))
+
     for sign in (-1, 1):
         for j in range(1, _FLAT_STEPS + 1):
             k = sign * j
             res[k] = evaluate({**p, "q": p["q"] * 4.0 ** k})
-            best = max(top, *(c.total for c in res.values() if math.isfinite(c.score)))
-            if not (math.isfinite(res[k].score) and res[k].total >= best - FLAT_NATS):
+            if not (math.isfinite(res[k].score) and res[k].total >= best_total() - nats):
                 break
-    best = max(top, *(c.total for c in res.values() if math.isfinite(c.score)))
+    best = best_total()
     ks = sorted(res)
     k0 = max(ks, key=lambda k: _score(res[k]))
-    inside = [k for k in ks if math.isfinite(res[k].score)
-              and res[k].total >= best - FLAT_NATS]
+    inside = {k for k in ks if math.isfinite(res[k].score) and res[k].total >= best - nats}
     if k0 not in inside:
         return p["q"], p["q"], p
     lo = hi = k0
@@ -779,31 +787,34 @@ def _flat_range(p: dict, evaluate, top: float) -> tuple[float, float, dict]:
 def _adaptive_choice(current: dict, best_of: dict, evaluate):
     """The choice when the data do not determine the offset drift rate: adapt it online.
 
-    When the chosen forgetting is an offset drift, or no forgetting at all with an offset
-    drift scoring within :data:`FLAT_NATS` of it, the offset rates around it are scanned in
-    steps of 4. If those within :data:`FLAT_NATS` of the best span :data:`FLAT_SPAN` or more,
-    the training data cannot tell them apart, and any one of them is an arbitrary pick (on a
-    quiet fortnight the score may even prefer a rate hundreds of times below the unit's):
-    the choice becomes the offset drift adapted online by covariance matching
-    (`recursive.adaptive.RateMatch`) within that range, started at its geometric middle,
-    provided that it scores within :data:`FLAT_NATS` of the best too. Returns the point
-    chosen and the flat range (None if the rate is determined).
+    When the chosen forgetting is an offset drift, or the best offset drift scores within
+    :data:`FLAT_NATS` of the chosen policy (the data hardly tell them apart), the offset
+    rates around it are scanned in steps of 4. If those within :data:`FLAT_NATS` of the best
+    span :data:`FLAT_SPAN` or more, the training data cannot tell them apart and any one of
+    them is an arbitrary pick (on a quiet fortnight the score may even prefer a rate
+    hundreds of times below the unit's). The choice then becomes the offset drift adapted
+    online by covariance matching (`recursive.adaptive.RateMatch`) within the rates the data
+    do not exclude (within :data:`ADAPT_NATS` of the best), started at their geometric
+    middle, provided that it scores within :data:`FLAT_NATS` of the best as well. Returns the
+    point chosen and the flat range (None if the rate is determined).
     """
     top = evaluate(current).total
     if current["policy"] == "offset":
         p = dict(current)
-    elif current["policy"] == "none" or (current["policy"] == "stabilized"
-                                         and current["half_life"] is None):
+    else:
         p = best_of.get("offset")
         if p is None or not evaluate(p).total >= top - FLAT_NATS:
             return current, None
         p = {**p, "alpha": current["alpha"], "noise": current["noise"]}
-    else:
-        return current, None
-    lo, hi, p_best = _flat_range(p, evaluate, top)
+    lo, hi, p_best = _flat_range(p, evaluate, top, FLAT_NATS)
     if hi / lo < FLAT_SPAN:
         return current, None
-    cand = {**p_best, "q": math.sqrt(lo * hi), "adapt": (lo, hi)}
+    # the bounds: every rate the data do not exclude, the likelihood-ratio interval
+    blo, bhi, _ = _flat_range(p_best, evaluate, top, ADAPT_NATS)
+    blo, bhi = min(lo, blo), max(hi, bhi)
+    # started in the middle: starting at the top cost more score on a quiet fortnight than
+    # the adaptation later gained
+    cand = {**p_best, "q": math.sqrt(blo * bhi), "adapt": (blo, bhi)}
     c = evaluate(cand)
     if not (math.isfinite(c.score) and c.total >= max(top, evaluate(p_best).total) - FLAT_NATS):
         return current, (lo, hi)
