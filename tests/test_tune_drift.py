@@ -360,3 +360,56 @@ def c301_base() -> ModelConfig:
     from daemon.config import demo_config
 
     return demo_config().models[0]
+
+
+def _surface(shape, adapt_total=0.0, n=50):
+    """An evaluate() over a made-up score surface of the offset rate: ``shape(k)`` is the
+    total at ``q = 4**k`` (per second); the adapted candidate totals ``adapt_total``."""
+    seen = []
+
+    def evaluate(p):
+        seen.append(p)
+        if p.get("adapt") is not None:
+            total = adapt_total
+        elif p["policy"] != "offset":
+            total = 0.0
+        else:
+            total = shape(round(math.log(p["q"], 4.0)))
+        return tune.Candidate(alpha=1.0, noise=1.0, half_life=p["half_life"],
+                              score=total / n, rmse=1.0, coverage=0.95, gated=0, n=n,
+                              noise_std=1.0, policy=p["policy"], q=p["q"],
+                              adapt=p.get("adapt"))
+    return evaluate, seen
+
+
+def _point(policy="offset", q=1.0):
+    return {"alpha": 1.0, "noise": 1.0, "policy": policy, "half_life": None, "q": q}
+
+
+def test_adaptive_choice_on_made_up_surfaces():
+    # a sharp optimum: the rate is determined, nothing changes
+    ev, _ = _surface(lambda k: -3.0 * k * k)
+    got, flat = tune._adaptive_choice(_point(), {}, ev)
+    assert flat is None and got.get("adapt") is None
+    # flat from 4**-3 to 4**2, 1.5 nats down one step further out on each side, then a cliff:
+    # the flat range is 4**-3 .. 4**2, the bounds (ADAPT_NATS = 1.92) one step wider
+    def shape(k):
+        return 0.0 if -3 <= k <= 2 else (-1.5 if k in (-4, 3) else -10.0)
+    ev, _ = _surface(shape)
+    got, flat = tune._adaptive_choice(_point(), {}, ev)
+    assert flat == pytest.approx((4.0 ** -3, 4.0 ** 2))
+    assert got["adapt"] == pytest.approx((4.0 ** -4, 4.0 ** 3))
+    assert got["q"] == pytest.approx(math.sqrt(4.0 ** -4 * 4.0 ** 3))
+    # the same surface, but the adapted model scores 1.5 nats below: the fixed rate is kept,
+    # and the flat range is still reported
+    ev, _ = _surface(shape, adapt_total=-1.5)
+    got, flat = tune._adaptive_choice(_point(), {}, ev)
+    assert got == _point() and flat == pytest.approx((4.0 ** -3, 4.0 ** 2))
+    # another policy chosen, the best offset drift within FLAT_NATS of it: the offset
+    # drift's surface decides; more than FLAT_NATS below: nothing changes
+    ev, _ = _surface(shape)
+    got, flat = tune._adaptive_choice(_point("stabilized", None), {"offset": _point()}, ev)
+    assert got["policy"] == "offset" and got["adapt"] is not None
+    ev, _ = _surface(lambda k: -2.0 + shape(k))
+    got, flat = tune._adaptive_choice(_point("stabilized", None), {"offset": _point()}, ev)
+    assert flat is None and got["policy"] == "stabilized"

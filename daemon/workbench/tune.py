@@ -994,8 +994,8 @@ def table_text(res: TuneResult, *, top: int = 12, unit: str = "", source: str = 
                      f"{mark}")
     lines += [
         f"  ({len(res.candidates)} candidates evaluated, {len(ranked) - 1} on the grids and "
-        f"the rest refining the best; the chosen values are rounded to 3 significant "
-        f"digits)",
+        f"scans of the offset rate and the rest refining the best; the chosen values are "
+        f"rounded to 3 significant digits)",
     ]
     if len(res.by_policy) > 1:
         lines += ["", "best of each policy (total ln p over the scored results, against the "
