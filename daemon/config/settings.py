@@ -356,8 +356,9 @@ SETTINGS: tuple[Setting, ...] = (
             "residuals (Mehra, 1972): the rate that makes the weighted mean of the squared "
             "residuals equal their predicted variance, within `offset_drift_min` .. "
             "`offset_drift_max`; starts at `offset_drift`. Only with `offset` and "
-            "`term_drift`. Off by default (README, \"Drift and forgetting\", has the "
-            "figures).", learning=True),
+            "`term_drift`. Off by default; `tune` turns it on, with the bounds, when the "
+            "training data do not determine the offset rate (README, \"Drift and "
+            "forgetting\", has the figures).", learning=True),
     Setting("model.forgetting", "offset_drift_min", "offset_drift_min", DRIFT, None,
             'Lowest adapted offset drift, as `"<s> per <T>"`; only with `adapt_offset`.',
             learning=True, default_doc="`offset_drift` / 100 (in q = s^2 / T)"),

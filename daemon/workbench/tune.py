@@ -51,6 +51,7 @@ from daemon.workbench.backtest import History, lab_features
 
 __all__ = [
     "FLAT_NATS",
+    "FLAT_SPAN",
     "HALF_LIVES",
     "LAB_DELAY",
     "MIN_DOF",
@@ -189,7 +190,8 @@ class Candidate:
     rate (per second: of the offset for ``offset``, of every weight for ``random_walk``).
     ``noise_pred`` is the noise level implied by the predictive residuals (see
     :func:`prequential`), ``dof_min`` the fewest degrees of freedom of a scored prediction
-    (``inf`` with known noise).
+    (``inf`` with known noise). ``adapt`` is ``(lo, hi)``, the bounds of an offset drift rate
+    adapted online (``adapt_offset``; ``q`` is then its starting rate), or None.
     """
 
     alpha: float
@@ -206,6 +208,7 @@ class Candidate:
     q: float | None = None
     noise_pred: float = math.nan
     dof_min: float = math.nan
+    adapt: tuple[float, float] | None = None
 
     @property
     def total(self) -> float:
@@ -214,21 +217,25 @@ class Candidate:
 
 
 def _variant(base: ModelConfig, alpha: float, noise: float, half_life: float | None,
-             policy: str, q: float | None = None) -> ModelConfig:
+             policy: str, q: float | None = None, adapt=None) -> ModelConfig:
     m = replace(base, alpha=float(alpha))
     m = replace(m, noise_std=float(noise)) if base.noise_std is not None else \
         replace(m, noise_guess=float(noise))
     m = replace(m, q=None, offset_drift=None, linear_drift=None, higher_drift=None)
-    # tune scores and writes the model without the adaptive rates (turned on afterwards)
+    # the adaptive rates are off unless tune chose an adapted offset drift (``adapt``)
     m = replace(m, **{f: ModelConfig.__dataclass_fields__[f].default for f in _ADAPTIVE})
     if policy == "none":
         return replace(m, forgetting="none", half_life=None)
     if policy == "random_walk":
         return replace(m, forgetting="random_walk", half_life=None, q=float(q))
     if policy == "offset":
-        return replace(m, forgetting="offset" if half_life is not None else "term_drift",
-                       half_life=None if half_life is None else float(half_life),
-                       offset_drift=float(q))
+        m = replace(m, forgetting="offset" if half_life is not None else "term_drift",
+                    half_life=None if half_life is None else float(half_life),
+                    offset_drift=float(q))
+        if adapt is not None:
+            m = replace(m, adapt_offset=True, offset_drift_min=float(adapt[0]),
+                        offset_drift_max=float(adapt[1]), adapt_window=base.adapt_window)
+        return m
     if half_life is None:
         return replace(m, forgetting="none", half_life=None)
     return replace(m, forgetting=policy, half_life=float(half_life))
@@ -420,6 +427,7 @@ def prequential(model: ModelConfig, data: LabData, scored, lab_delay: float = 0.
     pred_noise = float(math.sqrt(np.nanmean(ratio))) if n and np.isfinite(ratio).any() \
         else math.nan
     policy, half_life, q = _policy_of(model)
+    rate = model.adaptation().rate if model.adapt_offset else None
     return Candidate(
         alpha=model.alpha,
         noise=model.noise_std if model.noise_std is not None else model.noise_guess,
@@ -429,7 +437,8 @@ def prequential(model: ModelConfig, data: LabData, scored, lab_delay: float = 0.
         coverage=float(np.mean(np.abs(zz) <= zq)) if n else math.nan,
         gated=int(np.count_nonzero(tr.gated)), n=n, noise_std=float(noise),
         policy=policy, q=q, noise_pred=pred_noise,
-        dof_min=float(np.nanmin(dof)) if n and not np.isnan(dof).all() else math.nan)
+        dof_min=float(np.nanmin(dof)) if n and not np.isnan(dof).all() else math.nan,
+        adapt=None if rate is None else (rate.lo, rate.hi))
 
 
 # ---------------------------------------------------------------------------------- search
@@ -439,7 +448,10 @@ class TuneResult:
 
     ``by_policy`` holds the best candidate of each policy compared, ``warnings`` what the
     engineer must know before using the choice (a flat score surface, slopes pinned to zero,
-    too few degrees of freedom), ``lab_delay`` the delay the results were scored at.
+    too few degrees of freedom), ``lab_delay`` the delay the results were scored at, ``flat``
+    the offset drift rates ``(lo, hi)`` (per second) that score within :data:`FLAT_NATS` of
+    the best when they span a factor :data:`FLAT_SPAN` or more (None otherwise): the data do
+    not determine the rate, and the choice adapts it online within them.
     """
 
     model: ModelConfig
@@ -454,6 +466,7 @@ class TuneResult:
     lab_delay: float = 0.0
     by_policy: dict = field(default_factory=dict)
     warnings: tuple = ()
+    flat: tuple[float, float] | None = None
 
 
 def _round_sig(v: float, digits: int = 3) -> float:
@@ -532,10 +545,11 @@ def tune(history: History, base: ModelConfig, *, until: float | None = None,
     order: list[Candidate] = []
 
     def model_of(p: dict) -> ModelConfig:
-        return _variant(base, p["alpha"], p["noise"], p["half_life"], p["policy"], p["q"])
+        return _variant(base, p["alpha"], p["noise"], p["half_life"], p["policy"], p["q"],
+                        p.get("adapt"))
 
     def evaluate(p: dict, scored, stage: str = "grid") -> Candidate:
-        key = (p["alpha"], p["noise"], p["half_life"], p["policy"], p["q"])
+        key = (p["alpha"], p["noise"], p["half_life"], p["policy"], p["q"], p.get("adapt"))
         c = cache.get(key)
         if c is None:
             c = replace(prequential(model_of(p), data, scored, lab_delay), stage=stage)
@@ -621,19 +635,25 @@ def tune(history: History, base: ModelConfig, *, until: float | None = None,
         if np.array_equal(new, scored):
             break
         scored = new
+    flat = None
+    if "half_life" in search and "offset" in policies:
+        current, flat = _adaptive_choice(current, best_of, lambda p, st="flat", s=scored:
+                                         evaluate(p, s, st))
     pol = current["policy"]
     chosen = {"alpha": _round_sig(current["alpha"]), "noise": _round_sig(current["noise"]),
               "policy": pol, "half_life": _round_half_life(current["half_life"]),
               "q": _round_drift(current["q"], pol)}
+    if current.get("adapt") is not None:
+        chosen["adapt"] = tuple(_round_drift(b, pol) for b in current["adapt"])
     best = evaluate(chosen, scored, "chosen")
     model = model_of(chosen)
     by_policy = {}
     for name, p in best_of.items():
         by_policy[name] = evaluate(p, scored) if name != pol else best
-    warnings = _warnings(model, best, by_policy, order, data, scored, lab_delay)
+    warnings = _warnings(model, best, by_policy, order, data, scored, lab_delay, flat)
     return TuneResult(model, best, order, int(data.t.size), int(np.count_nonzero(scored)),
                       burn_in, int(np.count_nonzero(~scored[burn_in:])), until, start,
-                      lab_delay, by_policy, tuple(warnings))
+                      lab_delay, by_policy, tuple(warnings), flat)
 
 
 def _score(c: Candidate) -> float:
@@ -724,6 +744,83 @@ def _search_policy(p: dict, evaluate, dt_lab: float, around: dict | None = None)
     return {**p, "half_life": h, "q": q}
 
 
+#: A range of offset drift rates (variance rates, a factor 4 = a factor 2 in the change per
+#: hour) scoring within :data:`FLAT_NATS` of the best counts as undetermined from this span.
+FLAT_SPAN = 16.0
+_FLAT_STEPS = 8  # steps of 4 in the offset rate scanned each way from the best
+#: Bounds of an adapted offset drift: the rates whose total score is within this of the best,
+#: the 95 % likelihood-ratio interval of one parameter (chi-square(1) 0.95 quantile / 2,
+#: Wilks 1938), with the prequential score as the log-likelihood.
+ADAPT_NATS = float(stats.chi2.ppf(0.95, 1) / 2.0)
+
+
+def _flat_range(p: dict, evaluate, top: float, nats: float) -> tuple[float, float, dict]:
+    """The contiguous offset drift rates around ``p["q"]`` (steps of 4) whose total score is
+    within ``nats`` of the best (of them and ``top``): ``(lo, hi, best point)``. The scan
+    goes on each way until a rate falls more than ``nats`` below the best, or
+    :data:`_FLAT_STEPS` steps."""
+    res = {0: evaluate(p)}
+
+    def best_total():
+        return max(top, *(c.total for c in res.values() if math.isfinite(c.score)))
+
+    for sign in (-1, 1):
+        for j in range(1, _FLAT_STEPS + 1):
+            k = sign * j
+            res[k] = evaluate({**p, "q": p["q"] * 4.0 ** k})
+            if not (math.isfinite(res[k].score) and res[k].total >= best_total() - nats):
+                break
+    best = best_total()
+    ks = sorted(res)
+    k0 = max(ks, key=lambda k: _score(res[k]))
+    inside = {k for k in ks if math.isfinite(res[k].score) and res[k].total >= best - nats}
+    if k0 not in inside:
+        return p["q"], p["q"], p
+    lo = hi = k0
+    while lo - 1 in inside:
+        lo -= 1
+    while hi + 1 in inside:
+        hi += 1
+    return p["q"] * 4.0 ** lo, p["q"] * 4.0 ** hi, {**p, "q": p["q"] * 4.0 ** k0}
+
+
+def _adaptive_choice(current: dict, best_of: dict, evaluate):
+    """The choice when the data do not determine the offset drift rate: adapt it online.
+
+    When the chosen forgetting is an offset drift, or the best offset drift scores within
+    :data:`FLAT_NATS` of the chosen policy (the data hardly tell them apart), the offset
+    rates around it are scanned in steps of 4. If those within :data:`FLAT_NATS` of the best
+    span :data:`FLAT_SPAN` or more, the training data cannot tell them apart and any one of
+    them is an arbitrary pick (on a quiet fortnight the score may even prefer a rate
+    hundreds of times below the unit's). The choice then becomes the offset drift adapted
+    online by covariance matching (`recursive.adaptive.RateMatch`) within the rates the data
+    do not exclude (within :data:`ADAPT_NATS` of the best), started at their geometric
+    middle, provided that it scores within :data:`FLAT_NATS` of the best as well. Returns the
+    point chosen and the flat range (None if the rate is determined).
+    """
+    top = evaluate(current).total
+    if current["policy"] == "offset":
+        p = dict(current)
+    else:
+        p = best_of.get("offset")
+        if p is None or not evaluate(p).total >= top - FLAT_NATS:
+            return current, None
+        p = {**p, "alpha": current["alpha"], "noise": current["noise"]}
+    lo, hi, p_best = _flat_range(p, evaluate, top, FLAT_NATS)
+    if hi / lo < FLAT_SPAN:
+        return current, None
+    # the bounds: every rate the data do not exclude, the likelihood-ratio interval
+    blo, bhi, _ = _flat_range(p_best, evaluate, top, ADAPT_NATS)
+    blo, bhi = min(lo, blo), max(hi, bhi)
+    # started in the middle: starting at the top cost more score on a quiet fortnight than
+    # the adaptation later gained
+    cand = {**p_best, "q": math.sqrt(blo * bhi), "adapt": (blo, bhi)}
+    c = evaluate(cand)
+    if not (math.isfinite(c.score) and c.total >= max(top, evaluate(p_best).total) - FLAT_NATS):
+        return current, (lo, hi)
+    return cand, (lo, hi)
+
+
 def _grid(axis: str, center) -> list:
     if axis == "alpha":
         return [center * 10.0 ** s for s in _ALPHA_STEPS]
@@ -788,15 +885,28 @@ def _describe_choice(c: Candidate) -> str:
         return f"{c.policy} half-life {h}"
     if c.policy == "random_walk":
         return f"random walk q {c.q:.3g}/s"
-    return f"offset drift {_drift_text(c.q, c)}" + (
-        f" + stabilized {h}" if c.half_life is not None else "")
+    rate = f"offset drift {_drift_text(c.q, c)}" if c.adapt is None else (
+        f"offset drift adapted {_drift_text(c.adapt[0], c, False)}.."
+        f"{_drift_text(c.adapt[1], c)}")
+    return rate + (f" + stabilized {h}" if c.half_life is not None else "")
 
 
 def _warnings(model: ModelConfig, best: Candidate, by_policy: dict, order: list,
-              data: LabData, scored, lab_delay: float) -> list[str]:
+              data: LabData, scored, lab_delay: float, flat=None) -> list[str]:
     """What the score cannot show: ties between policies and rates, pinned slopes, too few
     degrees of freedom."""
     out = []
+    if flat is not None:
+        lo, hi = (_drift_text(v, replace(best, policy="offset")) for v in flat)
+        if best.adapt is not None:
+            out.append(f"the data do not determine the offset drift rate: from {lo} to {hi} "
+                       f"score within {FLAT_NATS:g} nat of the best, so the rate is adapted "
+                       f"online within that range (adapt_offset, covariance matching of the "
+                       f"residuals), not fixed at an arbitrary value")
+        else:
+            out.append(f"the data do not determine the offset drift rate: from {lo} to {hi} "
+                       f"score within {FLAT_NATS:g} nat of the best; the rate adapted within "
+                       f"that range scored worse, so a fixed rate was kept")
     total = best.total
     rivals = [c for name, c in by_policy.items() if name != best.policy
               and math.isfinite(c.score) and total - c.total < FLAT_NATS]
@@ -807,7 +917,7 @@ def _warnings(model: ModelConfig, best: Candidate, by_policy: dict, order: list,
     same = [c for c in order if c.policy == best.policy and c.alpha == best.alpha
             and c.noise == best.noise and math.isfinite(c.score)
             and total - c.total < FLAT_NATS]
-    if best.policy in ("random_walk", "offset") and best.q:
+    if best.policy in ("random_walk", "offset") and best.q and flat is None:
         qs = [c.q for c in same if c.q and c.half_life == best.half_life]
         if qs and max(qs) / min(qs) >= 16.0:
             out.append(f"the data do not determine the drift rate: from "
@@ -838,8 +948,10 @@ def _warnings(model: ModelConfig, best: Candidate, by_policy: dict, order: list,
     return out
 
 
-def _drift_text(q: float, c: Candidate) -> str:
-    return f"{math.sqrt(q * _HOUR):.3g} per 1h" if c.policy == "offset" else f"q {q:.3g}/s"
+def _drift_text(q: float, c: Candidate, unit: bool = True) -> str:
+    if c.policy != "offset":
+        return f"q {q:.3g}/s"
+    return f"{math.sqrt(q * _HOUR):.3g}" + (" per 1h" if unit else "")
 
 
 # ---------------------------------------------------------------------------------- text
@@ -882,8 +994,8 @@ def table_text(res: TuneResult, *, top: int = 12, unit: str = "", source: str = 
                      f"{mark}")
     lines += [
         f"  ({len(res.candidates)} candidates evaluated, {len(ranked) - 1} on the grids and "
-        f"the rest refining the best; the chosen values are rounded to 3 significant "
-        f"digits)",
+        f"scans of the offset rate and the rest refining the best; the chosen values are "
+        f"rounded to 3 significant digits)",
     ]
     if len(res.by_policy) > 1:
         lines += ["", "best of each policy (total ln p over the scored results, against the "
@@ -973,6 +1085,13 @@ def model_toml(m: ModelConfig, comments=()) -> str:
     for key in ("offset_drift", "linear_drift", "higher_drift"):
         if getattr(m, key) is not None:
             out.append(f"{key} = {_str(format_drift(getattr(m, key)))}")
+    if m.adapt_offset:
+        out += ["# the offset drift adapts online within these bounds, starting at "
+                "offset_drift", "adapt_offset = true"]
+        for key in ("offset_drift_min", "offset_drift_max"):
+            if getattr(m, key) is not None:
+                out.append(f"{key} = {_str(format_drift(getattr(m, key)))}")
+        out.append(f"adapt_window = {_num(m.adapt_window)}")
     out += ["", "[model.gate]", f"k = {_num(m.gate or 0.0)}"]
     if m.gate:
         out.append(f"release = {m.gate_release}")
