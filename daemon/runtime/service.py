@@ -769,16 +769,13 @@ class Service:
             lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
             status = batch.status
             emit = self._emitter()
-            packb = wire.packb
+            pack = wire.pack_prediction
             trusts = batch.trust
             marks = dict(batch.marks)
             for i, t in enumerate(ts):
-                body = {"t": t, "mean": mean[i], "std": std[i], "var": var[i], "lo": lo[i],
-                        "hi": hi[i], "level": level, "dof": dof[i], "status": status[i],
-                        "trust": trust if trusts is None else trusts[i]}
-                if has_id and ids[i] is not None:
-                    body["id"] = ids[i]
-                emit(topic, packb(body))
+                emit(topic, pack(t, mean[i], std[i], var[i], lo[i], hi[i], level, dof[i],
+                                 status[i], trust if trusts is None else trusts[i],
+                                 ids[i] if has_id else None))
                 if marks and i in marks:
                     # each sample's alerts right after its own prediction, as if it had
                     # come alone
