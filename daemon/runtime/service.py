@@ -179,6 +179,9 @@ class Service:
         # None (the backtest) admits any time, so a replay depends on the file alone
         self._wall_clock = wall_clock
         self._internal_logged: set = set()
+        # the publisher's pred/ topic of each model, and its emitter (see _emitter)
+        self._topics: dict[str, bytes] = {}
+        self._emit: tuple | None = None
 
     # ------------------------------------------------------------------ hooks for later layers
     def extra_metrics(self):
@@ -522,12 +525,15 @@ class Service:
         self._notify = Notifier.from_environment()
         self._notify.ready(f"{len(self.runners)} model(s)")
         wd_ms = self._notify.poll_ms
+        # bound once: a paced feed turns this loop once per message
+        tick, poll, poll_ms = self._notify.tick, self.poller.poll, self._poll_ms
+        wake_fd = self._wake_r.fileno()  # the poller reports plain sockets by fd
         try:
             while not self._stop:
-                self._notify.tick()
-                wait = self._poll_ms()
-                socks = dict(self.poller.poll(wait if wd_ms is None else min(wait, wd_ms)))
-                if self._wake_r.fileno() in socks:  # the poller reports plain sockets by fd
+                tick()
+                wait = poll_ms()
+                socks = dict(poll(wait if wd_ms is None else min(wait, wd_ms)))
+                if wake_fd in socks:
                     # empty the wake-up pipe; the events themselves are in the queue
                     with contextlib.suppress(BlockingIOError):
                         while self._wake_r.recv(4096):
@@ -750,12 +756,15 @@ class Service:
             # a block predicted in pieces around its lab values still gets one message
             parts.append((ts, ids, batch))
         else:
-            self._publish(runner, ts, ids, batch, seg.block, any(i is not None for i in ids))
+            # ids.count: no generator per visit for the common run of samples without ids
+            self._publish(runner, ts, ids, batch, seg.block, ids.count(None) != len(ids))
         seg.ts, seg.rows, seg.ids = [], [], []
 
     def _publish(self, runner: ModelRunner, ts: list, ids: list, batch, block: bool,
                  has_id: bool, packed: bool = False) -> None:
-        topic = b"pred/" + runner.name.encode()
+        topic = self._topics.get(runner.name)
+        if topic is None:
+            topic = self._topics[runner.name] = b"pred/" + runner.name.encode()
         level = runner.cfg.level
         trust = runner.trust
         if packed:
@@ -802,9 +811,17 @@ class Service:
 
         On a ZeroMQ socket two ``send`` calls cost a third of one ``send_multipart`` (which
         builds and checks a list each time); other publishers (the backtest's recorder) get
-        ``send_multipart``.
+        ``send_multipart``. Made once per publisher, not on every visit.
         """
         pub = self.pub
+        made = self._emit
+        if made is not None and made[0] is pub:
+            return made[1]
+        self._emit = (pub, self._make_emitter(pub))
+        return self._emit[1]
+
+    @staticmethod
+    def _make_emitter(pub):
         if isinstance(pub, zmq.Socket):
             send, more = pub.send, zmq.SNDMORE
 
