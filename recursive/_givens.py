@@ -26,7 +26,7 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "stabilized_rows", "term_drift", "update"]
+           "stabilized_rows", "term_drift", "update", "whiten_norm"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
 MAX_N = 1024
@@ -560,3 +560,46 @@ def rank_ratio(R, /) -> float:
             return math.nan
         best = min(best, ratio)
     return best
+
+
+def whiten_norm(x, mean, M, /) -> float:
+    """Length of ``x - mean`` whitened by ``M``: a Mahalanobis distance of one row.
+
+    Parameters
+    ----------
+    x : list or tuple of n numbers
+        The row.
+    mean : float64 buffer, shape (n,)
+        Centre.
+    M : float64 buffer, shape (n, n)
+        Whitening matrix, e.g. the inverse of a lower Cholesky factor ``L`` of the
+        covariance (then the result is ``sqrt((x - mean)^T (L L^T)^{-1} (x - mean))``).
+
+    Returns
+    -------
+    float
+        ``sqrt(sum_i y_i^2)`` with ``y_i = sum_j M_ij (x_j - mean_j)``.
+
+    Notes
+    -----
+    Every sum runs in index order over all of ``j`` (the zeros of a triangular ``M``
+    included: a zero times an infinite difference is nan, as in the array expression
+    ``Y = D[:, :1] * M[:, 0]; Y = Y + D[:, j:j + 1] * M[:, j]; ...``), each product and sum
+    rounded on its own, so the value has the same bits as that elementwise array path.
+    """
+    if not isinstance(x, list | tuple):
+        raise TypeError(f"x must be a list or tuple of numbers, got {type(x).__name__}")
+    mv = _array(mean, "mean", 1, None, False)
+    n = mv.shape[0]
+    _check_n(n)
+    Mv = _array(M, "M", 2, n, False)
+    if len(x) != n:
+        raise ValueError(f"x must have {n} values, got {len(x)}")
+    d = [_real(v, "x") - m for v, m in zip(x, mv.tolist(), strict=True)]
+    acc = 0.0
+    for i, row in enumerate(Mv.tolist()):
+        y = d[0] * row[0]
+        for j in range(1, n):
+            y = y + d[j] * row[j]
+        acc = y * y if i == 0 else acc + y * y
+    return math.sqrt(acc)

@@ -995,6 +995,76 @@ kernel_rank_ratio(PyObject *self, PyObject *arg)
     return PyFloat_FromDouble(best);
 }
 
+PyDoc_STRVAR(whiten_norm_doc,
+"whiten_norm($module, x, mean, M, /)\n--\n\n"
+"||M (x - mean)||: sqrt(sum_i y_i^2) with y_i = sum_j M[i, j] (x_j - mean_j).\n\n"
+"x is a list or tuple of n numbers, mean an (n,) and M an (n, n) float64 array. Every\n"
+"sum is taken in index order over all of j (zeros of a triangular M included), as the\n"
+"elementwise array expression does, so that a row's value has the same bits either way.");
+
+static PyObject *
+kernel_whiten_norm(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    const double *mean, *M;
+    Work wd;
+    if (check_nargs("whiten_norm", nargs, 3) < 0) {
+        return NULL;
+    }
+    PyObject *x = args[0];
+    if (!PyList_Check(x) && !PyTuple_Check(x)) {
+        PyErr_Format(PyExc_TypeError, "x must be a list or tuple of numbers, got %.100s",
+                     Py_TYPE(x)->tp_name);
+        return NULL;
+    }
+    if ((mean = get_array(&b, args[1], "mean", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (M = get_array(&b, args[2], "M", 2, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    if (PySequence_Fast_GET_SIZE(x) != n) {
+        release_all(&b);
+        PyErr_Format(PyExc_ValueError, "x must have %zd values, got %zd", n,
+                     PySequence_Fast_GET_SIZE(x));
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    PyObject **items = PySequence_Fast_ITEMS(x);
+    for (Py_ssize_t j = 0; j < n; j++) {
+        double v = PyFloat_CheckExact(items[j]) ? PyFloat_AS_DOUBLE(items[j])
+                                                : PyFloat_AsDouble(items[j]);
+        if (v == -1.0 && PyErr_Occurred()) {
+            work_free(&wd);
+            release_all(&b);
+            return NULL;
+        }
+        d[j] = v - mean[j];
+    }
+    double acc = 0.0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *Mi = M + i * n;
+        double y = d[0] * Mi[0];
+        for (Py_ssize_t j = 1; j < n; j++) {
+            /* a product and a sum, each rounded (volatile: never one fused multiply-add),
+             * as the array path computes them */
+            volatile double p = d[j] * Mi[j];
+            y = y + p;
+        }
+        volatile double q = y * y;
+        acc = i == 0 ? q : acc + q;
+    }
+    work_free(&wd);
+    release_all(&b);
+    return PyFloat_FromDouble(n == 0 ? 0.0 : sqrt(acc));
+}
+
 static PyMethodDef kernel_methods[] = {
     {"update", (PyCFunction)(void (*)(void))kernel_update, METH_FASTCALL, update_doc},
     {"stabilize", (PyCFunction)(void (*)(void))kernel_stabilize, METH_FASTCALL,
@@ -1009,6 +1079,8 @@ static PyMethodDef kernel_methods[] = {
     {"rank_ratio", kernel_rank_ratio, METH_O, rank_ratio_doc},
     {"stabilized_rows", (PyCFunction)(void (*)(void))kernel_stabilized_rows, METH_FASTCALL,
      stabilized_rows_doc},
+    {"whiten_norm", (PyCFunction)(void (*)(void))kernel_whiten_norm, METH_FASTCALL,
+     whiten_norm_doc},
     {NULL, NULL, 0, NULL},
 };
 

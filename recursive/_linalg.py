@@ -166,6 +166,8 @@ if _kernel is not None:
     term_drift = getattr(_kernel, "term_drift", None) or _givens.term_drift
     predict = _kernel.predict
     stabilized_rows = _kernel.stabilized_rows
+    # None with a kernel built before it had this function: callers keep their own path
+    whiten_norm = getattr(_kernel, "whiten_norm", None)
 else:
     rank_ratio = lapack_rank_ratio
     update = lapack_update
@@ -176,6 +178,8 @@ else:
     predict = lapack_predict
     # vectorized numpy already: the reference serves as the fallback
     stabilized_rows = _givens.stabilized_rows
+    # the reference in Python is no faster than the caller's own float path
+    whiten_norm = None
 
 
 def full_rank(r: np.ndarray) -> bool:

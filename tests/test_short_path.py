@@ -110,7 +110,19 @@ def test_quantile_scalar_and_its_memo_equal_the_array_function():
                 assert packed(t_quantile_scalar(d, p)) == packed(t_quantile(np.array(d), p))
 
 
-def test_region_distance_row_equals_the_rowwise_distances():
+@pytest.fixture(params=["kernel", "floats"])
+def row_path(request, monkeypatch):
+    """distance_row through the C kernel (where built) and through plain floats."""
+    from recursive.detect import region
+
+    if request.param == "floats":
+        monkeypatch.setattr(region, "_whiten_norm", None)
+    elif region._whiten_norm is None:
+        pytest.skip("recursive._kernel with whiten_norm is not built")
+    return request.param
+
+
+def test_region_distance_row_equals_the_rowwise_distances(row_path):
     rng = np.random.default_rng(8)
     reg = InputRegion(4, 50.0, 3.0)
     assert math.isnan(reg.distance_row([0.0] * 4))
@@ -142,7 +154,7 @@ def test_row_terms_equal_the_basis_of_the_row():
             assert packed(basis.row_terms(x)) == packed(basis(np.array([x]))), basis
 
 
-def test_region_distance_row_with_non_finite_readings():
+def test_region_distance_row_with_non_finite_readings(row_path):
     rng = np.random.default_rng(11)
     reg = InputRegion(3, 50.0, 3.0)
     for _ in range(20):
