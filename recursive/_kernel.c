@@ -995,6 +995,32 @@ kernel_rank_ratio(PyObject *self, PyObject *arg)
     return PyFloat_FromDouble(best);
 }
 
+/* Read a list or tuple of n numbers into d; -1 with an exception set on failure. */
+static int
+read_row(PyObject *x, Py_ssize_t n, double *d)
+{
+    if (!PyList_Check(x) && !PyTuple_Check(x)) {
+        PyErr_Format(PyExc_TypeError, "x must be a list or tuple of numbers, got %.100s",
+                     Py_TYPE(x)->tp_name);
+        return -1;
+    }
+    if (PySequence_Fast_GET_SIZE(x) != n) {
+        PyErr_Format(PyExc_ValueError, "x must have %zd values, got %zd", n,
+                     PySequence_Fast_GET_SIZE(x));
+        return -1;
+    }
+    PyObject **items = PySequence_Fast_ITEMS(x);
+    for (Py_ssize_t j = 0; j < n; j++) {
+        double v = PyFloat_CheckExact(items[j]) ? PyFloat_AS_DOUBLE(items[j])
+                                                : PyFloat_AsDouble(items[j]);
+        if (v == -1.0 && PyErr_Occurred()) {
+            return -1;
+        }
+        d[j] = v;
+    }
+    return 0;
+}
+
 PyDoc_STRVAR(whiten_norm_doc,
 "whiten_norm($module, x, mean, M, /)\n--\n\n"
 "||M (x - mean)||: sqrt(sum_i y_i^2) with y_i = sum_j M[i, j] (x_j - mean_j).\n\n"
@@ -1011,12 +1037,6 @@ kernel_whiten_norm(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     if (check_nargs("whiten_norm", nargs, 3) < 0) {
         return NULL;
     }
-    PyObject *x = args[0];
-    if (!PyList_Check(x) && !PyTuple_Check(x)) {
-        PyErr_Format(PyExc_TypeError, "x must be a list or tuple of numbers, got %.100s",
-                     Py_TYPE(x)->tp_name);
-        return NULL;
-    }
     if ((mean = get_array(&b, args[1], "mean", 1, -1, 0)) == NULL) {
         return NULL;
     }
@@ -1025,27 +1045,14 @@ kernel_whiten_norm(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         release_all(&b);
         return NULL;
     }
-    if (PySequence_Fast_GET_SIZE(x) != n) {
-        release_all(&b);
-        PyErr_Format(PyExc_ValueError, "x must have %zd values, got %zd", n,
-                     PySequence_Fast_GET_SIZE(x));
-        return NULL;
-    }
     double *d = work_get(&wd, n);
-    if (d == NULL) {
+    if (d == NULL || read_row(args[0], n, d) < 0) {
+        work_free(&wd);
         release_all(&b);
         return NULL;
     }
-    PyObject **items = PySequence_Fast_ITEMS(x);
     for (Py_ssize_t j = 0; j < n; j++) {
-        double v = PyFloat_CheckExact(items[j]) ? PyFloat_AS_DOUBLE(items[j])
-                                                : PyFloat_AsDouble(items[j]);
-        if (v == -1.0 && PyErr_Occurred()) {
-            work_free(&wd);
-            release_all(&b);
-            return NULL;
-        }
-        d[j] = v - mean[j];
+        d[j] -= mean[j];
     }
     double acc = 0.0;
     for (Py_ssize_t i = 0; i < n; i++) {
@@ -1065,6 +1072,85 @@ kernel_whiten_norm(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     return PyFloat_FromDouble(n == 0 ? 0.0 : sqrt(acc));
 }
 
+PyDoc_STRVAR(scaled_row_doc,
+"scaled_row($module, out, x, lo, hi, width, /)\n--\n\n"
+"out[0, 0] = 1 and out[0, 1 + j] = ((x_j - lo_j) - (hi_j - x_j)) / width_j.\n\n"
+"The terms of an affine basis on inputs scaled to [-1, 1]: x a list or tuple of n\n"
+"numbers, lo, hi and width (n,) float64 arrays, out a writable (1, n + 1) float64 array.\n"
+"Each operation is rounded on its own, as the array expression does (same bits).");
+
+static PyObject *
+kernel_scaled_row(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    double *out;
+    const double *lo, *hi, *w;
+    Work wd;
+    if (check_nargs("scaled_row", nargs, 5) < 0) {
+        return NULL;
+    }
+    if ((lo = get_array(&b, args[2], "lo", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (hi = get_array(&b, args[3], "hi", 1, n, 0)) == NULL ||
+        (w = get_array(&b, args[4], "width", 1, n, 0)) == NULL ||
+        (out = get_matrix(&b, args[0], "out", 1, n + 1, 1)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL || read_row(args[1], n, d) < 0) {
+        work_free(&wd);
+        release_all(&b);
+        return NULL;
+    }
+    out[0] = 1.0;
+    for (Py_ssize_t j = 0; j < n; j++) {
+        out[1 + j] = ((d[j] - lo[j]) - (hi[j] - d[j])) / w[j];
+    }
+    work_free(&wd);
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(outside_doc,
+"outside($module, x, lo, hi, /)\n--\n\n"
+"True if some x_j < lo_j or x_j > hi_j (a nan is in range: it compares false with both).\n\n"
+"x is a list or tuple of n numbers, lo and hi (n,) float64 arrays.");
+
+static PyObject *
+kernel_outside(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    const double *lo, *hi;
+    Work wd;
+    if (check_nargs("outside", nargs, 3) < 0) {
+        return NULL;
+    }
+    if ((lo = get_array(&b, args[1], "lo", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (hi = get_array(&b, args[2], "hi", 1, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL || read_row(args[0], n, d) < 0) {
+        work_free(&wd);
+        release_all(&b);
+        return NULL;
+    }
+    int flag = 0;
+    for (Py_ssize_t j = 0; j < n && !flag; j++) {
+        flag = d[j] < lo[j] || d[j] > hi[j];
+    }
+    work_free(&wd);
+    release_all(&b);
+    return PyBool_FromLong(flag);
+}
+
 static PyMethodDef kernel_methods[] = {
     {"update", (PyCFunction)(void (*)(void))kernel_update, METH_FASTCALL, update_doc},
     {"stabilize", (PyCFunction)(void (*)(void))kernel_stabilize, METH_FASTCALL,
@@ -1081,6 +1167,9 @@ static PyMethodDef kernel_methods[] = {
      stabilized_rows_doc},
     {"whiten_norm", (PyCFunction)(void (*)(void))kernel_whiten_norm, METH_FASTCALL,
      whiten_norm_doc},
+    {"scaled_row", (PyCFunction)(void (*)(void))kernel_scaled_row, METH_FASTCALL,
+     scaled_row_doc},
+    {"outside", (PyCFunction)(void (*)(void))kernel_outside, METH_FASTCALL, outside_doc},
     {NULL, NULL, 0, NULL},
 };
 

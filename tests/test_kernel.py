@@ -813,3 +813,61 @@ def test_whiten_norm_bad_arguments(K):
         fn([1.0, 2.0, 3.0], mean, np.asfortranarray(np.tril(np.ones((3, 3)))))
     with pytest.raises(TypeError, match="positional argument"):
         fn([1.0, 2.0, 3.0], mean)
+
+
+def _fn(K, name):
+    fn = getattr(K, name, None)
+    if fn is None:
+        pytest.skip(f"this build of recursive._kernel predates {name}")
+    return fn
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 40])
+def test_scaled_row_has_the_bits_of_the_array_expression(K, n):
+    # reference: numpy's elementwise ((X - lo) - (hi - X)) / width, each operation rounded
+    fn = _fn(K, "scaled_row")
+    rng = np.random.default_rng(60 + n)
+    lo = rng.uniform(-100.0, 50.0, n)
+    hi = lo + rng.uniform(0.01, 300.0, n)
+    X = lo + (hi - lo) * rng.uniform(-0.5, 1.5, (50, n))
+    X[0, 0], X[1, -1] = math.inf, math.nan
+    with np.errstate(invalid="ignore"):
+        want = ((X - lo) - (hi - X)) / (hi - lo)
+    for i, x in enumerate(X.tolist()):
+        out = np.full((1, n + 1), -7.0)
+        assert fn(out, x, lo, hi, hi - lo) is None
+        assert out[0, 0] == 1.0
+        assert out[0, 1:].tobytes() == want[i].tobytes(), i
+
+
+@pytest.mark.parametrize("n", [1, 4, 9])
+def test_outside_equals_numpy_comparisons(K, n):
+    fn = _fn(K, "outside")
+    rng = np.random.default_rng(70 + n)
+    lo, hi = -np.ones(n), np.ones(n) * 2.0
+    X = rng.uniform(-1.5, 2.5, (200, n))
+    X[0] = lo
+    X[1] = hi  # the range is closed
+    X[2, 0] = math.nan  # a nan compares false with both bounds: not outside
+    for x in X:
+        assert fn(tuple(x.tolist()), lo, hi) is bool(np.any((x < lo) | (x > hi)))
+    assert fn([], np.zeros(0), np.zeros(0)) is False
+
+
+def test_row_kernels_bad_arguments(K):
+    scaled, out_ = _fn(K, "scaled_row"), _fn(K, "outside")
+    lo, hi = np.zeros(2), np.ones(2)
+    with pytest.raises(ValueError, match="2 values"):
+        scaled(np.empty((1, 3)), [1.0], lo, hi, hi - lo)
+    with pytest.raises(ValueError, match="shape"):
+        scaled(np.empty((1, 2)), [1.0, 2.0], lo, hi, hi - lo)
+    with pytest.raises(ValueError, match="writable"):
+        ro = np.empty((1, 3))
+        ro.setflags(write=False)
+        scaled(ro, [1.0, 2.0], lo, hi, hi - lo)
+    with pytest.raises(TypeError, match="list or tuple"):
+        out_(np.zeros(2), lo, hi)
+    with pytest.raises(TypeError):
+        out_([1.0, None], lo, hi)
+    with pytest.raises(ValueError, match="shape"):
+        out_([1.0, 2.0], lo, np.ones(3))

@@ -140,7 +140,20 @@ def test_region_distance_row_equals_the_rowwise_distances(row_path):
         flat.distances(np.array([[1.0, 2.5]]), rowwise=True)[0])
 
 
-def test_row_terms_equal_the_basis_of_the_row():
+@pytest.fixture(params=["kernel", "floats"])
+def basis_row_path(request, monkeypatch):
+    """row_terms and row_out_of_range through the C kernel (where built) and plain floats."""
+    from recursive import basis
+
+    if request.param == "floats":
+        monkeypatch.setattr(basis, "_scaled_row", None)
+        monkeypatch.setattr(basis, "_outside", None)
+    elif basis._scaled_row is None:
+        pytest.skip("recursive._kernel with scaled_row is not built")
+    return request.param
+
+
+def test_row_terms_equal_the_basis_of_the_row(basis_row_path):
     from recursive.basis import Identity
 
     rng = np.random.default_rng(10)
@@ -165,7 +178,7 @@ def test_region_distance_row_with_non_finite_readings(row_path):
             reg.distances(np.array([x]), rowwise=True)[0]), x
 
 
-def test_row_out_of_range_equals_out_of_range():
+def test_row_out_of_range_equals_out_of_range(basis_row_path):
     basis = Polynomial([Input("a", -1.0, 1.0), Input("b", 0.0, 10.0)], degree=2)
     for x in ([0.0, 5.0], [-1.0, 10.0], [-1.5, 5.0], [0.0, 10.5], [math.nan, 5.0],
               [2.0, -3.0]):
