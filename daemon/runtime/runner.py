@@ -310,7 +310,8 @@ class ModelRunner:
         interval, the detectors and the status, with the same bits as the general path
         (tested against it). None where that path does not apply (the general one then
         runs): a posterior that is not row by row, or not identified yet."""
-        xs = [np.array(r, dtype=float).tolist() for r in rows]
+        # the decoded rows are lists of floats already (the wire's single-sample path)
+        xs = [r if type(r) is list else np.array(r, dtype=float).tolist() for r in rows]
         basis = self.basis
         P = basis.row_terms(xs[0]) if len(xs) == 1 else np.concatenate(
             [basis.row_terms(x) for x in xs])
