@@ -26,7 +26,8 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "stabilized_rows", "term_drift", "update"]
+           "stabilized_rows", "term_drift", "update", "whiten_norm",
+           "scaled_row", "outside"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
 MAX_N = 1024
@@ -560,3 +561,91 @@ def rank_ratio(R, /) -> float:
             return math.nan
         best = min(best, ratio)
     return best
+
+
+def whiten_norm(x, mean, M, /) -> float:
+    """Length of ``x - mean`` whitened by ``M``: a Mahalanobis distance of one row.
+
+    Parameters
+    ----------
+    x : list or tuple of n numbers
+        The row.
+    mean : float64 buffer, shape (n,)
+        Centre.
+    M : float64 buffer, shape (n, n)
+        Whitening matrix, e.g. the inverse of a lower Cholesky factor ``L`` of the
+        covariance (then the result is ``sqrt((x - mean)^T (L L^T)^{-1} (x - mean))``).
+
+    Returns
+    -------
+    float
+        ``sqrt(sum_i y_i^2)`` with ``y_i = sum_j M_ij (x_j - mean_j)``.
+
+    Notes
+    -----
+    Every sum runs in index order over all of ``j`` (the zeros of a triangular ``M``
+    included: a zero times an infinite difference is nan, as in the array expression
+    ``Y = D[:, :1] * M[:, 0]; Y = Y + D[:, j:j + 1] * M[:, j]; ...``), each product and sum
+    rounded on its own, so the value has the same bits as that elementwise array path.
+    """
+    mv = _array(mean, "mean", 1, None, False)
+    n = mv.shape[0]
+    _check_n(n)
+    Mv = _array(M, "M", 2, n, False)
+    d = [v - m for v, m in zip(_row(x, n), mv.tolist(), strict=True)]
+    acc = 0.0
+    for i, row in enumerate(Mv.tolist()):
+        y = d[0] * row[0]
+        for j in range(1, n):
+            y = y + d[j] * row[j]
+        acc = y * y if i == 0 else acc + y * y
+    return math.sqrt(acc)
+
+
+def scaled_row(out, x, lo, hi, width, /) -> None:
+    """Terms of an affine basis of one row on inputs scaled to [-1, 1], written to ``out``.
+
+    Parameters
+    ----------
+    out : writable float64 buffer, shape (1, n + 1)
+        Receives ``1`` and then ``u_j = ((x_j - lo_j) - (hi_j - x_j)) / width_j``.
+    x : list or tuple of n numbers
+        The row.
+    lo, hi, width : float64 buffers, shape (n,)
+        Instrument ranges and their widths ``hi - lo``.
+
+    Notes
+    -----
+    ``u = (2 x - lo - hi) / (hi - lo)`` maps ``[lo, hi]`` onto ``[-1, 1]``; it is computed
+    in the grouping above, each operation rounded on its own, the bits of the array path.
+    """
+    lv = _array(lo, "lo", 1, None, False)
+    n = lv.shape[0]
+    _check_n(n)
+    hv = _array(hi, "hi", 1, n, False)
+    wv = _array(width, "width", 1, n, False)
+    ov = _matrix(out, "out", (1, n + 1), True)
+    d = _row(x, n)
+    ov[0, 0] = 1.0
+    for j, (v, a, b, w) in enumerate(zip(d, lv.tolist(), hv.tolist(), wv.tolist(),
+                                         strict=True)):
+        ov[0, 1 + j] = ((v - a) - (b - v)) / w
+
+
+def outside(x, lo, hi, /) -> bool:
+    """True if a value of the row ``x`` (list or tuple of n numbers) is below ``lo`` or
+    above ``hi`` (float64 buffers of shape (n,)); a nan is in range (it compares false)."""
+    lv = _array(lo, "lo", 1, None, False)
+    n = lv.shape[0]
+    _check_n(n)
+    hv = _array(hi, "hi", 1, n, False)
+    d = _row(x, n)
+    return any(v < a or v > b for v, a, b in zip(d, lv.tolist(), hv.tolist(), strict=True))
+
+
+def _row(x, n: int) -> list:
+    if not isinstance(x, list | tuple):
+        raise TypeError(f"x must be a list or tuple of numbers, got {type(x).__name__}")
+    if len(x) != n:
+        raise ValueError(f"x must have {n} values, got {len(x)}")
+    return [_real(v, "x") for v in x]

@@ -995,6 +995,162 @@ kernel_rank_ratio(PyObject *self, PyObject *arg)
     return PyFloat_FromDouble(best);
 }
 
+/* Read a list or tuple of n numbers into d; -1 with an exception set on failure. */
+static int
+read_row(PyObject *x, Py_ssize_t n, double *d)
+{
+    if (!PyList_Check(x) && !PyTuple_Check(x)) {
+        PyErr_Format(PyExc_TypeError, "x must be a list or tuple of numbers, got %.100s",
+                     Py_TYPE(x)->tp_name);
+        return -1;
+    }
+    if (PySequence_Fast_GET_SIZE(x) != n) {
+        PyErr_Format(PyExc_ValueError, "x must have %zd values, got %zd", n,
+                     PySequence_Fast_GET_SIZE(x));
+        return -1;
+    }
+    PyObject **items = PySequence_Fast_ITEMS(x);
+    for (Py_ssize_t j = 0; j < n; j++) {
+        double v = PyFloat_CheckExact(items[j]) ? PyFloat_AS_DOUBLE(items[j])
+                                                : PyFloat_AsDouble(items[j]);
+        if (v == -1.0 && PyErr_Occurred()) {
+            return -1;
+        }
+        d[j] = v;
+    }
+    return 0;
+}
+
+PyDoc_STRVAR(whiten_norm_doc,
+"whiten_norm($module, x, mean, M, /)\n--\n\n"
+"||M (x - mean)||: sqrt(sum_i y_i^2) with y_i = sum_j M[i, j] (x_j - mean_j).\n\n"
+"x is a list or tuple of n numbers, mean an (n,) and M an (n, n) float64 array. Every\n"
+"sum is taken in index order over all of j (zeros of a triangular M included), as the\n"
+"elementwise array expression does, so that a row's value has the same bits either way.");
+
+static PyObject *
+kernel_whiten_norm(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    const double *mean, *M;
+    Work wd;
+    if (check_nargs("whiten_norm", nargs, 3) < 0) {
+        return NULL;
+    }
+    if ((mean = get_array(&b, args[1], "mean", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (M = get_array(&b, args[2], "M", 2, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL || read_row(args[0], n, d) < 0) {
+        work_free(&wd);
+        release_all(&b);
+        return NULL;
+    }
+    for (Py_ssize_t j = 0; j < n; j++) {
+        d[j] -= mean[j];
+    }
+    double acc = 0.0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *Mi = M + i * n;
+        double y = d[0] * Mi[0];
+        for (Py_ssize_t j = 1; j < n; j++) {
+            /* a product and a sum, each rounded (volatile: never one fused multiply-add),
+             * as the array path computes them */
+            volatile double p = d[j] * Mi[j];
+            y = y + p;
+        }
+        volatile double q = y * y;
+        acc = i == 0 ? q : acc + q;
+    }
+    work_free(&wd);
+    release_all(&b);
+    return PyFloat_FromDouble(n == 0 ? 0.0 : sqrt(acc));
+}
+
+PyDoc_STRVAR(scaled_row_doc,
+"scaled_row($module, out, x, lo, hi, width, /)\n--\n\n"
+"out[0, 0] = 1 and out[0, 1 + j] = ((x_j - lo_j) - (hi_j - x_j)) / width_j.\n\n"
+"The terms of an affine basis on inputs scaled to [-1, 1]: x a list or tuple of n\n"
+"numbers, lo, hi and width (n,) float64 arrays, out a writable (1, n + 1) float64 array.\n"
+"Each operation is rounded on its own, as the array expression does (same bits).");
+
+static PyObject *
+kernel_scaled_row(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    double *out;
+    const double *lo, *hi, *w;
+    Work wd;
+    if (check_nargs("scaled_row", nargs, 5) < 0) {
+        return NULL;
+    }
+    if ((lo = get_array(&b, args[2], "lo", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (hi = get_array(&b, args[3], "hi", 1, n, 0)) == NULL ||
+        (w = get_array(&b, args[4], "width", 1, n, 0)) == NULL ||
+        (out = get_matrix(&b, args[0], "out", 1, n + 1, 1)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL || read_row(args[1], n, d) < 0) {
+        work_free(&wd);
+        release_all(&b);
+        return NULL;
+    }
+    out[0] = 1.0;
+    for (Py_ssize_t j = 0; j < n; j++) {
+        out[1 + j] = ((d[j] - lo[j]) - (hi[j] - d[j])) / w[j];
+    }
+    work_free(&wd);
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(outside_doc,
+"outside($module, x, lo, hi, /)\n--\n\n"
+"True if some x_j < lo_j or x_j > hi_j (a nan is in range: it compares false with both).\n\n"
+"x is a list or tuple of n numbers, lo and hi (n,) float64 arrays.");
+
+static PyObject *
+kernel_outside(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    const double *lo, *hi;
+    Work wd;
+    if (check_nargs("outside", nargs, 3) < 0) {
+        return NULL;
+    }
+    if ((lo = get_array(&b, args[1], "lo", 1, -1, 0)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t n = b.view[0].shape[0];
+    if (check_n(n) < 0 || (hi = get_array(&b, args[2], "hi", 1, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL || read_row(args[0], n, d) < 0) {
+        work_free(&wd);
+        release_all(&b);
+        return NULL;
+    }
+    int flag = 0;
+    for (Py_ssize_t j = 0; j < n && !flag; j++) {
+        flag = d[j] < lo[j] || d[j] > hi[j];
+    }
+    work_free(&wd);
+    release_all(&b);
+    return PyBool_FromLong(flag);
+}
+
 static PyMethodDef kernel_methods[] = {
     {"update", (PyCFunction)(void (*)(void))kernel_update, METH_FASTCALL, update_doc},
     {"stabilize", (PyCFunction)(void (*)(void))kernel_stabilize, METH_FASTCALL,
@@ -1009,6 +1165,11 @@ static PyMethodDef kernel_methods[] = {
     {"rank_ratio", kernel_rank_ratio, METH_O, rank_ratio_doc},
     {"stabilized_rows", (PyCFunction)(void (*)(void))kernel_stabilized_rows, METH_FASTCALL,
      stabilized_rows_doc},
+    {"whiten_norm", (PyCFunction)(void (*)(void))kernel_whiten_norm, METH_FASTCALL,
+     whiten_norm_doc},
+    {"scaled_row", (PyCFunction)(void (*)(void))kernel_scaled_row, METH_FASTCALL,
+     scaled_row_doc},
+    {"outside", (PyCFunction)(void (*)(void))kernel_outside, METH_FASTCALL, outside_doc},
     {NULL, NULL, 0, NULL},
 };
 

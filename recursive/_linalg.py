@@ -166,6 +166,10 @@ if _kernel is not None:
     term_drift = getattr(_kernel, "term_drift", None) or _givens.term_drift
     predict = _kernel.predict
     stabilized_rows = _kernel.stabilized_rows
+    # None with a kernel built before it had this function: callers keep their own path
+    whiten_norm = getattr(_kernel, "whiten_norm", None)
+    scaled_row = getattr(_kernel, "scaled_row", None)
+    outside = getattr(_kernel, "outside", None)
 else:
     rank_ratio = lapack_rank_ratio
     update = lapack_update
@@ -176,6 +180,8 @@ else:
     predict = lapack_predict
     # vectorized numpy already: the reference serves as the fallback
     stabilized_rows = _givens.stabilized_rows
+    # the references in Python are no faster than the callers' own float paths
+    whiten_norm = scaled_row = outside = None
 
 
 def full_rank(r: np.ndarray) -> bool:

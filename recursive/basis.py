@@ -20,6 +20,9 @@ from typing import Any
 
 import numpy as np
 
+from recursive._linalg import outside as _outside
+from recursive._linalg import scaled_row as _scaled_row
+
 __all__ = [
     "SCHEMA_VERSION",
     "FAMILIES",
@@ -285,6 +288,8 @@ class Basis(ABC):
 
     def row_out_of_range(self, x: list) -> bool:
         """``out_of_range(x).any()`` for one row given as a list of floats, without arrays."""
+        if _outside is not None:
+            return _outside(x, self._lo, self._hi)
         lim = self.__dict__.get("_limits")
         if lim is None:
             lim = self.__dict__["_limits"] = tuple(zip(self._lo.tolist(), self._hi.tolist(),
@@ -590,6 +595,10 @@ class Polynomial(Basis):
             return super().row_terms(x)
         if not self.scale:
             return np.array([[1.0, *x]], dtype=np.float64)
+        if _scaled_row is not None:
+            out = np.empty((1, self.n_features), dtype=np.float64)
+            _scaled_row(out, x, self._lo, self._hi, self._width)
+            return out
         lim = self.__dict__.get("_row_scale")
         if lim is None:
             lim = self.__dict__["_row_scale"] = tuple(zip(

@@ -11,6 +11,7 @@ against scikit-learn's ``Ridge`` and numpy's linear algebra.
 from __future__ import annotations
 
 import math
+import time
 import urllib.request
 from pathlib import Path
 
@@ -918,16 +919,30 @@ def test_shutdown_order_with_a_shared_context_and_no_metrics(start_service):
     assert h.stop() == ["feed", "control", "state", "publish"]
 
 
-class _Queue:
-    """Stands in for the SUB socket: hands out queued messages, then zmq.Again."""
+def _queued_sub(messages):
+    """A real SUB socket with ``messages`` (lists of frames) queued in it, and its context.
 
-    def __init__(self, messages):
-        self.messages = list(messages)
-
-    def recv_multipart(self, flags=0):
-        if not self.messages:
-            raise zmq.Again()
-        return self.messages.pop(0)
+    Over inproc a message sent after the subscription has reached the publisher is in the
+    subscriber's queue when ``send`` returns; probes are sent until one arrives, so it has.
+    """
+    ctx = zmq.Context()
+    pub, sub = ctx.socket(zmq.PUB), ctx.socket(zmq.SUB)
+    for s in (pub, sub):
+        s.setsockopt(zmq.LINGER, 0)
+    pub.setsockopt(zmq.SNDHWM, 0)
+    sub.setsockopt(zmq.RCVHWM, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    pub.bind("inproc://drain-test")
+    sub.connect("inproc://drain-test")
+    deadline = time.monotonic() + 10
+    while not sub.poll(20):
+        assert time.monotonic() < deadline, "the subscription never reached the publisher"
+        pub.send(b"probe")
+    while sub.poll(0):
+        sub.recv()
+    for frames in messages:
+        pub.send_multipart(frames)
+    return ctx, pub, sub
 
 
 @pytest.mark.parametrize(("limit", "budget", "sizes"), [
@@ -942,12 +957,35 @@ def test_drain_takes_what_is_queued_up_to_the_limits(limit, budget, sizes):
     svc.pub = Recorder()
     payload = msgpack.packb({"t": 1.0, "pad": "x" * 290})
     assert 290 < len(payload) < 334  # four cross 1000 bytes, three do not
-    svc.sub = _Queue([[b"C-301", payload]] * 10)
+    ctx, pub, svc.sub = _queued_sub([[b"C-301", payload]] * 10)
+    try:
+        seen = []
+        svc.process = lambda batch: seen.append(len(batch))
+        for _ in range(len(sizes) + 1):
+            svc.drain()
+        assert seen == sizes + [0]
+    finally:
+        ctx.destroy(linger=0)
+
+
+def test_drain_keeps_each_message_whole_whatever_its_number_of_frames():
+    # one, two and three frames, and a lone message (the drain asks whether a second one
+    # is queued before it tries to receive it)
+    messages = [[b"C-301"], [b"C-301", b"a"], [b"C-301", b"b", b"c"], [b"x", b""]]
+    svc = Service(loads(toml_config({"metrics": ""}, [c301_model()]), "<test>"),
+                  registry=CollectorRegistry())
+    svc.pub = Recorder()
     seen = []
-    svc.process = lambda batch: seen.append(len(batch))
-    for _ in range(len(sizes) + 1):
-        svc.drain()
-    assert seen == sizes + [0]
+    svc.process = lambda batch: seen.append(batch)
+    for queued, want in ((messages, [messages]), (messages[1:2], [messages[1:2]]), ([], [[]])):
+        ctx, pub, svc.sub = _queued_sub(queued)
+        try:
+            seen.clear()
+            svc.drain()
+            assert seen == want
+            assert not svc.sub.poll(0)  # nothing left behind
+        finally:
+            ctx.destroy(linger=0)
 
 
 def test_blocks_of_one_wake_up_are_predicted_together_and_answered_one_by_one(run):

@@ -77,6 +77,48 @@ def test_non_finite_floats_travel_as_ieee_754_doubles():
     assert math.isnan(back[0]) and back[1] == math.inf
 
 
+PRED_KEYS = ("t", "mean", "std", "var", "lo", "hi", "level", "dof", "status", "trust")
+
+
+@pytest.mark.parametrize("ident", [None, 7, -3, 2**40, "lab-17", "x" * MAX_ID_LEN])
+def test_a_single_prediction_has_the_bytes_msgpack_gives_its_map(ident):
+    # reference: msgpack.packb of the dict (the library's own map encoding, keys in
+    # insertion order), for ordinary, signed-zero, subnormal, huge and non-finite numbers
+    rng = np.random.default_rng(5)
+    specials = [0.0, -0.0, 5e-324, 1.7976931348623157e308, math.inf, -math.inf, math.nan]
+    for i in range(300):
+        nums = rng.standard_normal(8) * 10.0 ** rng.integers(-300, 300, 8)
+        nums = [float(v) for v in nums]
+        if i % 3 == 0:
+            nums[int(rng.integers(8))] = specials[i // 3 % len(specials)]
+        status = ("learning", "stale", "unidentified", "frozen", "waiting")[i % 5]
+        trust = (None, "normal", "caution", "untrusted", "commissioning")[i % 5]
+        body = dict(zip(PRED_KEYS, [*nums, status, trust], strict=True))
+        if ident is not None:
+            body["id"] = ident
+        assert wire.pack_prediction(*nums, status, trust, ident) == msgpack.packb(body), i
+
+
+def test_a_prediction_with_numbers_that_are_not_floats_is_the_map_too():
+    # an int is written as a msgpack int, a bool as true: the dict's encoding, not a float
+    for nums in ([1, 0.5, 0.5, 0.25, -1.0, 1.0, 0.95, 40.0],
+                 [1.0, True, 0.5, 0.25, -1.0, 1.0, 0.95, 40.0],
+                 [1.0, 0.5, 0.5, 0.25, -1.0, 1.0, 0.95, np.float64(40.0)]):
+        body = dict(zip(PRED_KEYS, [*nums, "learning", "normal"], strict=True))
+        assert wire.pack_prediction(*nums, "learning", "normal") == msgpack.packb(body)
+
+
+def test_unpack_limits_containers_by_the_payload_length():
+    # an array header claiming more items than the payload has bytes is refused outright
+    # (msgpack spec: array 32 is 0xdd and a 32-bit big-endian count)
+    with pytest.raises(WireError) as err:
+        wire.unpack(b"\xdd\x00\x10\x00\x00" + b"\xc0" * 10, LIMIT)
+    assert err.value.reason == "msgpack"
+    with pytest.raises(WireError) as err:
+        wire.unpack(b"\xdb\x00\x00\x01\x00abc", LIMIT)  # str 32 of 256 bytes, 3 given
+    assert err.value.reason == "msgpack"
+
+
 def test_unpack_is_the_inverse_of_msgpack_packb():
     obj = {"t": [1.0, 2.5], "x": [[1, 2], [3, 4]], "y": [None, 7.25], "id": ["a", 3]}
     assert wire.unpack(msgpack.packb(obj), LIMIT) == obj

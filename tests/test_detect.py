@@ -1065,3 +1065,60 @@ def test_trust_advance_is_step_without_the_result():
         assert two.to_state() == one.to_state() == three.to_state()
     with pytest.raises(ValueError, match="level"):
         two.advance(20.0, {"a": (5, 1.0, 1.0)})
+
+
+def _trust_reference(levels, count, clear_time, steps):
+    """The rules of the `Trust` Notes, written out plainly: (state, reasons, acknowledged)
+    after each step. ``steps`` holds ``(t, active, acknowledge_after)``."""
+    held = {}  # (name, level) -> [absent steps, absent since]
+    info, ack, out = {}, {}, []
+    for t, active, acknowledge in steps:
+        for name, (lvl, value, limit) in active.items():
+            for ell in range(1, lvl + 1):
+                held[(name, ell)] = [0, 0.0]
+            info[name] = (value, limit)
+        for (name, ell), rec in list(held.items()):
+            if ell <= active.get(name, (0,))[0]:
+                continue
+            if rec[0] == 0:
+                rec[1] = t
+            rec[0] += 1
+            if rec[0] >= count and t - rec[1] >= clear_time:
+                del held[(name, ell)]
+        tops = {}
+        for name, ell in held:
+            tops[name] = max(tops.get(name, 0), ell)
+        for name in list(ack):
+            if name not in tops:
+                del ack[name]  # cleared: coming back is a new, unacknowledged reason
+            else:
+                ack[name] = min(ack[name], tops[name])
+        if acknowledge:
+            ack = dict(tops)
+        reasons = tuple((n, tops[n], *info[n]) for n in sorted(tops))
+        acked = bool(tops) and all(ack.get(n, 0) >= tops[n] for n in tops)
+        out.append((levels[max(tops.values(), default=0)], reasons, acked))
+    return out
+
+
+@pytest.mark.parametrize("count,clear_time", [(1, 0.0), (3, 0.0), (2, 2.5), (4, 1.0)])
+def test_trust_follows_the_rules_of_its_notes_on_random_reasons(count, clear_time):
+    # reference: the hysteresis and acknowledgement rules as the class Notes state them
+    rng = np.random.default_rng(50 + count)
+    levels = ("normal", "caution", "untrusted")
+    steps, t = [], 0.0
+    for _ in range(400):
+        t += float(rng.choice([0.0, 0.5, 1.0]))
+        active = {}
+        for name in ("a", "b", "c"):
+            if rng.random() < 0.25:
+                active[name] = (int(rng.integers(1, 3)), float(rng.normal()), 1.0)
+        steps.append((t, active, bool(rng.random() < 0.05)))
+    want = _trust_reference(levels, count, clear_time, steps)
+    for checked in (False, True):
+        tr = Trust(levels, count, clear_time)
+        for (t, active, acknowledge), (state, reasons, acked) in zip(steps, want, strict=True):
+            tr.advance(t, active, checked=checked)
+            if acknowledge:
+                tr.acknowledge()
+            assert (tr.state, tr.reasons, tr.acknowledged) == (state, reasons, acked), t

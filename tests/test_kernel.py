@@ -727,3 +727,147 @@ def test_heap_workspaces_above_the_stack_size_give_the_numpy_results():
     big = _kernel.MAX_N + 1
     with pytest.raises(ValueError, match=f"at most {_kernel.MAX_N}"):
         _kernel.predict(np.eye(big), np.ones(big), np.ones(big))
+
+
+def _whiten(K):
+    fn = getattr(K, "whiten_norm", None)
+    if fn is None:
+        pytest.skip("this build of recursive._kernel predates whiten_norm")
+    return fn
+
+
+def _whitening(rng, n):
+    """A covariance, its mean, and M = L^{-1} for its lower Cholesky factor L."""
+    A = rng.normal(size=(n + 3, n)) * rng.uniform(0.1, 10.0, n)
+    cov = A.T @ A / (n + 3) + 1e-3 * np.eye(n)
+    L = np.linalg.cholesky(cov)
+    M = np.ascontiguousarray(solve_triangular(L, np.eye(n), lower=True))
+    return cov, rng.normal(size=n), M
+
+
+@pytest.mark.parametrize("n", [1, 2, 5, 8, 17])
+def test_whiten_norm_is_the_mahalanobis_distance_of_scipy(K, n):
+    # scipy.spatial.distance.mahalanobis(u, v, VI) = sqrt((u - v)^T VI (u - v))
+    from scipy.spatial.distance import mahalanobis
+
+    fn = _whiten(K)
+    rng = np.random.default_rng(40 + n)
+    cov, mean, M = _whitening(rng, n)
+    VI = np.linalg.inv(cov)
+    for _ in range(20):
+        x = (mean + rng.normal(size=n) * 3.0).tolist()
+        assert fn(x, mean, M) == pytest.approx(mahalanobis(x, mean, VI), rel=1e-9)
+    assert fn(mean.tolist(), mean, M) == 0.0
+    assert fn((), np.zeros(0), np.zeros((0, 0))) == 0.0
+
+
+def test_whiten_norm_has_the_bits_of_the_elementwise_array_path(K):
+    # the promise recursive.detect.region relies on: a row's distance from the kernel is the
+    # array path's (products and sums each rounded, in index order over all of j)
+    fn = _whiten(K)
+    rng = np.random.default_rng(47)
+    for n in (1, 3, 8, 12):
+        _cov, mean, M = _whitening(rng, n)
+        X = rng.normal(size=(60, n)) * 5.0
+        X[0, 0], X[1, -1], X[2, n // 2] = math.inf, -math.inf, math.nan
+        X[3] = 1e308
+        with np.errstate(over="ignore", invalid="ignore"):
+            D = X - mean
+            Y = D[:, :1] * M[:, 0]
+            for j in range(1, n):
+                Y = Y + D[:, j:j + 1] * M[:, j]
+            acc = Y[:, 0] * Y[:, 0]
+            for i in range(1, n):
+                acc = acc + Y[:, i] * Y[:, i]
+            want = np.sqrt(acc)
+        got = np.array([fn(x, mean, M) for x in X.tolist()])
+        assert got.tobytes() == want.tobytes(), n
+
+
+def test_whiten_norm_c_and_python_agree_to_the_bit():
+    if _kernel is None or not hasattr(_kernel, "whiten_norm"):
+        pytest.skip("recursive._kernel with whiten_norm is not built")
+    rng = np.random.default_rng(48)
+    for n in (2, 7, 30):
+        _cov, mean, M = _whitening(rng, n)
+        for _ in range(30):
+            x = (rng.normal(size=n) * 4.0).tolist()
+            a, b = _kernel.whiten_norm(x, mean, M), _givens.whiten_norm(x, mean, M)
+            assert np.float64(a).tobytes() == np.float64(b).tobytes()
+        assert _kernel.whiten_norm(tuple(range(n)), mean, M) == pytest.approx(
+            _givens.whiten_norm(list(range(n)), mean, M), rel=0, abs=0)
+
+
+def test_whiten_norm_bad_arguments(K):
+    fn = _whiten(K)
+    mean, M = np.zeros(3), np.eye(3)
+    with pytest.raises(ValueError, match="3 values"):
+        fn([1.0, 2.0], mean, M)
+    with pytest.raises(TypeError, match="list or tuple"):
+        fn(np.zeros(3), mean, M)
+    with pytest.raises(TypeError):
+        fn([1.0, "a", 2.0], mean, M)
+    with pytest.raises(ValueError, match="shape"):
+        fn([1.0, 2.0, 3.0], mean, np.eye(2))
+    with pytest.raises(ValueError, match="C-contiguous"):
+        fn([1.0, 2.0, 3.0], mean, np.asfortranarray(np.tril(np.ones((3, 3)))))
+    with pytest.raises(TypeError, match="positional argument"):
+        fn([1.0, 2.0, 3.0], mean)
+
+
+def _fn(K, name):
+    fn = getattr(K, name, None)
+    if fn is None:
+        pytest.skip(f"this build of recursive._kernel predates {name}")
+    return fn
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 40])
+def test_scaled_row_has_the_bits_of_the_array_expression(K, n):
+    # reference: numpy's elementwise ((X - lo) - (hi - X)) / width, each operation rounded
+    fn = _fn(K, "scaled_row")
+    rng = np.random.default_rng(60 + n)
+    lo = rng.uniform(-100.0, 50.0, n)
+    hi = lo + rng.uniform(0.01, 300.0, n)
+    X = lo + (hi - lo) * rng.uniform(-0.5, 1.5, (50, n))
+    X[0, 0], X[1, -1] = math.inf, math.nan
+    with np.errstate(invalid="ignore"):
+        want = ((X - lo) - (hi - X)) / (hi - lo)
+    for i, x in enumerate(X.tolist()):
+        out = np.full((1, n + 1), -7.0)
+        assert fn(out, x, lo, hi, hi - lo) is None
+        assert out[0, 0] == 1.0
+        assert out[0, 1:].tobytes() == want[i].tobytes(), i
+
+
+@pytest.mark.parametrize("n", [1, 4, 9])
+def test_outside_equals_numpy_comparisons(K, n):
+    fn = _fn(K, "outside")
+    rng = np.random.default_rng(70 + n)
+    lo, hi = -np.ones(n), np.ones(n) * 2.0
+    X = rng.uniform(-1.5, 2.5, (200, n))
+    X[0] = lo
+    X[1] = hi  # the range is closed
+    X[2, 0] = math.nan  # a nan compares false with both bounds: not outside
+    for x in X:
+        assert fn(tuple(x.tolist()), lo, hi) is bool(np.any((x < lo) | (x > hi)))
+    assert fn([], np.zeros(0), np.zeros(0)) is False
+
+
+def test_row_kernels_bad_arguments(K):
+    scaled, out_ = _fn(K, "scaled_row"), _fn(K, "outside")
+    lo, hi = np.zeros(2), np.ones(2)
+    with pytest.raises(ValueError, match="2 values"):
+        scaled(np.empty((1, 3)), [1.0], lo, hi, hi - lo)
+    with pytest.raises(ValueError, match="shape"):
+        scaled(np.empty((1, 2)), [1.0, 2.0], lo, hi, hi - lo)
+    with pytest.raises(ValueError, match="writable"):
+        ro = np.empty((1, 3))
+        ro.setflags(write=False)
+        scaled(ro, [1.0, 2.0], lo, hi, hi - lo)
+    with pytest.raises(TypeError, match="list or tuple"):
+        out_(np.zeros(2), lo, hi)
+    with pytest.raises(TypeError):
+        out_([1.0, None], lo, hi)
+    with pytest.raises(ValueError, match="shape"):
+        out_([1.0, 2.0], lo, np.ones(3))

@@ -110,7 +110,19 @@ def test_quantile_scalar_and_its_memo_equal_the_array_function():
                 assert packed(t_quantile_scalar(d, p)) == packed(t_quantile(np.array(d), p))
 
 
-def test_region_distance_row_equals_the_rowwise_distances():
+@pytest.fixture(params=["kernel", "floats"])
+def row_path(request, monkeypatch):
+    """distance_row through the C kernel (where built) and through plain floats."""
+    from recursive.detect import region
+
+    if request.param == "floats":
+        monkeypatch.setattr(region, "_whiten_norm", None)
+    elif region._whiten_norm is None:
+        pytest.skip("recursive._kernel with whiten_norm is not built")
+    return request.param
+
+
+def test_region_distance_row_equals_the_rowwise_distances(row_path):
     rng = np.random.default_rng(8)
     reg = InputRegion(4, 50.0, 3.0)
     assert math.isnan(reg.distance_row([0.0] * 4))
@@ -128,7 +140,20 @@ def test_region_distance_row_equals_the_rowwise_distances():
         flat.distances(np.array([[1.0, 2.5]]), rowwise=True)[0])
 
 
-def test_row_terms_equal_the_basis_of_the_row():
+@pytest.fixture(params=["kernel", "floats"])
+def basis_row_path(request, monkeypatch):
+    """row_terms and row_out_of_range through the C kernel (where built) and plain floats."""
+    from recursive import basis
+
+    if request.param == "floats":
+        monkeypatch.setattr(basis, "_scaled_row", None)
+        monkeypatch.setattr(basis, "_outside", None)
+    elif basis._scaled_row is None:
+        pytest.skip("recursive._kernel with scaled_row is not built")
+    return request.param
+
+
+def test_row_terms_equal_the_basis_of_the_row(basis_row_path):
     from recursive.basis import Identity
 
     rng = np.random.default_rng(10)
@@ -142,7 +167,7 @@ def test_row_terms_equal_the_basis_of_the_row():
             assert packed(basis.row_terms(x)) == packed(basis(np.array([x]))), basis
 
 
-def test_region_distance_row_with_non_finite_readings():
+def test_region_distance_row_with_non_finite_readings(row_path):
     rng = np.random.default_rng(11)
     reg = InputRegion(3, 50.0, 3.0)
     for _ in range(20):
@@ -153,7 +178,7 @@ def test_region_distance_row_with_non_finite_readings():
             reg.distances(np.array([x]), rowwise=True)[0]), x
 
 
-def test_row_out_of_range_equals_out_of_range():
+def test_row_out_of_range_equals_out_of_range(basis_row_path):
     basis = Polynomial([Input("a", -1.0, 1.0), Input("b", 0.0, 10.0)], degree=2)
     for x in ([0.0, 5.0], [-1.0, 10.0], [-1.5, 5.0], [0.0, 10.5], [math.nan, 5.0],
               [2.0, -3.0]):

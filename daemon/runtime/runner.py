@@ -68,7 +68,11 @@ class Rejected(Exception):
 
 @dataclass(frozen=True)
 class PredBatch:
-    """Predictions for a run of feature samples of one model."""
+    """Predictions for a run of feature samples of one model.
+
+    The numbers are float arrays, or lists of floats from the short path of a few single
+    samples (:meth:`ModelRunner._predict_few`).
+    """
 
     t: np.ndarray
     ids: list
@@ -306,7 +310,8 @@ class ModelRunner:
         interval, the detectors and the status, with the same bits as the general path
         (tested against it). None where that path does not apply (the general one then
         runs): a posterior that is not row by row, or not identified yet."""
-        xs = [np.array(r, dtype=float).tolist() for r in rows]
+        # the decoded rows are lists of floats already (the wire's single-sample path)
+        xs = [r if type(r) is list else np.array(r, dtype=float).tolist() for r in rows]
         basis = self.basis
         P = basis.row_terms(xs[0]) if len(xs) == 1 else np.concatenate(
             [basis.row_terms(x) for x in xs])
@@ -334,8 +339,8 @@ class ModelRunner:
             status = ["stale" if t - last > sa else "learning" for t in ts]
         self.n_predictions += k
         self.last_mean, self.last_std = mean[-1], std[-1]
-        a = np.array((ts, mean, std, var, lo, hi, dof), dtype=float)
-        return PredBatch(a[0], ids, a[1], a[2], a[3], a[4], a[5], a[6], status, trust, marks)
+        # lists of floats, as the publisher writes them (no array to convert back)
+        return PredBatch(ts, ids, mean, std, var, lo, hi, dof, status, trust, marks)
 
     def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
         """The rows the predictions at ``ts`` use: each input at t - its dead time, looked

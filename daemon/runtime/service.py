@@ -179,6 +179,9 @@ class Service:
         # None (the backtest) admits any time, so a replay depends on the file alone
         self._wall_clock = wall_clock
         self._internal_logged: set = set()
+        # the publisher's pred/ topic of each model, and its emitter (see _emitter)
+        self._topics: dict[str, bytes] = {}
+        self._emit: tuple | None = None
 
     # ------------------------------------------------------------------ hooks for later layers
     def extra_metrics(self):
@@ -548,12 +551,15 @@ class Service:
         self._notify = Notifier.from_environment()
         self._notify.ready(f"{len(self.runners)} model(s)")
         wd_ms = self._notify.poll_ms
+        # bound once: a paced feed turns this loop once per message
+        tick, poll, poll_ms = self._notify.tick, self.poller.poll, self._poll_ms
+        wake_fd = self._wake_r.fileno()  # the poller reports plain sockets by fd
         try:
             while not self._stop:
-                self._notify.tick()
-                wait = self._poll_ms()
-                socks = dict(self.poller.poll(wait if wd_ms is None else min(wait, wd_ms)))
-                if self._wake_r.fileno() in socks:  # the poller reports plain sockets by fd
+                tick()
+                wait = poll_ms()
+                socks = dict(poll(wait if wd_ms is None else min(wait, wd_ms)))
+                if wake_fd in socks:
                     # empty the wake-up pipe; the events themselves are in the queue
                     with contextlib.suppress(BlockingIOError):
                         while self._wake_r.recv(4096):
@@ -598,15 +604,28 @@ class Service:
 
         At most ``batch_limit`` messages and, counting payloads, about ``batch_bytes``.
         """
-        limit = self.config.daemon.batch_limit
-        budget = self.config.daemon.batch_bytes
-        recv = self.sub.recv_multipart
+        d = self.config.daemon
+        limit = d.batch_limit
+        budget = d.batch_bytes
+        sub = self.sub
+        recv = sub.recv
         batch = []
         while len(batch) < limit:
+            if len(batch) == 1 and not sub.get(zmq.EVENTS) & zmq.POLLIN:
+                # a paced feed wakes the loop for each message: asking whether another is
+                # queued costs half the failed receive that would otherwise end the drain
+                break
             try:
-                frames = recv(zmq.NOBLOCK)
+                # frames, not bytes: a frame tells whether more parts follow, which
+                # recv_multipart asks the socket for (an option lookup) after every part
+                frame = recv(zmq.NOBLOCK, copy=False)
             except zmq.Again:
                 break
+            frames = [frame.bytes]
+            while frame.more:
+                # the parts of a message arrive together: the rest is there
+                frame = recv(zmq.NOBLOCK, copy=False)
+                frames.append(frame.bytes)
             batch.append(frames)
             if len(frames) > 1:
                 budget -= len(frames[-1])
@@ -763,12 +782,15 @@ class Service:
             # a block predicted in pieces around its lab values still gets one message
             parts.append((ts, ids, batch))
         else:
-            self._publish(runner, ts, ids, batch, seg.block, any(i is not None for i in ids))
+            # ids.count: no generator per visit for the common run of samples without ids
+            self._publish(runner, ts, ids, batch, seg.block, ids.count(None) != len(ids))
         seg.ts, seg.rows, seg.ids = [], [], []
 
     def _publish(self, runner: ModelRunner, ts: list, ids: list, batch, block: bool,
                  has_id: bool, packed: bool = False) -> None:
-        topic = b"pred/" + runner.name.encode()
+        topic = self._topics.get(runner.name)
+        if topic is None:
+            topic = self._topics[runner.name] = b"pred/" + runner.name.encode()
         level = runner.cfg.level
         trust = runner.trust
         if packed:
@@ -791,20 +813,17 @@ class Service:
                 body["id"] = ids
             self.pub.send_multipart([topic, wire.packb(body)])
         else:
-            mean, std, var = batch.mean.tolist(), batch.std.tolist(), batch.var.tolist()
-            lo, hi, dof = batch.lo.tolist(), batch.hi.tolist(), batch.dof.tolist()
+            mean, std, var = _floats(batch.mean), _floats(batch.std), _floats(batch.var)
+            lo, hi, dof = _floats(batch.lo), _floats(batch.hi), _floats(batch.dof)
             status = batch.status
             emit = self._emitter()
-            packb = wire.packb
+            pack = wire.pack_prediction
             trusts = batch.trust
             marks = dict(batch.marks)
             for i, t in enumerate(ts):
-                body = {"t": t, "mean": mean[i], "std": std[i], "var": var[i], "lo": lo[i],
-                        "hi": hi[i], "level": level, "dof": dof[i], "status": status[i],
-                        "trust": trust if trusts is None else trusts[i]}
-                if has_id and ids[i] is not None:
-                    body["id"] = ids[i]
-                emit(topic, packb(body))
+                emit(topic, pack(t, mean[i], std[i], var[i], lo[i], hi[i], level, dof[i],
+                                 status[i], trust if trusts is None else trusts[i],
+                                 ids[i] if has_id else None))
                 if marks and i in marks:
                     # each sample's alerts right after its own prediction, as if it had
                     # come alone
@@ -818,9 +837,17 @@ class Service:
 
         On a ZeroMQ socket two ``send`` calls cost a third of one ``send_multipart`` (which
         builds and checks a list each time); other publishers (the backtest's recorder) get
-        ``send_multipart``.
+        ``send_multipart``. Made once per publisher, not on every visit.
         """
         pub = self.pub
+        made = self._emit
+        if made is not None and made[0] is pub:
+            return made[1]
+        self._emit = (pub, self._make_emitter(pub))
+        return self._emit[1]
+
+    @staticmethod
+    def _make_emitter(pub):
         if isinstance(pub, zmq.Socket):
             send, more = pub.send, zmq.SNDMORE
 
@@ -1213,6 +1240,11 @@ def _concat(batches: list[PredBatch]) -> PredBatch:
               for f in ("t", "mean", "std", "var", "lo", "hi", "dof")}
     return PredBatch(ids=[i for b in batches for i in b.ids],
                      status=[s for b in batches for s in b.status], **arrays)
+
+
+def _floats(a) -> list:
+    """A prediction batch's numbers as a list of floats (the short path gives lists)."""
+    return a if type(a) is list else a.tolist()
 
 
 def _future_detail(ts, now: float) -> str:

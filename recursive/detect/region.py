@@ -9,6 +9,7 @@ import numpy as np
 import scipy.linalg
 from scipy.linalg import lapack
 
+from recursive._linalg import whiten_norm as _whiten_norm
 from recursive.detect._common import (
     SCHEMA,
     _check_state,
@@ -21,6 +22,9 @@ from recursive.detect._common import (
 )
 
 _dtrtri = lapack.dtrtri
+# up to this many rows, distances(rowwise=True) calls the C kernel once per row; above it,
+# the dozen array operations of the elementwise path cost less than the calls
+_KERNEL_ROWS = 48
 
 
 @dataclass(frozen=True)
@@ -102,6 +106,7 @@ class InputRegion:
         "_chol",
         "_chol_inv",
         "_row_cache",
+        "_kernel_cache",
         "_min_count",
     )
 
@@ -137,6 +142,7 @@ class InputRegion:
         self._chol = None
         self._chol_inv = None
         self._row_cache = None
+        self._kernel_cache = None
 
     @property
     def count(self) -> int:
@@ -175,6 +181,7 @@ class InputRegion:
         self._chol = None
         self._chol_inv = None
         self._row_cache = None
+        self._kernel_cache = None
 
     def _factor(self) -> Any:
         if self._chol is None:
@@ -231,6 +238,11 @@ class InputRegion:
         if rowwise:
             inv = self._chol_inv
             n = self._n_inputs
+            if _whiten_norm is not None and len(D) <= _KERNEL_ROWS:
+                # row by row in C, the operations of the array path below in its order
+                mean, inv_c = self._kernel_arrays()
+                return np.array([_whiten_norm(x, mean, inv_c) for x in A.tolist()],
+                                dtype=float)
             if len(D) <= 2:
                 # plain floats for a row or two: the same operations in the same order as
                 # the array path below, hence the same bits, without its per-call overhead
@@ -247,6 +259,15 @@ class InputRegion:
         Y = self._chol_inv @ D.T
         return np.sqrt(np.einsum("ij,ij->j", Y, Y))
 
+    def _kernel_arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """The mean and the inverse factor as the C kernel reads them (C-ordered float64);
+        the factor's inverse must be computed already."""
+        arrays = self._kernel_cache
+        if arrays is None:
+            arrays = self._kernel_cache = (np.ascontiguousarray(self._mean, dtype=float),
+                                           np.ascontiguousarray(self._chol_inv, dtype=float))
+        return arrays
+
     def distance_row(self, x: list) -> float:
         """``distances([x], rowwise=True)[0]`` for one row given as a list of floats (same
         bits), in plain float arithmetic: the monitor's check of a single sample."""
@@ -258,24 +279,30 @@ class InputRegion:
         if cached is None:
             chol = self._factor()
             if isinstance(chol, str):
-                cached = (self._mean.tolist(), None, None)
+                cached = (self._mean.tolist(), None, None, None)
             else:
                 if self._chol_inv is None:
                     inv, info = _dtrtri(chol, lower=1)
                     if info != 0:  # pragma: no cover - a Cholesky factor is non-singular
                         raise np.linalg.LinAlgError(f"singular region factor (info={info})")
                     self._chol_inv = inv
-                Ml = self._chol_inv.tolist()
-                # each row of the (lower-triangular) inverse without its trailing zeros
-                cut = []
-                for m in Ml:
-                    k = len(m)
-                    while k > 1 and m[k - 1] == 0.0:
-                        k -= 1
-                    cut.append(m[:k])
-                cached = (self._mean.tolist(), Ml, cut)
+                if _whiten_norm is not None:
+                    cached = (None, None, None, self._kernel_arrays())
+                else:
+                    Ml = self._chol_inv.tolist()
+                    # each row of the (lower-triangular) inverse without its trailing zeros
+                    cut = []
+                    for m in Ml:
+                        k = len(m)
+                        while k > 1 and m[k - 1] == 0.0:
+                            k -= 1
+                        cut.append(m[:k])
+                    cached = (self._mean.tolist(), Ml, cut, None)
             self._row_cache = cached
-        mean, Ml, cut = cached
+        mean, Ml, cut, arrays = cached
+        if arrays is not None:
+            # the same products and sums in the same order as the array path, in C
+            return _whiten_norm(x, *arrays)
         d = [a - b for a, b in zip(x, mean, strict=True)]
         if Ml is None:
             return math.inf if any(v != 0 for v in d) else 0.0

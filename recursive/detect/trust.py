@@ -176,24 +176,30 @@ class Trust:
         ``(level, value, limit)`` tuples of an int in ``1..len(levels)-1`` and two floats
         (the validation costs more than the step on a hot path).
         """
-        t = _finite("t", t)
+        if type(t) is not float or t - t != 0.0:  # a finite float passes as it is
+            t = _finite("t", t)
         if self._n and t < self._last_t:
             raise ValueError(f"t must not decrease: got {t!r} after {self._last_t!r}")
         act = active if checked else self._check_active(active)
         old = self._level
+        reasons = self._reasons
         for name, (lvl, value, limit) in act.items():
-            r = self._reasons.get(name)
+            r = reasons.get(name)
             if r is None:
                 r = {"held": {}, "value": value, "limit": limit, "ack": 0}
-                self._reasons[name] = r
+                reasons[name] = r
             held = r["held"]
             for ell in range(1, lvl + 1):
                 held[ell] = [0, 0.0]
             r["value"] = value
             r["limit"] = limit
-        for name in list(self._reasons):
-            r = self._reasons[name]
-            now = act[name][0] if name in act else 0
+        count, time_ = self._count, self._time
+        level = 0
+        # the new level is the highest one still held, found on the way
+        for name in list(reasons) if reasons else ():
+            r = reasons[name]
+            entry = act.get(name)
+            now = 0 if entry is None else entry[0]
             held = r["held"]
             for ell in list(held):
                 if ell <= now:
@@ -202,16 +208,20 @@ class Trust:
                 if rec[0] == 0:
                     rec[1] = t
                 rec[0] += 1
-                if rec[0] >= self._count and t - rec[1] >= self._time:
+                if rec[0] >= count and t - rec[1] >= time_:
                     del held[ell]
             if not held:
-                del self._reasons[name]
-            elif r["ack"] > max(held):
-                r["ack"] = max(held)
-        self._level = max((max(r["held"]) for r in self._reasons.values()), default=0)
+                del reasons[name]
+                continue
+            top = max(held)
+            if r["ack"] > top:
+                r["ack"] = top
+            if top > level:
+                level = top
+        self._level = level
         self._n += 1
         self._last_t = t
-        return self._level != old
+        return level != old
 
     def acknowledge(self) -> None:
         """Mark every held reason as acknowledged at its current level (does not clear it)."""
