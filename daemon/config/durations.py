@@ -64,8 +64,10 @@ def parse_duration(value: Any) -> float:
                 return 0.0
             raise ValueError(f"a duration string needs a unit (w, d, h, m, s, ms), "
                              f"like '90s', got {value!r}" + (f"; {hint}" if hint else ""))
+        m = re.search(r"(\d+(?:\.\d+)?)\s*(?:min|mins|minutes?)\b", value, re.IGNORECASE)
+        hint = f"; minutes are 'm' ('{m.group(1)}m')" if m else ""
         raise ValueError(f"a duration must look like '250ms', '90s', '5m', '36h', '5d', '2w' "
-                         f"or '1h30m' (units w, d, h, m, s, ms), got {value!r}")
+                         f"or '1h30m' (units w, d, h, m, s, ms), got {value!r}{hint}")
     seconds = 0.0
     last = -1
     for number, unit in _PART_RE.findall(value):

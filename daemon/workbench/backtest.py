@@ -1000,8 +1000,34 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
     return "\n".join(lines)
 
 
+def _published_verdict(res: BacktestResult) -> list[str]:
+    """The binomial band of `coverage_verdict` around the headline coverage of the published
+    intervals (the ungated results): the arrival one-step z can be calibrated while what
+    the control room saw, further ahead on dense analyzer data, is not."""
+    s = res.scores_ungated.get("model")
+    if s is None or not s.n or not math.isfinite(s.coverage):
+        return []
+    level = res.model.level
+    half = 1.96 * math.sqrt(level * (1 - level) / s.n)
+    lo, hi = level - half, level + half
+    where = "inside" if lo <= s.coverage <= hi else "OUTSIDE"
+    head = "calibration" if where == "inside" else "CALIBRATION"
+    out = [f"  {head}: coverage {100 * s.coverage:.1f}% (published intervals, {s.n} results) "
+           f"is {where} the band {100 * lo:.1f} .. {100 * hi:.1f}% of a calibrated model"]
+    if where == "OUTSIDE":
+        out.append("    the published intervals are " + (
+            "too narrow" if s.coverage < lo else "too wide") + " for the time from the last "
+            "known result to the sample (tune at this lab delay)")
+    return out
+
+
 def _verdict_lines(res: BacktestResult) -> list[str]:
-    """The calibration verdict of the recursive model over the scored, ungated results."""
+    """The calibration verdicts of the recursive model over the scored, ungated results:
+    the published intervals, then the one-step predictions at arrival."""
+    return _published_verdict(res) + _arrival_verdict(res)
+
+
+def _arrival_verdict(res: BacktestResult) -> list[str]:
     f = _fits_by_time(res.track)
     start = res.train_end
     z = [x.get("z") for t, x in f.items() if t >= start and x.get("reason") != "gated"]

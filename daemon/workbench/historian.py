@@ -138,7 +138,7 @@ def write_csv(path: str | os.PathLike, run, *, time_format: str = "iso", tz: str
     lab = dict(zip(np.asarray(run.lab_index).tolist(), np.asarray(run.lab_y).tolist(), strict=True))
     scenario = getattr(run, "scenario", None)
     with open(path, "w", encoding="utf-8", newline="") as f:
-        f.write(f"# {DISCLAIMER}: {UNIT}\n")
+        f.write(f"# {DISCLAIMER}: {getattr(run, 'unit_name', UNIT)}\n")
         if scenario is not None and hasattr(scenario, "to_state"):
             f.write(f"# scenario: {json.dumps(scenario.to_state(), sort_keys=True)}\n")
         f.write(",".join(("time", *tags, target)) + "\n")

@@ -581,3 +581,141 @@ def events(run: Run) -> Iterator[tuple]:
     while j < m:
         yield ("y", drawn[j], ys[j], arr[j])
         j += 1
+
+
+# ------------------------------------------------------------------------ dense analyzer unit
+#: The second invented unit: a column whose on-line analyzer reports every sample.
+DENSE_UNIT = "K-700 column with an on-line analyzer (invented)"
+DENSE_TAGS: tuple[str, ...] = ("TI-701", "TI-702", "FI-703", "FI-704", "PI-705", "LI-706",
+                               "TI-707")
+DENSE_TARGET = "AX-790"
+#: True sensitivities to the normalized inputs (target units per input sd).
+DENSE_SLOPES: tuple[float, ...] = (0.30, -0.22, 0.15, 0.10, -0.12, 0.06, 0.04)
+
+
+@dataclass(frozen=True)
+class DenseScenario:
+    """A dense-analyzer run of the invented K-700 column (simulated data, not plant data).
+
+    Seven inputs normalized by the engineer (zero mean, unit sd: OU processes with time
+    constants of hours around operating points that move now and then, correlated), one
+    analyzer quality in normalized units, a result for every sample, known ``delay_samples``
+    samples after it. The truth is ``sum_i b_i x_i`` with the slopes `DENSE_SLOPES` (each
+    drifting by a share ``slope_drift`` of itself over the run, up or down; the TI-701 one
+    applies to its unnormalized reading) plus an unmeasured offset: a random walk of
+    ``walk`` per sample plus an AR(1) of sd ``ar_sd`` and time constant ``ar_tau_samples``.
+    The operators counter a share ``feedback`` of the offset they see on the analyzer by
+    moving TI-701, two hours late, so the offset and TI-701 move together on the record. The
+    readings carry white noise ``input_noise`` the column does not pass on. The analyzer
+    adds Gaussian noise ``noise``, a zero error that walks ``zero_walk`` per sample and ramps
+    ``zero_ramp`` over the run, and ``blunders`` gross errors (a spike of 8 to 15 noise sds
+    either way).
+    """
+
+    seed: int = 0
+    start: float = DEFAULT_START
+    days: float = 12.0
+    period_s: float = 600.0
+    delay_samples: int = 4
+    noise: float = 0.03
+    walk: float = 0.012
+    ar_sd: float = 0.02
+    ar_tau_samples: float = 6.0
+    slope_drift: float = 0.1
+    zero_walk: float = 0.004
+    zero_ramp: float = 0.1
+    blunders: int = 6
+    feedback: float = 0.9
+    input_noise: float = 0.25
+
+    def to_state(self) -> dict:
+        state = asdict(self)
+        state["schema"] = "plant.dense/1"
+        return state
+
+
+@dataclass(frozen=True, eq=False)
+class DenseRun:
+    """Result of `simulate_dense`; fields as in `Run` (``X`` has the seven `DENSE_TAGS`)."""
+
+    scenario: DenseScenario
+    t: np.ndarray
+    X: np.ndarray
+    lab_t: np.ndarray
+    lab_index: np.ndarray
+    lab_y: np.ndarray
+    lab_arrival: np.ndarray
+    lab_blunder: np.ndarray
+    truth_y: np.ndarray
+    offset: np.ndarray
+    lab_zero: np.ndarray
+    tags: tuple = DENSE_TAGS
+    target: str = DENSE_TARGET
+    unit_name: str = DENSE_UNIT
+
+
+def simulate_dense(sc: DenseScenario) -> DenseRun:
+    """Simulate the invented K-700 column (`DenseScenario`); deterministic given the seed."""
+    rng = np.random.default_rng((int(sc.seed), 700))
+    k = int(round(sc.days * _DAY / sc.period_s))
+    n = len(DENSE_TAGS)
+    t = sc.start + np.arange(k) * sc.period_s
+    # inputs: operating points moving about twice a day, followed through a lag of an hour,
+    # plus correlated OU deviations of time constants from 5 to 40 hours, smoothed by a
+    # second lag (slow and smooth against the analyzer's delay, as on a column, so that the
+    # last result is a strong predictor);
+    # normalized afterwards, as an engineer would
+    taus = np.array([90.0, 60.0, 150.0, 40.0, 240.0, 120.0, 30.0])  # samples
+    corr = np.eye(n)
+    for i, j, c in ((0, 1, -0.5), (0, 2, 0.3), (2, 3, 0.4), (4, 5, -0.3), (1, 6, 0.3)):
+        corr[i, j] = corr[j, i] = c
+    e = rng.standard_normal((k, n)) @ np.linalg.cholesky(corr).T
+    X = np.empty((k, n))
+    n_moves = rng.poisson(2.0 * sc.days)
+    move_k = np.sort(rng.integers(0, k, size=n_moves))
+    move_i = rng.integers(0, n, size=n_moves)
+    move_v = rng.uniform(-1.5, 1.5, size=n_moves)
+    a_sp = math.exp(-sc.period_s / _HOUR)
+    for i in range(n):
+        sel = move_i == i
+        levels = np.concatenate([[rng.uniform(-0.5, 0.5)], move_v[sel]])
+        sp = levels[np.searchsorted(move_k[sel], np.arange(k), side="right")]
+        a = math.exp(-1.0 / taus[i])
+        a2 = math.exp(-3.0 / taus[i])
+        dev = _ar1(a2, (1 - a2) * _ar1(a, math.sqrt(1 - a * a) * e[:, i], 0.0), 0.0)
+        X[:, i] = _ar1(a_sp, (1 - a_sp) * sp, sp[0]) + 2.0 * dev
+    frac = np.arange(k) / k
+    walk = np.cumsum(sc.walk * rng.standard_normal(k))
+    a = math.exp(-1.0 / sc.ar_tau_samples)
+    ar = _ar1(a, sc.ar_sd * math.sqrt(1 - a * a) * rng.standard_normal(k),
+              sc.ar_sd * rng.standard_normal() / a)
+    offset = walk + ar
+    zero = sc.zero_ramp * frac + np.cumsum(sc.zero_walk * rng.standard_normal(k))
+    # the operators hold the quality: they move TI-701 against what the analyzer shows, late
+    # and smoothed (a lag of two hours), so that on the record the offset and TI-701 move
+    # together and a regression of the quality on the inputs confounds them
+    a_op = math.exp(-1.0 / 12.0)
+    seen = np.r_[np.zeros(sc.delay_samples), (offset + zero)[:k - sc.delay_samples]]
+    X[:, 0] -= sc.feedback / DENSE_SLOPES[0] * _ar1(a_op, (1 - a_op) * seen, 0.0)
+    mean, sd = X.mean(axis=0), X.std(axis=0)
+    X = (X - mean) / sd
+    slopes = np.tile(np.asarray(DENSE_SLOPES), (k, 1))
+    slopes[:, 0] *= sd[0]  # the loop's gain is in the unnormalized units
+    # the sensitivities change slowly (fouling, a feed that varies): each by a share
+    # ``slope_drift`` of itself over the run, up or down
+    sign = rng.choice([-1.0, 1.0], size=n)
+    slopes *= 1.0 + sc.slope_drift * sign * frac[:, None]
+    truth = np.einsum("ki,ki->k", X, slopes) + offset
+    # the readings carry fast variation the column does not pass on to the quality
+    # (transmitter noise, turbulence): white, ``input_noise`` in normalized units
+    X = X + sc.input_noise * rng.standard_normal((k, n))
+    lab_y = truth + zero + sc.noise * rng.standard_normal(k)
+    blunder = np.zeros(k, dtype=bool)
+    if sc.blunders:
+        which = rng.choice(np.arange(k // 10, k), size=sc.blunders, replace=False)
+        for j in which.tolist():
+            lab_y[j] += rng.choice([-1.0, 1.0]) * rng.uniform(8.0, 15.0) * sc.noise
+        blunder[which] = True
+    idx = np.arange(k)
+    return DenseRun(sc, t, X, t.copy(), idx, lab_y, t + sc.delay_samples * sc.period_s,
+                    blunder, truth, offset, zero)

@@ -318,7 +318,7 @@ def _run(model: ModelConfig, data: LabData, lab_delay: float = 0.0, *,
 
     Result ``j`` arrives at ``t_j + lab_delay``; the prediction of result ``i`` (at its drawn
     time ``t_i``, widened by the forgetting for the time since the last learned result) uses
-    exactly the ``j < i`` that arrived by ``t_i``. Results are learned in drawn-time order,
+    exactly the ``j < i`` that arrived before ``t_i``. Results are learned in drawn-time order,
     as the daemon learns them, and each is learned (or gated) once.
     """
     post = model.build_posterior()
@@ -329,7 +329,11 @@ def _run(model: ModelConfig, data: LabData, lab_delay: float = 0.0, *,
     dof = np.full(k, np.nan)
     lev = np.full(k, np.nan)
     gated = np.zeros(k, dtype=bool)
-    known = np.minimum(np.searchsorted(data.t + lab_delay, data.t, side="right"),
+    # a result that arrives at the very instant of a sample is learned after that sample's
+    # prediction, as the backtest's feed sends it (and as the plant's events order them):
+    # on an analyzer reporting every sample, counting it known would score the model one
+    # sample closer than what the control room saw
+    known = np.minimum(np.searchsorted(data.t + lab_delay, data.t, side="left"),
                        np.arange(k))
     learned = 0
     i = 0
@@ -394,7 +398,7 @@ def prequential(model: ModelConfig, data: LabData, scored, lab_delay: float = 0.
     """Run ``model`` over ``data`` and score the ``scored`` lab results (a boolean mask).
 
     Each result is predicted from what was known when its sample was drawn: the results
-    whose arrival (drawn time + ``lab_delay``) is not after it (see :func:`_run`). A scored
+    whose arrival (drawn time + ``lab_delay``) is before it (see :func:`_run`). A scored
     lab result the model could not predict (not identified yet) makes the score ``-inf``.
 
     Notes
