@@ -26,7 +26,7 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "stabilized_rows", "term_drift", "update"]
+           "stabilized_rows", "stabilized_rows_many", "term_drift", "update"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
 MAX_N = 1024
@@ -560,3 +560,53 @@ def rank_ratio(R, /) -> float:
             return math.nan
         best = min(best, ratio)
     return best
+
+
+def stabilized_rows_many(out, M, kappa, c0, dc, half_life, P, dt, owner, /) -> None:
+    """:func:`stabilized_rows` for the rows of several models of ``n`` terms at once.
+
+    Parameters
+    ----------
+    out : float64 buffer, shape (3, k)
+        Overwritten as by :func:`stabilized_rows`.
+    M : float64 buffer, shape (G n, n)
+        The models' ``W^T R^{-T}``, one below the other.
+    kappa, c0, dc : float64 buffers, shape (G, n)
+        Each model's pencil eigenvalues and numerator terms.
+    half_life : float64 buffer, shape (G,)
+        Each model's half-life, positive and finite.
+    P : float64 buffer, shape (k, n)
+        Regressors, one per row.
+    dt : float64 buffer, shape (k,)
+        Time since the owning model's last update, per row.
+    owner : float64 buffer, shape (k,)
+        The model of each row, an integer in ``0..G-1``.
+
+    Notes
+    -----
+    Row ``j`` gets what :func:`stabilized_rows` gives it with model ``owner[j]``'s
+    arguments; this twin computes each model's rows with that function.
+    """
+    o = _matrix(out, "out", (3, None), True)
+    k = o.shape[1]
+    kv = _matrix(kappa, "kappa", (None, None), False)
+    g_count, n = kv.shape
+    _check_n(n)
+    Mv = _matrix(M, "M", (g_count * n, n), False)
+    c0v = _matrix(c0, "c0", (g_count, n), False)
+    dcv = _matrix(dc, "dc", (g_count, n), False)
+    hv = _array(half_life, "half_life", 1, g_count, False)
+    Pv = _matrix(P, "P", (k, n), False)
+    dtv = _array(dt, "dt", 1, k, False)
+    ov = _array(owner, "owner", 1, k, False)
+    _check_disjoint({"out": o}, {"kappa": kv, "M": Mv, "c0": c0v, "dc": dcv,
+                                 "half_life": hv, "P": Pv, "dt": dtv, "owner": ov})
+    if not np.all((ov >= 0) & (ov < g_count) & (ov == np.floor(ov))):
+        raise ValueError(f"owner must hold integers in 0..{g_count - 1}")
+    for g in np.unique(ov).astype(int).tolist():
+        rows = np.flatnonzero(ov == g)
+        part = np.empty((3, rows.size))
+        stabilized_rows(part, np.ascontiguousarray(Mv[g * n:(g + 1) * n]), kv[g].copy(),
+                        c0v[g].copy(), dcv[g].copy(), np.ascontiguousarray(Pv[rows]),
+                        np.ascontiguousarray(dtv[rows]), float(hv[g]))
+        o[:, rows] = part

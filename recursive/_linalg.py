@@ -166,6 +166,8 @@ if _kernel is not None:
     term_drift = getattr(_kernel, "term_drift", None) or _givens.term_drift
     predict = _kernel.predict
     stabilized_rows = _kernel.stabilized_rows
+    stabilized_rows_many = (getattr(_kernel, "stabilized_rows_many", None)
+                            or _givens.stabilized_rows_many)
 else:
     rank_ratio = lapack_rank_ratio
     update = lapack_update
@@ -176,6 +178,7 @@ else:
     predict = lapack_predict
     # vectorized numpy already: the reference serves as the fallback
     stabilized_rows = _givens.stabilized_rows
+    stabilized_rows_many = _givens.stabilized_rows_many
 
 
 def full_rank(r: np.ndarray) -> bool:
