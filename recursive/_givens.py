@@ -584,8 +584,8 @@ def stabilized_rows_many(out, M, kappa, c0, dc, half_life, P, dt, owner, /) -> N
 
     Notes
     -----
-    Row ``j`` gets what :func:`stabilized_rows` gives it with model ``owner[j]``'s
-    arguments; this twin computes each model's rows with that function.
+    Row ``j`` gets what :func:`stabilized_rows` gives it alone with model ``owner[j]``'s
+    arguments; this twin calls that function for each row.
     """
     o = _matrix(out, "out", (3, None), True)
     k = o.shape[1]
@@ -603,10 +603,11 @@ def stabilized_rows_many(out, M, kappa, c0, dc, half_life, P, dt, owner, /) -> N
                                  "half_life": hv, "P": Pv, "dt": dtv, "owner": ov})
     if not np.all((ov >= 0) & (ov < g_count) & (ov == np.floor(ov))):
         raise ValueError(f"owner must hold integers in 0..{g_count - 1}")
-    for g in np.unique(ov).astype(int).tolist():
-        rows = np.flatnonzero(ov == g)
-        part = np.empty((3, rows.size))
+    # row by row: a row's numbers then do not depend on the others (numpy's matrix
+    # products round differently with the batch), as in the kernel
+    for j, g in enumerate(ov.astype(int).tolist()):
+        part = np.empty((3, 1))
         stabilized_rows(part, np.ascontiguousarray(Mv[g * n:(g + 1) * n]), kv[g].copy(),
-                        c0v[g].copy(), dcv[g].copy(), np.ascontiguousarray(Pv[rows]),
-                        np.ascontiguousarray(dtv[rows]), float(hv[g]))
-        o[:, rows] = part
+                        c0v[g].copy(), dcv[g].copy(), np.ascontiguousarray(Pv[j:j + 1]),
+                        dtv[j:j + 1].copy(), float(hv[g]))
+        o[:, j] = part[:, 0]
