@@ -223,3 +223,67 @@ def test_visits_are_grouped_by_shape_and_the_others_left_to_their_own_path():
         alone = r.post.predict_rows(r.basis.row_terms([0.1] * 3), [1e4 + 1.0], r.cfg.level)
         xs, a, std, lev = shared[name]
         assert packed(*a[1:], lev) == packed(*alone[:6], alone[6]), name
+
+
+# ------------------------------------------------------------------ held reasons, quiet rows
+HELD_TOML = """
+[[model]]
+name = "m"
+inputs = [{ tag = "a", lo = -3, hi = 3 }, { tag = "b", lo = -3, hi = 3 }]
+[model.basis]
+kind = "polynomial"
+degree = 1
+[model.noise]
+guess = 0.5
+strength = 2.0
+[model.forgetting]
+policy = "stabilized"
+half_life = "%(half_life)s"
+[model.lab]
+stale_after = "20m"
+[model.alerts]
+region_limit = 2.5
+commissioning_labs = 4
+clear_count = %(count)d
+clear_time = "%(clear)s"
+"""
+
+
+@pytest.mark.parametrize(("count", "clear", "half_life"),
+                         [(3, "5m", "1h"), (1, "0s", "1h"), (40, "1m", "1h"), (3, "2h", "1d")])
+def test_visits_of_many_rows_step_held_reasons_as_rows_one_at_a_time(count, clear, half_life):
+    """A model in caution: the rows of a visit that make nothing active are stepped in runs
+    (`Trust.advance_quiet`); the trust of each row, the alerts and the detector state must be
+    those of the same rows as single visits (each stepped alone: the reference)."""
+    from daemon.runtime.runner import ModelRunner
+    cfg = loads(HELD_TOML % {"count": count, "clear": clear, "half_life": half_life}).models[0]
+    many, ones = ModelRunner(cfg), ModelRunner(cfg)
+    rng = np.random.default_rng(21)
+    t = 0.0
+    seen = set()
+    for v in range(120):
+        k = int(rng.integers(5, 40))
+        ts, xs = [], []
+        for _ in range(k):
+            t += 7.0
+            x = rng.standard_normal(2) * (4.0 if rng.random() < 0.02 else 1.0)
+            for r in (many, ones):
+                r.add_features(t, x.tolist(), None)
+            ts.append(t)
+            xs.append(x.tolist())
+        if v % 3 == 0 and not 60 < v < 80:
+            y = float(np.array(xs[-1]).sum() + 0.2 * rng.standard_normal())
+            for r in (many, ones):
+                r.learn(ts[-1], y, None)
+            continue
+        a = many.predict(ts, xs, [None] * k, singles=True)
+        singles = [ones.predict([ts[i]], [xs[i]], [None], singles=True) for i in range(k)]
+        trust_a = [many.trust] * k if a.trust is None else a.trust
+        trust_b = [s.trust[0] if s.trust is not None else ones.trust for s in singles]
+        assert trust_a == trust_b, v
+        marks_b = [(i, s.marks[0][1]) for i, s in enumerate(singles) if s.marks]
+        assert msgpack.packb(list(a.marks)) == msgpack.packb(marks_b), v
+        assert msgpack.packb(many.monitor.to_state()) == msgpack.packb(ones.monitor.to_state())
+        seen.update(trust_a)
+        seen.add(("marks", bool(marks_b)))
+    assert {"caution", ("marks", True)} <= seen
