@@ -132,9 +132,11 @@ class Rejected(Exception):
         self.detail = detail
 
 
-@dataclass(frozen=True)
+@dataclass(slots=True)
 class PredBatch:
-    """Predictions for a run of feature samples of one model."""
+    """Predictions for a run of feature samples of one model (not frozen: a frozen
+    dataclass' ``__init__`` sets each field through ``object.__setattr__``, a cost on every
+    model visit)."""
 
     t: np.ndarray
     ids: list
