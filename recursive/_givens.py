@@ -26,7 +26,7 @@ import math
 import numpy as np
 
 __all__ = ["MAX_N", "predict", "random_walk", "rank_ratio", "solve_upper", "stabilize",
-           "stabilized_rows", "term_drift", "update", "whiten_norm",
+           "stabilized_rows", "stabilized_rows_many", "term_drift", "update", "whiten_norm",
            "scaled_row", "outside"]
 
 #: Largest ``n`` accepted (the C kernel's stack workspaces are sized for it).
@@ -649,3 +649,54 @@ def _row(x, n: int) -> list:
     if len(x) != n:
         raise ValueError(f"x must have {n} values, got {len(x)}")
     return [_real(v, "x") for v in x]
+
+
+def stabilized_rows_many(out, M, kappa, c0, dc, half_life, P, dt, owner, /) -> None:
+    """:func:`stabilized_rows` for the rows of several models of ``n`` terms at once.
+
+    Parameters
+    ----------
+    out : float64 buffer, shape (3, k)
+        Overwritten as by :func:`stabilized_rows`.
+    M : float64 buffer, shape (G n, n)
+        The models' ``W^T R^{-T}``, one below the other.
+    kappa, c0, dc : float64 buffers, shape (G, n)
+        Each model's pencil eigenvalues and numerator terms.
+    half_life : float64 buffer, shape (G,)
+        Each model's half-life, positive and finite.
+    P : float64 buffer, shape (k, n)
+        Regressors, one per row.
+    dt : float64 buffer, shape (k,)
+        Time since the owning model's last update, per row.
+    owner : float64 buffer, shape (k,)
+        The model of each row, an integer in ``0..G-1``.
+
+    Notes
+    -----
+    Row ``j`` gets what :func:`stabilized_rows` gives it alone with model ``owner[j]``'s
+    arguments; this twin calls that function for each row.
+    """
+    o = _matrix(out, "out", (3, None), True)
+    k = o.shape[1]
+    kv = _matrix(kappa, "kappa", (None, None), False)
+    g_count, n = kv.shape
+    _check_n(n)
+    Mv = _matrix(M, "M", (g_count * n, n), False)
+    c0v = _matrix(c0, "c0", (g_count, n), False)
+    dcv = _matrix(dc, "dc", (g_count, n), False)
+    hv = _array(half_life, "half_life", 1, g_count, False)
+    Pv = _matrix(P, "P", (k, n), False)
+    dtv = _array(dt, "dt", 1, k, False)
+    ov = _array(owner, "owner", 1, k, False)
+    _check_disjoint({"out": o}, {"kappa": kv, "M": Mv, "c0": c0v, "dc": dcv,
+                                 "half_life": hv, "P": Pv, "dt": dtv, "owner": ov})
+    if not np.all((ov >= 0) & (ov < g_count) & (ov == np.floor(ov))):
+        raise ValueError(f"owner must hold integers in 0..{g_count - 1}")
+    # row by row: a row's numbers then do not depend on the others (numpy's matrix
+    # products round differently with the batch), as in the kernel
+    for j, g in enumerate(ov.astype(int).tolist()):
+        part = np.empty((3, 1))
+        stabilized_rows(part, np.ascontiguousarray(Mv[g * n:(g + 1) * n]), kv[g].copy(),
+                        c0v[g].copy(), dcv[g].copy(), np.ascontiguousarray(Pv[j:j + 1]),
+                        dtv[j:j + 1].copy(), float(hv[g]))
+        o[:, j] = part[:, 0]

@@ -60,7 +60,7 @@ work_free(Work *w)
 
 /* A set of buffers acquired by one call, released together on every exit path. */
 typedef struct {
-    Py_buffer view[8];
+    Py_buffer view[9];  /* the most any function holds: stabilized_rows_many */
     int count;
 } Buffers;
 
@@ -782,6 +782,34 @@ kernel_term_drift(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     Py_RETURN_NONE;
 }
 
+/*
+ * Row j of stabilized_rows into out (3, k): the mean, the leverage and delta of one row p
+ * under one model's pencil.  The one loop both entry points run, so a row's bits do not
+ * depend on which of them computed it.
+ */
+static inline void
+stabilized_row(double *out, Py_ssize_t k, Py_ssize_t j, const double *M, const double *kappa,
+               const double *c0, const double *dc, const double *p, Py_ssize_t n, double dt,
+               double h)
+{
+    double d = exp2(-dt / h), m = 0.0, l = 0.0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *Mi = M + i * n;
+        double g = 0.0;
+        for (Py_ssize_t c = 0; c < n; c++) {
+            g += Mi[c] * p[c];
+        }
+        /* a row with no component in a direction owes nothing to it, even to one whose
+         * q is 0 (0/0 would make the row look unidentified) */
+        double gi = g == 0.0 ? 0.0 : g / (kappa[i] + (1.0 - kappa[i]) * d);
+        l += g * gi;
+        m += gi * (c0[i] + dc[i] * d);
+    }
+    out[j] = m;
+    out[k + j] = l;
+    out[2 * k + j] = d;
+}
+
 PyDoc_STRVAR(stabilized_rows_doc,
 "stabilized_rows($module, out, M, kappa, c0, dc, P, dt, half_life, /)\n--\n\n"
 "Per-row predictive mean and leverage under stabilized forgetting, for a batch.\n\n"
@@ -830,25 +858,78 @@ kernel_stabilized_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         release_all(&b);
         return NULL;
     }
-    double *mean = out, *lev = out + k, *delta = out + 2 * k;
     for (Py_ssize_t j = 0; j < k; j++) {
-        const double *p = P + j * n;
-        double d = exp2(-dt[j] / h), m = 0.0, l = 0.0;
-        for (Py_ssize_t i = 0; i < n; i++) {
-            const double *Mi = M + i * n;
-            double g = 0.0;
-            for (Py_ssize_t c = 0; c < n; c++) {
-                g += Mi[c] * p[c];
-            }
-            /* a row with no component in a direction owes nothing to it, even to one whose
-             * q is 0 (0/0 would make the row look unidentified) */
-            double gi = g == 0.0 ? 0.0 : g / (kappa[i] + (1.0 - kappa[i]) * d);
-            l += g * gi;
-            m += gi * (c0[i] + dc[i] * d);
+        stabilized_row(out, k, j, M, kappa, c0, dc, P + j * n, n, dt[j], h);
+    }
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(stabilized_rows_many_doc,
+"stabilized_rows_many($module, out, M, kappa, c0, dc, half_life, P, dt, owner, /)\n--\n\n"
+"stabilized_rows for the rows of several models of n terms at once.\n\n"
+"Row j belongs to model g = owner[j] (a float64 holding an integer in 0..G-1) and gets\n"
+"exactly what stabilized_rows(out_j, M[g], kappa[g], c0[g], dc[g], P_j, dt_j,\n"
+"half_life[g]) gives it (the same operations in the same order).  M is (G n, n): the\n"
+"models' (n, n) matrices one below the other; kappa, c0, dc are (G, n); half_life is (G,),\n"
+"each positive and finite; P is (k, n), dt and owner are (k,), out is (3, k).");
+
+static PyObject *
+kernel_stabilized_rows_many(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    static const char *const names[] = {"out", "kappa", "M", "c0", "dc", "half_life", "P",
+                                        "dt", "owner"};
+    Buffers b = {.count = 0};
+    double *out, *M, *kappa, *c0, *dc, *hl, *P, *dt, *owner;
+    if (check_nargs("stabilized_rows_many", nargs, 9) < 0) {
+        return NULL;
+    }
+    if ((out = get_array(&b, args[0], "out", 2, -2, 1)) == NULL) {
+        return NULL;
+    }
+    Py_ssize_t k = b.view[0].shape[1];
+    if (b.view[0].shape[0] != 3) {
+        PyErr_Format(PyExc_ValueError, "out must have shape (3, k), got (%zd, %zd)",
+                     b.view[0].shape[0], k);
+        release_all(&b);
+        return NULL;
+    }
+    if ((kappa = get_array(&b, args[2], "kappa", 2, -2, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t G = b.view[1].shape[0], n = b.view[1].shape[1];
+    if (check_n(n) < 0 || (M = get_matrix(&b, args[1], "M", G * n, n, 0)) == NULL ||
+        (c0 = get_matrix(&b, args[3], "c0", G, n, 0)) == NULL ||
+        (dc = get_matrix(&b, args[4], "dc", G, n, 0)) == NULL ||
+        (hl = get_array(&b, args[5], "half_life", 1, G, 0)) == NULL ||
+        (P = get_matrix(&b, args[6], "P", k, n, 0)) == NULL ||
+        (dt = get_array(&b, args[7], "dt", 1, k, 0)) == NULL ||
+        (owner = get_array(&b, args[8], "owner", 1, k, 0)) == NULL ||
+        check_disjoint(&b, names, 1) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    for (Py_ssize_t g = 0; g < G; g++) {
+        if (!(hl[g] > 0.0 && hl[g] <= DBL_MAX)) {
+            PyErr_Format(PyExc_ValueError, "half_life[%zd] must be positive and finite", g);
+            release_all(&b);
+            return NULL;
         }
-        mean[j] = m;
-        lev[j] = l;
-        delta[j] = d;
+    }
+    for (Py_ssize_t j = 0; j < k; j++) {
+        double o = owner[j];
+        if (!(o >= 0.0 && o < (double)G && o == floor(o))) {
+            PyErr_Format(PyExc_ValueError, "owner[%zd] must be an integer in 0..%zd",
+                         j, G - 1);
+            release_all(&b);
+            return NULL;
+        }
+    }
+    for (Py_ssize_t j = 0; j < k; j++) {
+        Py_ssize_t g = (Py_ssize_t)owner[j];
+        stabilized_row(out, k, j, M + g * n * n, kappa + g * n, c0 + g * n, dc + g * n,
+                       P + j * n, n, dt[j], hl[g]);
     }
     release_all(&b);
     Py_RETURN_NONE;
@@ -1170,6 +1251,8 @@ static PyMethodDef kernel_methods[] = {
     {"scaled_row", (PyCFunction)(void (*)(void))kernel_scaled_row, METH_FASTCALL,
      scaled_row_doc},
     {"outside", (PyCFunction)(void (*)(void))kernel_outside, METH_FASTCALL, outside_doc},
+    {"stabilized_rows_many", (PyCFunction)(void (*)(void))kernel_stabilized_rows_many,
+     METH_FASTCALL, stabilized_rows_many_doc},
     {NULL, NULL, 0, NULL},
 };
 

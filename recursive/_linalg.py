@@ -166,6 +166,8 @@ if _kernel is not None:
     term_drift = getattr(_kernel, "term_drift", None) or _givens.term_drift
     predict = _kernel.predict
     stabilized_rows = _kernel.stabilized_rows
+    stabilized_rows_many = (getattr(_kernel, "stabilized_rows_many", None)
+                            or _givens.stabilized_rows_many)
     # None with a kernel built before it had this function: callers keep their own path
     whiten_norm = getattr(_kernel, "whiten_norm", None)
     scaled_row = getattr(_kernel, "scaled_row", None)
@@ -180,6 +182,7 @@ else:
     predict = lapack_predict
     # vectorized numpy already: the reference serves as the fallback
     stabilized_rows = _givens.stabilized_rows
+    stabilized_rows_many = _givens.stabilized_rows_many
     # the references in Python are no faster than the callers' own float paths
     whiten_norm = scaled_row = outside = None
 

@@ -637,6 +637,18 @@ class Posterior:
         return o_mean, o_std, o_var, o_lo, o_hi, o_dof, lev
 
     @property
+    def rows_together(self) -> bool:
+        """Whether :func:`predict_rows_many` takes this posterior's rows.
+
+        The common case of :meth:`predict_rows`: identified, timed, stabilized forgetting
+        with the C kernel, the noise learned (not known, not adaptive). Posteriors of the
+        same number of terms then share one kernel call and one pass of array arithmetic.
+        """
+        return (self._ident and self._clock != "samples" and self._vb is None
+                and self._noise_std is None and type(self._forgetting) is Stabilized
+                and _linalg.HAVE_KERNEL)
+
+    @property
     def rowwise(self) -> bool:
         """Whether a batch prediction with times is computed row by row.
 
@@ -974,9 +986,110 @@ class Posterior:
         return p
 
 
+def predict_rows_many(posts: list, P: np.ndarray, ts: np.ndarray, owner: np.ndarray,
+                      levels: list) -> tuple | None:
+    """:meth:`Posterior.predict_rows` of the rows of several posteriors at once.
+
+    Parameters
+    ----------
+    posts : list of Posterior
+        G posteriors with the same number of terms n, each :attr:`Posterior.rows_together`.
+    P : ndarray, shape (k, n)
+        Regressors, float64, C-contiguous: row j is one of ``posts[owner[j]]``.
+    ts : ndarray, shape (k,)
+        The times of the rows, float64.
+    owner : ndarray, shape (k,)
+        Integer index into ``posts`` of each row.
+    levels : list of float
+        The interval level of each posterior.
+
+    Returns
+    -------
+    tuple of ndarray or None
+        ``(mean, std, var, lo, hi, dof, leverage)``, each of shape (k,), with the bits
+        :meth:`Posterior.predict_rows` gives each row in a call of its own posterior; None
+        (the caller then asks each posterior) when a time is not finite.
+
+    Notes
+    -----
+    The kernel (``stabilized_rows_many``) runs, for each row, the same loop as
+    ``stabilized_rows`` with its own posterior's pencil, and everything after it is
+    elementwise IEEE arithmetic (``+ - * /`` and the square root, correctly rounded in
+    numpy as on Python floats), in the order of :meth:`Posterior.predict_rows`:
+    :math:`\\nu_j = \\delta_j \\nu + (1 - \\delta_j) \\nu_0` and likewise
+    :math:`s_j`, :math:`\\mathrm{dof}_j = \\nu_j - p_0` (``p_0`` the unpenalized terms),
+    :math:`\\sigma_j = \\sqrt{s_j / \\mathrm{dof}_j \\, (1 + \\ell_j)}` and
+    :math:`\\mathrm{var}_j = \\sigma_j^2 \\mathrm{dof}_j / (\\mathrm{dof}_j - 2)`
+    (Student-t predictive), with :func:`recursive.quantile.t_quantile`, which equals its
+    scalar twin row by row. Hence a row's numbers do not depend on the rows of other models
+    it is computed with.
+    """
+    if not np.isfinite(ts).all():
+        return None
+    G = len(posts)
+    Ms, kap, c0s, dcs = [], [], [], []
+    hl = np.empty(G)
+    # per posterior: t_last (nan: none), nu, nu0, ss, ss0, unpenalized count, p
+    par = np.empty((7, G))
+    for g, post in enumerate(posts):
+        f = post._forgetting
+        m, kappa, c0, dc = f._pencil(post._R, post._z, post._prior, post._cache)
+        Ms.append(m)
+        kap.append(kappa)
+        c0s.append(c0)
+        dcs.append(dc)
+        hl[g] = f.half_life
+        prior = post._prior
+        tl = post._t_last
+        par[:, g] = (math.nan if tl is None else tl, post._nu, prior.nu0, post._ss,
+                     prior.ss0, post._p_flat, 0.5 + _check_level(levels[g]) / 2.0)
+    rows = par[:, owner]
+    tl, nu_s, nu0, ss_s, ss0, p_flat, p_row = rows
+    # predict_rows: t - t_last, or 0 when nothing has elapsed (or nothing was learned yet)
+    dts = np.where(ts > tl, ts - tl, 0.0)
+    out = np.empty((3, len(ts)))
+    _linalg.stabilized_rows_many(out, np.concatenate(Ms), np.array(kap), np.array(c0s),
+                                 np.array(dcs), hl, P, dts, owner.astype(float))
+    mean, lev, d = out
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        nus = d * nu_s + (1.0 - d) * nu0
+        sss = d * ss_s + (1.0 - d) * ss0
+        dof = nus - p_flat
+        a = (dof > 2.0) & (lev < math.inf)
+        ok = a | ((dof > 0) & np.isfinite(lev))
+        scale = _sqrt_rows(sss / dof * (1.0 + lev))
+        var = np.where(a, scale * scale * dof / (dof - 2.0), math.inf)
+        bad = ~ok
+        if bad.any():
+            mu = np.where(bad, math.nan, mean)
+            scale[bad] = var[bad] = dof[bad] = math.nan
+        else:
+            mu = mean
+        std = _sqrt_rows(var)
+        ps = np.unique(p_row)
+        if ps.size == 1:
+            q = t_quantile(dof, float(ps[0]))
+        else:
+            q = np.empty(len(ts))
+            for p in ps.tolist():
+                sel = p_row == p
+                q[sel] = t_quantile(dof[sel], p)
+        half = q * scale
+        return mu, std, var, mu - half, mu + half, dof, lev
+
+
 def _sqrt(x: float) -> float:
     # numpy.sqrt on a float: nan below 0 instead of an error
     return math.sqrt(x) if x >= 0.0 else (x if x != x else math.nan)
+
+
+def _sqrt_rows(x: np.ndarray) -> np.ndarray:
+    # _sqrt elementwise: the same nan (Python's) below 0, whatever the FPU's default nan
+    r = np.sqrt(x)
+    neg = x < 0.0
+    if neg.any():
+        r[neg] = math.nan
+    return r
 
 
 def _squeeze(p: Prediction) -> Prediction:

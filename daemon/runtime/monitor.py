@@ -271,14 +271,55 @@ class Monitor:
         dist_l = None if dist is None else dist.tolist()
         out_l = outside.tolist()
         trust, marks = [], []
-        for i in range(k):
+        # rows that make nothing active, while reasons are held (a model in caution): their
+        # steps only count the reasons' absence (`Trust.advance_quiet`), and a run of them
+        # but its last row is taken at once; the last is stepped as usual (it leaves the
+        # latest statistics), as is every row at which a held reason clears
+        held = (k > 2 and not self.lab_active and not self.commissioning.active
+                and (self.clock is None or ts[0] >= self.clock))
+        quiet = self._quiet_each(ts, std, leverage, dist, outside, last_lab_t) if held \
+            else None
+        i = 0
+        while i < k:
+            # (with nothing held a step does not advance the trust at all: see _evaluate)
+            if quiet is not None and quiet[i] and self.trust.level:
+                j = i + 1
+                while j < k and quiet[j]:
+                    j += 1
+                if j - i > 1:
+                    n = self.trust.advance_quiet(ts[i:j - 1])
+                    if n:
+                        self.clock = ts[i + n - 1]
+                        self.pred_active.clear()
+                        trust += [self.state] * n
+                        i += n
+                        continue
             ev = self._pred_step(ts[i], std_l[i], lev_l[i],
                                  None if dist_l is None else dist_l[i], int(out_l[i]),
                                  last_lab_t)
             if ev:
                 marks.append((i, ev))
             trust.append(self.state)
+            i += 1
         return trust, marks
+
+    def _quiet_each(self, ts, std, leverage, dist, outside, last_lab_t) -> list:
+        """For each row, whether its step makes no reason active (`_pred_step`'s tests,
+        elementwise)."""
+        cfg = self.cfg
+        with np.errstate(invalid="ignore", divide="ignore"):
+            q = np.isfinite(std) & ~outside
+            if cfg.std_limit is not None:
+                q &= ~(std > cfg.std_limit)
+            if cfg.std_ratio > 0:
+                q &= ~(std / self.std.baseline > cfg.std_ratio)
+            if cfg.leverage_limit > 0:
+                q &= ~(leverage > cfg.leverage_limit)
+            if dist is not None:
+                q &= ~(dist > cfg.region_limit)
+            if last_lab_t is not None:
+                q &= ~(np.asarray(ts, dtype=float) - last_lab_t > self._stale_after)
+        return q.tolist()
 
     def on_prediction_row(self, t: float, x: list, std: float, leverage: float,
                           last_lab_t: float | None) -> tuple[list, list]:

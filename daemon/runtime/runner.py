@@ -26,6 +26,8 @@ from daemon.config import ModelConfig
 from daemon.runtime.alignment import Aligner
 from daemon.runtime.monitor import STALE_FALLBACK, Monitor
 from recursive import OutOfOrderError, Posterior, Prediction
+from recursive.basis import Identity, Polynomial
+from recursive.posterior import predict_rows_many
 
 _PREDICTION_FIELDS = tuple(f.name for f in fields(Prediction))
 
@@ -43,6 +45,70 @@ _COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_l
 MAX_REWIND = 64
 # a visit with at most this many single samples takes the short path (_predict_few)
 _FEW = 4
+
+
+def _affine_terms(basis) -> tuple | None:
+    """``(scaled, lo, hi, width)`` of a basis whose terms are 1 then one per input (the
+    input, or its scaled ``((x - lo) - (hi - x)) / width``), else None."""
+    if type(basis) is Identity or (type(basis) is Polynomial and basis.degree == 1
+                                   and not basis.scale):
+        return (False, None, None, None)
+    if type(basis) is Polynomial and basis.degree == 1:
+        return (True, basis._lo, basis._hi, basis._width)
+    return None
+
+
+def predict_few_together(visits: list) -> dict:
+    """The numbers of many models' short visits, computed together where they share a shape.
+
+    ``visits`` is ``[(key, runner, ts, rows)]``, each a visit for which
+    :meth:`ModelRunner.few_together` is true. Returns ``{key: shared}`` for the visits
+    computed, ``shared`` to pass to :meth:`ModelRunner.predict`; a visit left out takes its
+    own path. Models with the same number of inputs and the same kind of affine terms
+    (scaled or not) share one array expression for their terms, one kernel call and one
+    pass of elementwise arithmetic (`recursive.posterior.predict_rows_many`): the bits each
+    row gets are those of its model's own short path (:meth:`ModelRunner._predict_few`),
+    whichever other models it is computed with.
+    """
+    groups: dict = {}
+    for v in visits:
+        r = v[1]
+        groups.setdefault((r._affine[0], len(r.tags)), []).append(v)
+    out: dict = {}
+    for (scaled, _d), group in groups.items():
+        if len(group) < 2:
+            continue  # nothing to share
+        ts, rows, owner = [], [], []
+        for g, (_key, _r, vts, vrows) in enumerate(group):
+            ts += vts
+            rows += vrows
+            owner += [g] * len(vts)
+        X = np.array(rows, dtype=float)
+        own = np.array(owner)
+        P = np.empty((X.shape[0], X.shape[1] + 1))
+        P[:, 0] = 1.0
+        if scaled:
+            lim = np.array([(r._affine[1], r._affine[2], r._affine[3])
+                            for _k, r, _t, _x in group])[own]
+            lo, hi, width = lim[:, 0], lim[:, 1], lim[:, 2]
+            # the basis' own ((X - lo) - (hi - X)) / width, elementwise
+            P[:, 1:] = ((X - lo) - (hi - X)) / width
+        else:
+            P[:, 1:] = X
+        t = np.array(ts, dtype=float)
+        res = predict_rows_many([r.post for _k, r, _t, _x in group], P, t, own,
+                                [r.cfg.level for _k, r, _t, _x in group])
+        if res is None:
+            continue
+        mean, std, var, lo_, hi_, dof, lev = res
+        a = np.array((t, mean, std, var, lo_, hi_, dof))
+        xs, std_l, lev_l = X.tolist(), std.tolist(), lev.tolist()
+        start = 0
+        for key, _r, vts, _x in group:
+            end = start + len(vts)
+            out[key] = (xs[start:end], a[:, start:end], std_l[start:end], lev_l[start:end])
+            start = end
+    return out
 
 
 class _Offered:
@@ -66,12 +132,13 @@ class Rejected(Exception):
         self.detail = detail
 
 
-@dataclass(frozen=True)
+@dataclass(slots=True)
 class PredBatch:
     """Predictions for a run of feature samples of one model.
 
     The numbers are float arrays, or lists of floats from the short path of a few single
-    samples (:meth:`ModelRunner._predict_few`).
+    samples (:meth:`ModelRunner._predict_few`). Not frozen: a frozen dataclass' ``__init__``
+    sets each field through ``object.__setattr__``, a cost on every model visit.
     """
 
     t: np.ndarray
@@ -129,6 +196,8 @@ class ModelRunner:
         # predictions use each input at t - dead_time, as learning does; with no dead time
         # that is the sample's own row, and no lookup is made
         self.delayed = any(i.dead_time > 0 for i in cfg.inputs)
+        # terms 1, u_1, ..., u_d: what predict_few_together builds for many models at once
+        self._affine = _affine_terms(self.basis)
         # how long a run of pending samples may span before the oldest's delayed inputs
         # could leave the buffer (history minus the longest dead time and the tolerance)
         dead = max(float(i.dead_time) for i in cfg.inputs)
@@ -278,14 +347,18 @@ class ModelRunner:
             return "stale"
         return "learning"
 
-    def predict(self, ts: list, rows, ids: list, *, singles: bool = False) -> PredBatch:
+    def predict(self, ts: list, rows, ids: list, *, singles: bool = False,
+                shared: tuple | None = None) -> PredBatch:
         """Vectorized predictions for feature samples already buffered.
 
         ``singles``: the rows came as single-sample messages. Each then gets its own detector
         step and trust, and its numbers must not depend on the other rows: where the
         posterior cannot promise that for a batch (`Posterior.rowwise`), rows are predicted
-        one at a time.
+        one at a time. ``shared``: this visit's numbers as :func:`predict_few_together`
+        computed them with other models' rows (the same bits as computed here).
         """
+        if shared is not None:
+            return self._finish_few(ts, ids, *shared)
         if singles and 0 < len(ts) <= _FEW and not self.delayed:
             batch = self._predict_few(ts, rows, ids)
             if batch is not None:
@@ -304,6 +377,13 @@ class ModelRunner:
             pred = self.post.predict(self.basis(X), t=t)
         return self._finish(ts, t, X, ids, pred, singles, waiting)
 
+    def few_together(self, ts: list) -> bool:
+        """Whether a visit of single samples at ``ts`` may take :func:`predict_few_together`:
+        the short path (:meth:`_predict_few`) of a posterior whose rows can be computed with
+        other models' (`Posterior.rows_together`) and an affine basis."""
+        return (0 < len(ts) <= _FEW and not self.delayed and self._affine
+                and self.post.rows_together)
+
     def _predict_few(self, ts: list, rows, ids: list) -> PredBatch | None:
         """:meth:`predict` of a few single samples (most visits have one): one kernel call
         (`Posterior.predict_rows`) and plain float arithmetic for the distribution, the
@@ -319,6 +399,14 @@ class ModelRunner:
         if out is None:
             return None
         mean, std, var, lo, hi, dof, lev = out
+        a = np.array((ts, mean, std, var, lo, hi, dof), dtype=float)
+        return self._finish_few(ts, ids, xs, a, std, lev)
+
+    def _finish_few(self, ts: list, ids: list, xs: list, a: np.ndarray, std: list,
+                    lev: list) -> PredBatch:
+        """The rest of :meth:`_predict_few` once the numbers are known: ``a`` the (7, k)
+        array of times, means, stds, variances, interval ends and dofs, ``std`` and ``lev``
+        the stds and leverages as floats, ``xs`` the raw rows as lists of floats."""
         k = len(ts)
         trust, marks = None, ()
         last = self.last_lab_t
@@ -338,9 +426,10 @@ class ModelRunner:
             sa = self.stale_after
             status = ["stale" if t - last > sa else "learning" for t in ts]
         self.n_predictions += k
-        self.last_mean, self.last_std = mean[-1], std[-1]
+        self.last_mean, self.last_std = float(a[1, -1]), std[-1]
         # lists of floats, as the publisher writes them (no array to convert back)
-        return PredBatch(ts, ids, mean, std, var, lo, hi, dof, status, trust, marks)
+        c = a.tolist()
+        return PredBatch(c[0], ids, c[1], c[2], c[3], c[4], c[5], c[6], status, trust, marks)
 
     def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
         """The rows the predictions at ``ts`` use: each input at t - its dead time, looked

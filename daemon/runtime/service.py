@@ -47,7 +47,13 @@ from daemon.runtime import wire
 from daemon.runtime.feed import Feed, FeedStats
 from daemon.runtime.metrics import ServiceCollector
 from daemon.runtime.notify import Notifier
-from daemon.runtime.runner import MAX_REWIND, ModelRunner, PredBatch, Rejected
+from daemon.runtime.runner import (
+    MAX_REWIND,
+    ModelRunner,
+    PredBatch,
+    Rejected,
+    predict_few_together,
+)
 from daemon.runtime.security import (
     DOMAIN_CONTROL,
     DOMAIN_PUBLISH,
@@ -677,9 +683,10 @@ class Service:
             except Exception as exc:  # noqa: BLE001 - one message must never stop the loop
                 self._internal_error(msg.model, exc)
                 pending.pop(msg.model, None)
+        shared = self._shared(pending)
         for name, seg in pending.items():
             try:
-                self._flush(self.runners[name], seg)
+                self._flush(self.runners[name], seg, shared=shared.get(name))
             except DurabilityError:
                 raise
             except Exception as exc:  # noqa: BLE001
@@ -768,7 +775,27 @@ class Service:
         for (ts, _X, ids, has_id, packed), batch in zip(blocks, batches, strict=True):
             self._publish(runner, ts, ids, batch, True, has_id, packed)
 
-    def _flush(self, runner: ModelRunner, seg: _Pending, parts: list | None = None) -> None:
+    def _shared(self, pending: dict) -> dict:
+        """The numbers of the wake-up's short visits, many models' rows computed together
+        (`runner.predict_few_together`; the same bits as visit by visit)."""
+        runners = self.runners
+        visits = []
+        for name, seg in pending.items():
+            if not seg.block and not seg.blocks:
+                r = runners[name]
+                if r.few_together(seg.ts):
+                    visits.append((name, r, seg.ts, seg.rows))
+        if len(visits) < 2:
+            return {}
+        try:
+            return predict_few_together(visits)
+        except Exception as exc:  # noqa: BLE001 - each model then computes its own
+            self._rlog.warn("", "internal_error", f"rows of several models together: "
+                                                  f"{type(exc).__name__}: {str(exc)[:200]}")
+            return {}
+
+    def _flush(self, runner: ModelRunner, seg: _Pending, parts: list | None = None,
+               shared: tuple | None = None) -> None:
         # buffered blocks first: everything published or learned after a flush must come
         # after the predictions of what was buffered before it
         if seg.blocks:
@@ -777,7 +804,7 @@ class Service:
         if not ts:
             return
         singles = parts is None and not seg.block
-        batch = runner.predict(ts, rows, ids, singles=singles)
+        batch = runner.predict(ts, rows, ids, singles=singles, shared=shared)
         if parts is not None:
             # a block predicted in pieces around its lab values still gets one message
             parts.append((ts, ids, batch))

@@ -1,6 +1,7 @@
 """The trust state machine: :class:`Trust` turns named alarm reasons into a level (normal /
 caution / untrusted by default) with hysteresis and acknowledgement."""
 
+import bisect
 from dataclasses import dataclass
 from typing import Any
 
@@ -222,6 +223,47 @@ class Trust:
         self._n += 1
         self._last_t = t
         return level != old
+
+    def advance_quiet(self, ts: list) -> int:
+        """``advance(t, {})`` for the times ``ts`` in turn while no held reason clears.
+
+        Returns how many of ``ts`` were taken: all of them, or those before the first step
+        at which a held reason would clear (or none if ``ts`` starts before the last step);
+        the caller advances the rest one by one. Nothing is active in these steps, so
+        they only count the absence of each held reason: the level stays, and the state
+        afterwards is that of the same steps taken one at a time.
+
+        Notes
+        -----
+        A record held ``c`` steps, absent since ``f``, clears at the step ``i`` (from 0)
+        with ``c + i + 1 >= clear_count`` and ``ts[i] - f >= clear_time`` (``f = ts[0]``
+        when ``c = 0``); the difference grows with ``ts[i]``, so the first such step is
+        found by bisection.
+        """
+        m = len(ts)
+        if not m or (self._n and ts[0] < self._last_t):
+            return 0
+        count, dur = self._count, self._time
+        for r in self._reasons.values():
+            for rec in r["held"].values():
+                c = rec[0]
+                first = rec[1] if c else ts[0]
+                lo = max(0, count - c - 1)
+                if lo < m:
+                    i = bisect.bisect_left(range(m), True, lo=lo,
+                                           key=lambda j, f=first: ts[j] - f >= dur)
+                    m = min(m, i)
+        if not m:
+            return 0
+        t0 = ts[0]
+        for r in self._reasons.values():
+            for rec in r["held"].values():
+                if rec[0] == 0:
+                    rec[1] = t0
+                rec[0] += m
+        self._n += m
+        self._last_t = float(ts[m - 1])
+        return m
 
     def acknowledge(self) -> None:
         """Mark every held reason as acknowledged at its current level (does not clear it)."""
