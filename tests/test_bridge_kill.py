@@ -222,7 +222,10 @@ drawn = "ns=2;s=Qdrawn"
         daemon.start()
         # replayed: the three results learned before the kill, once each, and the one held
         # by the bridge
-        wait_until(lambda: daemon.model()["learned"] == 4, what="the held lab result learned")
+        # the bridge reconnects with back-off and the restarted daemon replays first: on a
+        # loaded machine that takes longer than the default wait
+        wait_until(lambda: daemon.model()["learned"] == 4, timeout=START_TIMEOUT,
+                   what="the held lab result learned")
         back = daemon.model()
         assert back["lab_results"] == 5 and back["rejected"].get("lab_out_of_order", 0) == 1
         # the row of T0 + 60 came after the checkpoint: the restarted daemon, whose sequence
