@@ -203,6 +203,16 @@ class PlantThread:
     def write(self, tag: str, value, t: float, status: int = 0) -> None:
         self._call(self.plant.write(tag, value, t, status))
 
+    def write_together(self, values: dict, t: float) -> None:
+        """Write several tags in one step of the server's loop, as one scan of a plant's
+        controller does: no publishing cycle falls between them, so a subscriber gets them
+        in one notification (two separate writes may straddle a cycle on a busy machine,
+        and the bridge then sends a row with one input new and one old)."""
+        async def many():
+            for tag, value in values.items():
+                await self.plant.write(tag, value, t)
+        self._call(many())
+
     def close(self) -> None:
         try:
             self._call(self.plant.stop())

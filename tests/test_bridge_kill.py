@@ -157,13 +157,11 @@ drawn = "ns=2;s=Qdrawn"
         return b
 
     def row(t: float, a: float, b: float) -> None:
-        plant.write("A", a, t)
-        plant.write("B", b, t)
+        plant.write_together({"A": a, "B": b}, t)
 
     def lab(t: float, y: float) -> None:
-        # the value first, then its drawn time (the bridge sends the pair on the time)
-        plant.write("Q", y, t + 1.0)
-        plant.write("Qdrawn", stamp(t), t + 1.0)
+        # the value and its drawn time together (the bridge sends the pair on the time)
+        plant.write_together({"Q": y, "Qdrawn": stamp(t)}, t + 1.0)
 
     def seen(kind: str, t: float) -> None:
         recv_until(daemon.out, lambda m: m[0] == f"{kind}/two" and m[1]["t"] == t)
@@ -224,8 +222,12 @@ drawn = "ns=2;s=Qdrawn"
         # by the bridge
         # the bridge reconnects with back-off and the restarted daemon replays first: on a
         # loaded machine that takes longer than the default wait
-        wait_until(lambda: daemon.model()["learned"] == 4, timeout=START_TIMEOUT,
-                   what="the held lab result learned")
+        try:
+            wait_until(lambda: daemon.model()["learned"] == 4, timeout=START_TIMEOUT,
+                       what="the held lab result learned")
+        except AssertionError as e:
+            raise AssertionError(f"{e}; the model: {daemon.model()}; bridge log:\n"
+                                 f"{bridge.log()}") from None
         back = daemon.model()
         assert back["lab_results"] == 5 and back["rejected"].get("lab_out_of_order", 0) == 1
         # the row of T0 + 60 came after the checkpoint: the restarted daemon, whose sequence
