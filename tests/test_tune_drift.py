@@ -106,6 +106,12 @@ def test_selection_recovers_a_random_walk_offset():
     assert scores["offset"] > scores["stabilized"] + 5.0  # decisive, not within the flat margin
     assert not any("drift rate" in w for w in res.warnings)
     assert res.flat is None and not m.adapt_offset  # a determined rate stays fixed
+    # the table lists the chosen setting once, not also the candidate it was rounded from
+    rows = [line.split()[1:] for line in tune.table_text(res).splitlines()
+            if line.startswith("  ") and line.split()[0].isdigit()]
+    chosen = next(r for r in rows if r[-1] == "chosen")
+    same = [r for r in rows if r[0] == chosen[0] and r[2:6] == chosen[2:6]]
+    assert same == [chosen], same
     # the block reads back as the model, the rate written as a change per hour
     block = tune.model_toml(m, tune.header_comments(res, "sim.csv"))
     assert "offset_drift = " in block

@@ -987,7 +987,8 @@ def table_text(res: TuneResult, *, top: int = 12, unit: str = "", source: str = 
     # the refinement steps differ in far digits; the grid and the chosen value tell the story
     ranked = sorted((c for c in res.candidates if c.stage != "refine"),
                     key=lambda c: -c.score if math.isfinite(c.score) else math.inf)
-    shown = ranked[:top]
+    # the candidate the chosen values were rounded from would read as the same row twice
+    shown = [c for c in ranked if c is res.best or not _rounds_to(c, res.best)][:top]
     if res.best not in shown:
         shown.append(res.best)
     for i, c in enumerate(shown, 1):
@@ -1018,6 +1019,13 @@ def table_text(res: TuneResult, *, top: int = 12, unit: str = "", source: str = 
     for w in res.warnings:
         lines.append(f"warning: {w}")
     return "\n".join(lines)
+
+
+def _rounds_to(c: Candidate, best: Candidate) -> bool:
+    """Whether ``c`` is ``best`` before its values were rounded to be written."""
+    return (c.policy == best.policy and _round_sig(c.alpha) == best.alpha
+            and _round_sig(c.noise) == best.noise
+            and _describe_choice(c) == _describe_choice(best))
 
 
 def _num(v) -> str:
