@@ -632,6 +632,58 @@ def scaled_row(out, x, lo, hi, width, /) -> None:
         ov[0, 1 + j] = ((v - a) - (b - v)) / w
 
 
+def whiten_norms(out, X, mean, M, /) -> None:
+    """:func:`whiten_norm` of every row of ``X`` (float64 buffer, shape (k, n)) into ``out``.
+
+    Parameters
+    ----------
+    out : writable float64 buffer, shape (k,)
+        Receives the distances.
+    X : float64 buffer, shape (k, n)
+        The rows.
+    mean, M : float64 buffers, shapes (n,) and (n, n)
+        As in :func:`whiten_norm`.
+
+    Notes
+    -----
+    The elementwise array expression of :func:`whiten_norm` over all rows at once: each
+    row's value is computed from that row alone, with the same bits as row by row.
+    """
+    mv = _array(mean, "mean", 1, None, False)
+    n = mv.shape[0]
+    _check_n(n)
+    Mv = _array(M, "M", 2, n, False)
+    Xv = _matrix(X, "X", (None, n), False)
+    ov = _view(out, "out", 1, lambda sh: (Xv.shape[0],), True)
+    _check_disjoint({"out": ov}, {"X": Xv, "mean": mv, "M": Mv})
+    if n == 0:
+        ov[:] = 0.0
+        return
+    D = Xv - mv
+    Y = D[:, :1] * Mv[:, 0]
+    for j in range(1, n):
+        Y = Y + D[:, j:j + 1] * Mv[:, j]
+    acc = Y[:, 0] * Y[:, 0]
+    for i in range(1, n):
+        acc = acc + Y[:, i] * Y[:, i]
+    ov[:] = np.sqrt(acc)
+
+
+def scaled_rows(out, X, lo, hi, width, /) -> None:
+    """:func:`scaled_row` of every row of ``X`` (float64 buffer, shape (k, n)) into ``out``
+    (writable float64 buffer, shape (k, n + 1)); the array expression, the same bits."""
+    lv = _array(lo, "lo", 1, None, False)
+    n = lv.shape[0]
+    _check_n(n)
+    hv = _array(hi, "hi", 1, n, False)
+    wv = _array(width, "width", 1, n, False)
+    Xv = _matrix(X, "X", (None, n), False)
+    ov = _matrix(out, "out", (Xv.shape[0], n + 1), True)
+    _check_disjoint({"out": ov}, {"X": Xv, "lo": lv, "hi": hv, "width": wv})
+    ov[:, 0] = 1.0
+    ov[:, 1:] = ((Xv - lv) - (hv - Xv)) / wv
+
+
 def outside(x, lo, hi, /) -> bool:
     """True if a value of the row ``x`` (list or tuple of n numbers) is below ``lo`` or
     above ``hi`` (float64 buffers of shape (n,)); a nan is in range (it compares false)."""

@@ -1232,6 +1232,131 @@ kernel_outside(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     return PyBool_FromLong(flag);
 }
 
+PyDoc_STRVAR(whiten_norms_doc,
+"whiten_norms($module, out, X, mean, M, /)\n--\n\n"
+"out[r] = whiten_norm(X[r], mean, M) for every row r of the (k, n) float64 array X.\n\n"
+"The same operations in the same order as whiten_norm (and as the elementwise array\n"
+"expression), row by row: a row's value does not depend on the other rows. out is a\n"
+"writable (k,) float64 array.");
+
+static PyObject *
+kernel_whiten_norms(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    double *out;
+    const double *X, *mean, *M;
+    Work wd;
+    if (check_nargs("whiten_norms", nargs, 4) < 0) {
+        return NULL;
+    }
+    /* out first: check_disjoint checks the buffers written, which come first */
+    if ((out = get_array(&b, args[0], "out", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    if ((mean = get_array(&b, args[2], "mean", 1, -1, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t n = b.view[1].shape[0];
+    if (check_n(n) < 0 || (M = get_array(&b, args[3], "M", 2, n, 0)) == NULL ||
+        (X = get_matrix(&b, args[1], "X", -1, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t k = b.view[3].shape[0];
+    if (b.view[0].shape[0] != k) {
+        PyErr_Format(PyExc_ValueError, "out must have shape (%zd,), got (%zd,)", k,
+                     b.view[0].shape[0]);
+        release_all(&b);
+        return NULL;
+    }
+    static const char *const names[] = {"out", "mean", "M", "X"};
+    if (check_disjoint(&b, names, 1) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    double *d = work_get(&wd, n);
+    if (d == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    for (Py_ssize_t r = 0; r < k; r++) {
+        const double *x = X + r * n;
+        for (Py_ssize_t j = 0; j < n; j++) {
+            d[j] = x[j] - mean[j];
+        }
+        double acc = 0.0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            const double *Mi = M + i * n;
+            double y = d[0] * Mi[0];
+            for (Py_ssize_t j = 1; j < n; j++) {
+                volatile double p = d[j] * Mi[j];
+                y = y + p;
+            }
+            volatile double q = y * y;
+            acc = i == 0 ? q : acc + q;
+        }
+        out[r] = n == 0 ? 0.0 : sqrt(acc);
+    }
+    work_free(&wd);
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
+PyDoc_STRVAR(scaled_rows_doc,
+"scaled_rows($module, out, X, lo, hi, width, /)\n--\n\n"
+"scaled_row for every row of the (k, n) float64 array X into the writable (k, n + 1)\n"
+"float64 array out: out[r, 0] = 1, out[r, 1 + j] = ((X[r, j] - lo_j) - (hi_j - X[r, j]))\n"
+"/ width_j, each operation rounded on its own (the bits of the array expression).");
+
+static PyObject *
+kernel_scaled_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    double *out;
+    const double *X, *lo, *hi, *w;
+    if (check_nargs("scaled_rows", nargs, 5) < 0) {
+        return NULL;
+    }
+    /* out first: check_disjoint checks the buffers written, which come first */
+    if ((out = get_array(&b, args[0], "out", 2, -2, 1)) == NULL) {
+        return NULL;
+    }
+    if ((lo = get_array(&b, args[2], "lo", 1, -1, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t n = b.view[1].shape[0];
+    if (check_n(n) < 0 || (hi = get_array(&b, args[3], "hi", 1, n, 0)) == NULL ||
+        (w = get_array(&b, args[4], "width", 1, n, 0)) == NULL ||
+        (X = get_matrix(&b, args[1], "X", -1, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t k = b.view[4].shape[0];
+    if (b.view[0].shape[0] != k || b.view[0].shape[1] != n + 1) {
+        PyErr_Format(PyExc_ValueError, "out must have shape (%zd, %zd), got (%zd, %zd)", k,
+                     n + 1, b.view[0].shape[0], b.view[0].shape[1]);
+        release_all(&b);
+        return NULL;
+    }
+    static const char *const names[] = {"out", "lo", "hi", "width", "X"};
+    if (check_disjoint(&b, names, 1) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    for (Py_ssize_t r = 0; r < k; r++) {
+        const double *x = X + r * n;
+        double *o = out + r * (n + 1);
+        o[0] = 1.0;
+        for (Py_ssize_t j = 0; j < n; j++) {
+            o[1 + j] = ((x[j] - lo[j]) - (hi[j] - x[j])) / w[j];
+        }
+    }
+    release_all(&b);
+    Py_RETURN_NONE;
+}
+
 static PyMethodDef kernel_methods[] = {
     {"update", (PyCFunction)(void (*)(void))kernel_update, METH_FASTCALL, update_doc},
     {"stabilize", (PyCFunction)(void (*)(void))kernel_stabilize, METH_FASTCALL,
@@ -1253,6 +1378,10 @@ static PyMethodDef kernel_methods[] = {
     {"outside", (PyCFunction)(void (*)(void))kernel_outside, METH_FASTCALL, outside_doc},
     {"stabilized_rows_many", (PyCFunction)(void (*)(void))kernel_stabilized_rows_many,
      METH_FASTCALL, stabilized_rows_many_doc},
+    {"whiten_norms", (PyCFunction)(void (*)(void))kernel_whiten_norms, METH_FASTCALL,
+     whiten_norms_doc},
+    {"scaled_rows", (PyCFunction)(void (*)(void))kernel_scaled_rows, METH_FASTCALL,
+     scaled_rows_doc},
     {NULL, NULL, 0, NULL},
 };
 

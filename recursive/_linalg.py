@@ -172,6 +172,8 @@ if _kernel is not None:
     whiten_norm = getattr(_kernel, "whiten_norm", None)
     scaled_row = getattr(_kernel, "scaled_row", None)
     outside = getattr(_kernel, "outside", None)
+    whiten_norms = getattr(_kernel, "whiten_norms", None) or _givens.whiten_norms
+    scaled_rows = getattr(_kernel, "scaled_rows", None) or _givens.scaled_rows
 else:
     rank_ratio = lapack_rank_ratio
     update = lapack_update
@@ -185,6 +187,9 @@ else:
     stabilized_rows_many = _givens.stabilized_rows_many
     # the references in Python are no faster than the callers' own float paths
     whiten_norm = scaled_row = outside = None
+    # the references are the array expressions the callers would otherwise write
+    whiten_norms = _givens.whiten_norms
+    scaled_rows = _givens.scaled_rows
 
 
 def full_rank(r: np.ndarray) -> bool:

@@ -22,6 +22,7 @@ import numpy as np
 
 from recursive._linalg import outside as _outside
 from recursive._linalg import scaled_row as _scaled_row
+from recursive._linalg import scaled_rows as _scaled_rows
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -577,6 +578,12 @@ class Polynomial(Basis):
         return tab
 
     def _evaluate(self, X: np.ndarray) -> np.ndarray:
+        if self.degree == 1 and self.scale and _scaled_row is not None:
+            # one C pass instead of four array temporaries; the same operations (same bits)
+            out = np.empty((X.shape[0], self.n_features), dtype=np.float64)
+            _scaled_rows(out, np.ascontiguousarray(X, dtype=np.float64), self._lo, self._hi,
+                         self._width)
+            return out
         U = ((X - self._lo) - (self._hi - X)) / self._width if self.scale else X
         if self.degree == 1:
             # every family has p_1(u) = u and the terms are 1, u_1, ..., u_d in order

@@ -871,3 +871,68 @@ def test_row_kernels_bad_arguments(K):
         out_([1.0, None], lo, hi)
     with pytest.raises(ValueError, match="shape"):
         out_([1.0, 2.0], lo, np.ones(3))
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 17])
+def test_whiten_norms_are_whiten_norm_row_by_row_and_scipy_mahalanobis(K, n):
+    # the array form: the bits of whiten_norm of each row (so a row's value does not depend
+    # on the rows around it), and scipy.spatial.distance.mahalanobis to rounding
+    from scipy.spatial.distance import mahalanobis
+
+    fn = _fn(K, "whiten_norms")
+    rng = np.random.default_rng(70 + n)
+    cov, mean, M = _whitening(rng, n)
+    X = mean + rng.normal(size=(90, n)) * 3.0
+    X[0, 0], X[1, -1], X[2, n // 2] = math.inf, -math.inf, math.nan
+    out = np.empty(90)
+    with np.errstate(invalid="ignore", over="ignore"):
+        fn(out, X, mean, M)
+    rows = np.array([_givens.whiten_norm(x, mean, M) for x in X.tolist()])
+    assert out.tobytes() == rows.tobytes()
+    split = np.empty(90)
+    with np.errstate(invalid="ignore", over="ignore"):
+        fn(split[:7], np.ascontiguousarray(X[:7]), mean, M)
+        fn(split[7:], np.ascontiguousarray(X[7:]), mean, M)
+    assert split.tobytes() == out.tobytes()
+    VI = np.linalg.inv(cov)
+    assert_allclose(out[3:], [mahalanobis(x, mean, VI) for x in X[3:]], rtol=1e-9)
+
+
+def test_whiten_norms_bad_arguments(K):
+    fn = _fn(K, "whiten_norms")
+    mean, M, X = np.zeros(3), np.eye(3), np.ones((4, 3))
+    with pytest.raises(ValueError, match=r"out must have shape \(4,\)"):
+        fn(np.empty(3), X, mean, M)
+    with pytest.raises(ValueError, match="X must have shape"):
+        fn(np.empty(4), np.ones((4, 2)), mean, M)
+    with pytest.raises(TypeError, match="float64"):
+        fn(np.empty(4), X.astype(np.float32), mean, M)
+    with pytest.raises(ValueError, match="writable"):
+        ro = np.empty(4)
+        ro.flags.writeable = False
+        fn(ro, X, mean, M)
+    both = np.ones(12)
+    with pytest.raises(ValueError, match="share memory"):
+        fn(both[:4], both.reshape(4, 3), mean, M)
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 40])
+def test_scaled_rows_are_scaled_row_row_by_row(K, n):
+    # reference: numpy's elementwise ((X - lo) - (hi - X)) / width with a leading 1
+    fn = _fn(K, "scaled_rows")
+    rng = np.random.default_rng(80 + n)
+    lo = rng.uniform(-100.0, 50.0, n)
+    hi = lo + rng.uniform(1e-3, 200.0, n)
+    w = hi - lo
+    X = rng.uniform(-300.0, 300.0, size=(50, n))
+    X[0, 0], X[1, -1] = math.nan, math.inf
+    out = np.empty((50, n + 1))
+    with np.errstate(invalid="ignore"):
+        fn(out, X, lo, hi, w)
+        want = np.concatenate([np.ones((50, 1)), ((X - lo) - (hi - X)) / w], axis=1)
+    assert out.tobytes() == want.tobytes()
+    with pytest.raises(ValueError, match="out must have shape"):
+        fn(np.empty((50, n)), X, lo, hi, w)
+    big = np.zeros(50 * (n + 1))
+    with pytest.raises(ValueError, match="share memory"):
+        fn(big.reshape(50, n + 1), big[:50 * n].reshape(50, n), lo, hi, w)

@@ -103,3 +103,74 @@ def test_rowwise_region_distances_do_not_depend_on_the_batch():
                             for i in range(0, 300, 2)])
     assert whole.tobytes() == alone.tobytes() == pairs.tobytes()
     np.testing.assert_allclose(whole, [region.distance(x) for x in X], rtol=1e-13)
+
+
+@pytest.fixture(scope="module")
+def block_feed():
+    """The same run sent as blocks of 1 to 40 rows between lab results, alternately as
+    lists and packed, so that one wake-up holds many blocks predicted together."""
+    run = plant.simulate(SCENARIO)
+    rng = np.random.default_rng(9)
+    frames, rows = [], []
+
+    def flush():
+        while rows:
+            k = min(len(rows), int(rng.integers(1, 41)))
+            part, rows[:] = rows[:k], rows[k:]
+            t = np.array([r[0] for r in part])
+            X = np.array([r[1] for r in part], dtype=float)
+            if len(frames) % 2:
+                body = {"t": t.astype("<f8").tobytes(), "x": X.astype("<f8").tobytes()}
+            else:
+                body = {"t": t.tolist(), "x": X.tolist()}
+            frames.append([MODEL.encode(), msgpack.packb(body)])
+
+    hi0 = next(iter(plant.RANGES.values()))[1]
+    for n, ev in enumerate(plant.events(run)):
+        if ev[0] == "x":
+            x = list(ev[2])
+            if n % 150 == 7:
+                x[0] = hi0 + 5.0  # a reading beyond its instrument range, now and then
+            rows.append((ev[1], x))
+        else:
+            flush()
+            frames.append([MODEL.encode(), msgpack.packb({"t": ev[1], "y": ev[2]})])
+    flush()
+    return frames
+
+
+def block_service(policy: str) -> Service:
+    svc = service(policy.removesuffix("+degree 1"))
+    if policy.endswith("+degree 1"):
+        # the affine basis, whose terms of many rows come from one kernel call
+        model = c301_model(forgetting=POLICIES[policy.removesuffix("+degree 1")],
+                           basis={"kind": "polynomial", "degree": 1},
+                           lab={"keep": "12h", "keep_count": 5000, "tolerance": "4m",
+                                "stale_after": "3h"})
+        svc = Service(loads(toml_config({"metrics": ""}, [model]), "<test>"),
+                      registry=CollectorRegistry())
+        svc.pub = Recorder()
+    return svc
+
+
+@pytest.mark.parametrize("policy", [*sorted(POLICIES), "stabilized+degree 1"])
+def test_blocks_publish_the_same_bytes_in_one_wake_up_or_many(block_feed, policy):
+    # many blocks of a wake-up are predicted in one call, with their intervals and the
+    # detectors' checks (largest leverage and distance, rows out of range) computed over
+    # all their rows at once; each answer must be the one its block gets alone
+    burst, paced, chunked = (block_service(policy) for _ in range(3))
+    burst.process(block_feed)
+    for frames in block_feed:
+        paced.process([frames])
+    rng = np.random.default_rng(5)
+    i = 0
+    while i < len(block_feed):
+        k = int(rng.integers(1, 30))
+        chunked.process(block_feed[i:i + k])
+        i += k
+    want = published(paced)
+    alerts = [b for t, b in paced.pub.out if t.startswith("alert/")]
+    reasons = {r["name"] for a in alerts for r in a.get("reasons", ())}
+    assert "out_of_range" in reasons
+    assert published(burst) == want
+    assert published(chunked) == want

@@ -201,9 +201,40 @@ class Monitor:
         lev = float(leverage.max()) if len(leverage) else math.nan
         dist = None
         if cfg.region_limit > 0 and self.region.ready:
-            dist = float(self.region.distances(X).max())
+            # row by row (the bits of a row's distance do not depend on the others), so
+            # that blocks checked together (block_checks) are judged as each alone
+            dist = float(self.region.distances(X, rowwise=True).max())
         return self._pred_step(clock, float(std[-1]), lev, dist,
                                self.basis.rows_out_of_range(X), last_lab_t)
+
+    def block_checks(self, X: np.ndarray, leverage: np.ndarray, starts: list) -> list:
+        """What :meth:`on_predictions` judges each block by, for several blocks at once.
+
+        ``X`` and ``leverage`` are the rows of consecutive blocks, block ``i`` starting at
+        row ``starts[i]`` (every block at least one row). Returns ``(largest leverage,
+        largest distance or None, rows out of range)`` per block, the values
+        :meth:`on_predictions` would compute for each block alone (same bits: maxima and
+        counts of row-by-row values), for :meth:`on_block`.
+        """
+        lev = np.maximum.reduceat(leverage, starts).tolist()
+        if self.cfg.region_limit > 0 and self.region.ready:
+            dist = np.maximum.reduceat(self.region.distances(X, rowwise=True),
+                                       starts).tolist()
+        else:
+            dist = [None] * len(starts)
+        if self.basis.rows_out_of_range(X):
+            flags = self.basis.out_of_range(X).any(axis=1)
+            outside = np.add.reduceat(flags.astype(np.int64), starts).tolist()
+        else:
+            outside = [0] * len(starts)
+        return list(zip(lev, dist, outside, strict=True))
+
+    def on_block(self, clock: float, s_last: float, checks: tuple,
+                 last_lab_t: float | None) -> list[dict]:
+        """:meth:`on_predictions` of a block whose ``checks`` (:meth:`block_checks`) are
+        known: ``s_last`` is the std of its last row."""
+        lev, dist, outside = checks
+        return self._pred_step(clock, s_last, lev, dist, outside, last_lab_t)
 
     def _pred_step(self, clock: float, s_last: float, lev: float, dist: float | None,
                    outside: int, last_lab_t: float | None) -> list[dict]:

@@ -319,11 +319,12 @@ class ModelRunner:
         while len(self.ids) > self.cfg.keep_count:
             self.ids.popitem(last=False)
 
-    def add_block(self, ts: list, X: np.ndarray, ids: list | None, increasing: bool) -> bool:
+    def add_block(self, ts: list, X: np.ndarray, ids: list | None, increasing: bool,
+                  t_array: np.ndarray | None = None) -> bool:
         """Buffer a block of samples at once if its times are increasing and new.
 
         Returns False (nothing done) otherwise; the caller then adds the rows one by one so
-        that each bad row is rejected on its own.
+        that each bad row is rejected on its own. ``t_array``: ``ts`` as a float array too.
         """
         if not increasing:
             return False
@@ -331,7 +332,7 @@ class ModelRunner:
             return False
         self.last_x_t = ts[-1]
         self.n_features += len(ts)
-        self.aligner.push_block_trusted(ts, X)
+        self.aligner.push_block_trusted(ts if t_array is None else t_array, X)
         if ids is not None:
             for ident, t in zip(ids, ts, strict=True):
                 if ident is not None:
@@ -454,7 +455,8 @@ class ModelRunner:
         return out, waiting or None
 
     def predict_blocks(self, blocks: list) -> Iterator[PredBatch]:
-        """:meth:`predict` of several blocks ``(ts, X, ids)``, yielding one result per block.
+        """:meth:`predict` of several blocks ``(ts, X, ids, t_array)``, yielding one result
+        per block (``t_array``: ``ts`` as a float array, or None).
 
         When the posterior's predictions are row by row (each row's numbers do not depend
         on the other rows of its batch: `Posterior.rowwise`), the rows of all blocks are
@@ -464,28 +466,50 @@ class ModelRunner:
         same trust states and alerts in between, as block by block.
         """
         if len(blocks) == 1 or not self.post.rowwise or self.delayed:
-            for ts, X, ids in blocks:
+            for ts, X, ids, _ta in blocks:
                 yield self.predict(ts, X, ids)
             return
-        t = np.concatenate([np.asarray(b[0], dtype=float) for b in blocks])
+        t = np.concatenate([np.asarray(b[0], dtype=float) if b[3] is None else b[3]
+                            for b in blocks])
         X = np.concatenate([b[1] for b in blocks])
         pred = self.post.predict(self.basis(X), t=t)
+        # the intervals and the detectors' per-block checks of all rows at once: each is
+        # a function of its own row (or a maximum or count of such), so the same bits
+        lo, hi = pred.interval(self.cfg.level)
+        starts = np.cumsum([0] + [len(b[0]) for b in blocks[:-1]]).tolist()
+        checks = None
+        if self.monitor is not None and all(len(b[0]) for b in blocks):
+            checks = self.monitor.block_checks(X, pred.leverage, starts)
         start = 0
-        for ts, Xb, ids in blocks:
+        for i, (ts, Xb, ids, _ta) in enumerate(blocks):
             sl = slice(start, start + len(ts))
             start = sl.stop
             part = Prediction(**{f: getattr(pred, f)[sl] for f in _PREDICTION_FIELDS})
-            yield self._finish(ts, t[sl], Xb, ids, part)
+            yield self._finish(ts, t[sl], Xb, ids, part,
+                               known=(lo[sl], hi[sl], None if checks is None else checks[i]))
 
     def _finish(self, ts: list, t: np.ndarray, X: np.ndarray, ids: list,
                 pred: Prediction, singles: bool = False,
-                waiting: list | None = None) -> PredBatch:
+                waiting: list | None = None, known: tuple | None = None) -> PredBatch:
+        """The rest of a prediction once the numbers are known: blanking of rows waiting
+        for delayed inputs, the detectors, the interval and the status. ``known``: the
+        interval ends and the block's detector checks (`Monitor.block_checks`, or None)
+        computed already with other blocks' rows (`predict_blocks`)."""
         trust, marks = None, ()
         if waiting is not None:
             pred = _blanked(pred, waiting)
-        if self.monitor is not None:
-            trust, marks = self._detect(ts, X, pred, singles, waiting)
-        lo, hi = pred.interval(self.cfg.level)
+        if known is not None:
+            lo, hi, checks = known
+            if self.monitor is not None:
+                if checks is None:
+                    trust, marks = self._detect(ts, X, pred, singles, waiting)
+                else:
+                    self.alerts += self.monitor.on_block(ts[-1], float(pred.std[-1]), checks,
+                                                         self.last_lab_t)
+        else:
+            if self.monitor is not None:
+                trust, marks = self._detect(ts, X, pred, singles, waiting)
+            lo, hi = pred.interval(self.cfg.level)
         stale = self.stale_after
         if not self.post.identified or self.frozen or self.last_lab_t is None:
             status = [self.status_at(ts[0])] * len(ts)

@@ -732,11 +732,11 @@ class Service:
             self._buffer(runner, seg, msg.t[0], msg.x[0], msg.ids[0])
             return
         if msg.block and not msg.has_y and isinstance(msg.x, np.ndarray) and runner.add_block(
-                msg.t, msg.x, msg.ids if msg.has_id else None, msg.increasing):
+                msg.t, msg.x, msg.ids if msg.has_id else None, msg.increasing, msg.t_array):
             # the common block: features only, in order. Buffered with the model's other
             # such blocks of this wake-up, predicted with them in one call and answered one
             # message per block, as single samples are.
-            seg.blocks.append((msg.t, msg.x, msg.ids, msg.has_id, msg.packed))
+            seg.blocks.append((msg.t, msg.x, msg.ids, msg.has_id, msg.packed, msg.t_array))
             return
         parts = [] if msg.block else None
         for t, row, y, ident in zip(msg.t, msg.x, msg.y, msg.ids, strict=True):
@@ -771,8 +771,8 @@ class Service:
         bit of the result: `ModelRunner.predict_blocks`); answer each block."""
         blocks, seg.blocks = seg.blocks, []
         # each result is published before the next is asked for (see predict_blocks)
-        batches = runner.predict_blocks([(ts, X, ids) for ts, X, ids, _h, _p in blocks])
-        for (ts, _X, ids, has_id, packed), batch in zip(blocks, batches, strict=True):
+        batches = runner.predict_blocks([(ts, X, ids, ta) for ts, X, ids, _h, _p, ta in blocks])
+        for (ts, _X, ids, has_id, packed, _ta), batch in zip(blocks, batches, strict=True):
             self._publish(runner, ts, ids, batch, True, has_id, packed)
 
     def _shared(self, pending: dict) -> dict:

@@ -215,6 +215,7 @@ class Feed(NamedTuple):
     increasing: bool = True
     packed: bool = False
     src: str | None = None
+    t_array: np.ndarray | None = None
 
 
 def _num(v) -> float | None:
@@ -439,7 +440,8 @@ def _decode_block(name, msg, t, tags, index, seq, src) -> Feed:
     idl = [None] * k if ids is None else [_id(v) for v in ids]
     increasing = k == 1 or bool(np.all(tarr[1:] > tarr[:-1]))
     return Feed(name, ts, rows, ys, idl, seq, True, has_y=y is not None,
-                has_id=ids is not None, increasing=increasing, packed=packed, src=src)
+                has_id=ids is not None, increasing=increasing, packed=packed, src=src,
+                t_array=tarr)
 
 
 def _packed_rows(x: bytes, k: int, tags) -> np.ndarray:

@@ -9,7 +9,9 @@ import numpy as np
 import scipy.linalg
 from scipy.linalg import lapack
 
+from recursive._givens import whiten_norms as _givens_whiten_norms
 from recursive._linalg import whiten_norm as _whiten_norm
+from recursive._linalg import whiten_norms as _whiten_norms
 from recursive.detect._common import (
     SCHEMA,
     _check_state,
@@ -243,6 +245,12 @@ class InputRegion:
                 mean, inv_c = self._kernel_arrays()
                 return np.array([_whiten_norm(x, mean, inv_c) for x in A.tolist()],
                                 dtype=float)
+            if _whiten_norms is not _givens_whiten_norms and len(D) > _KERNEL_ROWS:
+                # every row in one C call, the same operations as the array path below
+                out = np.empty(len(A))
+                mean, inv_c = self._kernel_arrays()
+                _whiten_norms(out, np.ascontiguousarray(A, dtype=float), mean, inv_c)
+                return out
             if len(D) <= 2:
                 # plain floats for a row or two: the same operations in the same order as
                 # the array path below, hence the same bits, without its per-call overhead
