@@ -684,6 +684,23 @@ def scaled_rows(out, X, lo, hi, width, /) -> None:
     ov[:, 1:] = ((Xv - lv) - (hv - Xv)) / wv
 
 
+def outside_rows(out, X, lo, hi, /) -> int:
+    """Flag the rows of ``X`` (float64 buffer, shape (k, n)) with a value below ``lo`` or
+    above ``hi`` (float64 buffers, shape (n,)): ``out`` (writable float64 buffer, shape
+    (k,)) gets 1.0 for such a row and 0.0 otherwise (a nan is in range). Returns the number
+    of rows flagged."""
+    lv = _array(lo, "lo", 1, None, False)
+    n = lv.shape[0]
+    _check_n(n)
+    hv = _array(hi, "hi", 1, n, False)
+    Xv = _matrix(X, "X", (None, n), False)
+    ov = _view(out, "out", 1, lambda sh: (Xv.shape[0],), True)
+    _check_disjoint({"out": ov}, {"X": Xv, "lo": lv, "hi": hv})
+    flags = ((Xv < lv) | (Xv > hv)).any(axis=1)
+    ov[:] = flags
+    return int(np.count_nonzero(flags))
+
+
 def outside(x, lo, hi, /) -> bool:
     """True if a value of the row ``x`` (list or tuple of n numbers) is below ``lo`` or
     above ``hi`` (float64 buffers of shape (n,)); a nan is in range (it compares false)."""

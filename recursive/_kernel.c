@@ -1280,16 +1280,32 @@ kernel_whiten_norms(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         release_all(&b);
         return NULL;
     }
+    /* a lower-triangular M (the inverse of a Cholesky factor): on a row whose differences
+     * are all finite its zeros add signed zeros, which change no square, so they are
+     * skipped; a non-finite difference times a zero is nan, so such rows take every term */
+    int lower = 1;
+    for (Py_ssize_t i = 0; i < n && lower; i++) {
+        for (Py_ssize_t j = i + 1; j < n; j++) {
+            if (M[i * n + j] != 0.0) {
+                lower = 0;
+                break;
+            }
+        }
+    }
     for (Py_ssize_t r = 0; r < k; r++) {
         const double *x = X + r * n;
+        int finite = 1;
         for (Py_ssize_t j = 0; j < n; j++) {
             d[j] = x[j] - mean[j];
+            finite &= isfinite(d[j]) != 0;
         }
+        Py_ssize_t skip = lower && finite;
         double acc = 0.0;
         for (Py_ssize_t i = 0; i < n; i++) {
             const double *Mi = M + i * n;
             double y = d[0] * Mi[0];
-            for (Py_ssize_t j = 1; j < n; j++) {
+            Py_ssize_t end = skip ? i + 1 : n;
+            for (Py_ssize_t j = 1; j < end; j++) {
                 volatile double p = d[j] * Mi[j];
                 y = y + p;
             }
@@ -1357,6 +1373,60 @@ kernel_scaled_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     Py_RETURN_NONE;
 }
 
+PyDoc_STRVAR(outside_rows_doc,
+"outside_rows($module, out, X, lo, hi, /)\n--\n\n"
+"out[r] = 1.0 if some X[r, j] < lo_j or X[r, j] > hi_j, else 0.0 (a nan is in range).\n\n"
+"X is a (k, n) float64 array, lo and hi (n,) float64 arrays, out a writable (k,) float64\n"
+"array. Returns the number of rows flagged.");
+
+static PyObject *
+kernel_outside_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Buffers b = {.count = 0};
+    double *out;
+    const double *X, *lo, *hi;
+    if (check_nargs("outside_rows", nargs, 4) < 0) {
+        return NULL;
+    }
+    if ((out = get_array(&b, args[0], "out", 1, -1, 1)) == NULL) {
+        return NULL;
+    }
+    if ((lo = get_array(&b, args[2], "lo", 1, -1, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t n = b.view[1].shape[0];
+    if (check_n(n) < 0 || (hi = get_array(&b, args[3], "hi", 1, n, 0)) == NULL ||
+        (X = get_matrix(&b, args[1], "X", -1, n, 0)) == NULL) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t k = b.view[3].shape[0];
+    if (b.view[0].shape[0] != k) {
+        PyErr_Format(PyExc_ValueError, "out must have shape (%zd,), got (%zd,)", k,
+                     b.view[0].shape[0]);
+        release_all(&b);
+        return NULL;
+    }
+    static const char *const names[] = {"out", "lo", "hi", "X"};
+    if (check_disjoint(&b, names, 1) < 0) {
+        release_all(&b);
+        return NULL;
+    }
+    Py_ssize_t count = 0;
+    for (Py_ssize_t r = 0; r < k; r++) {
+        const double *x = X + r * n;
+        int flag = 0;
+        for (Py_ssize_t j = 0; j < n; j++) {
+            flag |= (x[j] < lo[j]) | (x[j] > hi[j]);
+        }
+        out[r] = flag ? 1.0 : 0.0;
+        count += flag;
+    }
+    release_all(&b);
+    return PyLong_FromSsize_t(count);
+}
+
 static PyMethodDef kernel_methods[] = {
     {"update", (PyCFunction)(void (*)(void))kernel_update, METH_FASTCALL, update_doc},
     {"stabilize", (PyCFunction)(void (*)(void))kernel_stabilize, METH_FASTCALL,
@@ -1382,6 +1452,8 @@ static PyMethodDef kernel_methods[] = {
      whiten_norms_doc},
     {"scaled_rows", (PyCFunction)(void (*)(void))kernel_scaled_rows, METH_FASTCALL,
      scaled_rows_doc},
+    {"outside_rows", (PyCFunction)(void (*)(void))kernel_outside_rows, METH_FASTCALL,
+     outside_rows_doc},
     {NULL, NULL, 0, NULL},
 };
 

@@ -174,6 +174,7 @@ if _kernel is not None:
     outside = getattr(_kernel, "outside", None)
     whiten_norms = getattr(_kernel, "whiten_norms", None) or _givens.whiten_norms
     scaled_rows = getattr(_kernel, "scaled_rows", None) or _givens.scaled_rows
+    outside_rows = getattr(_kernel, "outside_rows", None) or _givens.outside_rows
 else:
     rank_ratio = lapack_rank_ratio
     update = lapack_update
@@ -190,6 +191,7 @@ else:
     # the references are the array expressions the callers would otherwise write
     whiten_norms = _givens.whiten_norms
     scaled_rows = _givens.scaled_rows
+    outside_rows = _givens.outside_rows
 
 
 def full_rank(r: np.ndarray) -> bool:

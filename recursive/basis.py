@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 
 from recursive._linalg import outside as _outside
+from recursive._linalg import outside_rows as _outside_rows
 from recursive._linalg import scaled_row as _scaled_row
 from recursive._linalg import scaled_rows as _scaled_rows
 
@@ -303,14 +304,22 @@ class Basis(ABC):
     def rows_out_of_range(self, X: Any) -> int:
         """Number of rows of ``X`` (k, d) with at least one reading :meth:`out_of_range`.
 
-        Two column reductions settle the common batch in which every reading is in range;
-        only otherwise are the readings flagged one by one.
+        One pass over the readings (in C when the kernel is built).
         """
         A, _single = self._as_rows(X)
-        if not len(A) or ((A.min(axis=0) >= self._lo).all()
-                          and (A.max(axis=0) <= self._hi).all()):
+        if not len(A):
             return 0
-        return int(np.count_nonzero(((A < self._lo) | (A > self._hi)).any(axis=1)))
+        return _outside_rows(np.empty(len(A)), np.ascontiguousarray(A), self._lo, self._hi)
+
+    def rows_out_of_range_flags(self, X: Any) -> np.ndarray | None:
+        """Per row of ``X`` (k, d), 1.0 if a reading is :meth:`out_of_range` and 0.0 if
+        not; None when no row is."""
+        A, _single = self._as_rows(X)
+        flags = np.empty(len(A))
+        if not len(A) or not _outside_rows(flags, np.ascontiguousarray(A), self._lo,
+                                           self._hi):
+            return None
+        return flags
 
     # ------------------------------------------------------------------ prior helper
     def alpha_vector(self, alpha: Any) -> np.ndarray:

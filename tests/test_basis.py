@@ -633,3 +633,19 @@ def test_batch_equals_row_by_row(case):
     flags = basis.out_of_range(X)
     np.testing.assert_array_equal(flags, np.array([basis.out_of_range(x) for x in X],
                                                   dtype=bool).reshape(X.shape))
+
+
+def test_rows_out_of_range_flags_and_count_agree_with_out_of_range():
+    # reference: the elementwise out_of_range(X) of the same basis, reduced with numpy
+    b = Polynomial([Input("a", -1.0, 1.0), Input("b", 0.0, 10.0)], degree=2)
+    rng = np.random.default_rng(3)
+    X = np.column_stack([rng.uniform(-1.2, 1.2, 200), rng.uniform(-1.0, 11.0, 200)])
+    want = b.out_of_range(X).any(axis=1)
+    assert b.rows_out_of_range(X) == int(want.sum()) > 0
+    assert b.rows_out_of_range_flags(X).tolist() == want.astype(float).tolist()
+    inside = X[~want]
+    assert b.rows_out_of_range(inside) == 0 and b.rows_out_of_range_flags(inside) is None
+    assert b.rows_out_of_range(X[:0]) == 0 and b.rows_out_of_range_flags(X[:0]) is None
+    # a Fortran-ordered or sliced array gives the same answer
+    assert b.rows_out_of_range(np.asfortranarray(X)) == int(want.sum())
+    assert b.rows_out_of_range(X[::2]) == int(want[::2].sum())

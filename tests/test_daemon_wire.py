@@ -108,6 +108,39 @@ def test_a_prediction_with_numbers_that_are_not_floats_is_the_map_too():
         assert wire.pack_prediction(*nums, "learning", "normal") == msgpack.packb(body)
 
 
+def test_a_packed_block_answer_is_the_bytes_msgpack_gives_its_map():
+    # reference: msgpack.packb of the dict the daemon used to build, over the sizes where
+    # the bin header (8-bit, 16-bit, 32-bit length) and the status array header change
+    rng = np.random.default_rng(11)
+    f = wire.packed_floats
+    for k in (1, 15, 16, 31, 32, 255, 256, 8191, 8192, 9000):
+        for case in range(4):
+            a = [rng.normal(size=k) for _ in range(7)]
+            a[2][0] = math.inf if case == 1 else a[2][0]
+            a[1][-1] = math.nan if case == 2 else a[1][-1]
+            status = ["learning"] * k if case != 3 else \
+                [("learning", "stale", "waiting")[i % 3] for i in range(k)]
+            trust = (None, "normal", "caution", "untrusted")[case]
+            ids = None if case % 2 == 0 else [f"S-{i}" for i in range(k)]
+            for level in (0.95, 1.0 - 1e-9):
+                body = {"t": f(a[0]), "mean": f(a[1]), "std": f(a[2]), "var": f(a[3]),
+                        "lo": f(a[4]), "hi": f(a[5]), "level": level, "dof": f(a[6]),
+                        "status": status, "trust": trust, "packed": True}
+                if ids is not None:
+                    body["id"] = ids
+                got = wire.pack_packed_block(*a[:6], level, a[6], status, trust, ids)
+                assert got == msgpack.packb(body), (k, case)
+                # twice: the second takes the kept encoding of the status list
+                assert wire.pack_packed_block(*a[:6], level, a[6], status, trust, ids) == got
+    # a level that is not a float (msgpack writes an int as an int) takes the map
+    a = [np.arange(3.0)] * 7
+    body = {"t": f(a[0]), "mean": f(a[1]), "std": f(a[2]), "var": f(a[3]), "lo": f(a[4]),
+            "hi": f(a[5]), "level": 1, "dof": f(a[6]), "status": ["stale"] * 3,
+            "trust": "normal", "packed": True}
+    assert wire.pack_packed_block(*a[:6], 1, a[6], ["stale"] * 3, "normal") == \
+        msgpack.packb(body)
+
+
 def test_unpack_limits_containers_by_the_payload_length():
     # an array header claiming more items than the payload has bytes is refused outright
     # (msgpack spec: array 32 is 0xdd and a 32-bit big-endian count)

@@ -936,3 +936,25 @@ def test_scaled_rows_are_scaled_row_row_by_row(K, n):
     big = np.zeros(50 * (n + 1))
     with pytest.raises(ValueError, match="share memory"):
         fn(big.reshape(50, n + 1), big[:50 * n].reshape(50, n), lo, hi, w)
+
+
+@pytest.mark.parametrize("n", [1, 3, 8, 40])
+def test_outside_rows_flags_what_numpy_comparisons_flag(K, n):
+    # reference: numpy's ((X < lo) | (X > hi)).any(axis=1); a nan compares false (in range)
+    fn = _fn(K, "outside_rows")
+    rng = np.random.default_rng(90 + n)
+    lo = rng.uniform(-10.0, 0.0, n)
+    hi = lo + rng.uniform(0.5, 20.0, n)
+    X = rng.uniform(-15.0, 25.0, size=(64, n))
+    X[0] = lo
+    X[1] = hi
+    X[2, 0] = math.nan
+    X[3, -1] = -math.inf
+    out = np.full(64, 7.0)
+    count = fn(out, X, lo, hi)
+    want = ((X < lo) | (X > hi)).any(axis=1)
+    assert out.tolist() == want.astype(float).tolist()
+    assert count == int(want.sum())
+    assert out[0] == out[1] == 0.0 and out[3] == 1.0
+    with pytest.raises(ValueError, match=r"out must have shape \(64,\)"):
+        fn(np.empty(63), X, lo, hi)

@@ -222,11 +222,12 @@ class Monitor:
                                        starts).tolist()
         else:
             dist = [None] * len(starts)
-        if self.basis.rows_out_of_range(X):
-            flags = self.basis.out_of_range(X).any(axis=1)
-            outside = np.add.reduceat(flags.astype(np.int64), starts).tolist()
-        else:
+        flags = self.basis.rows_out_of_range_flags(X)
+        if flags is None:
             outside = [0] * len(starts)
+        else:
+            # sums of ones and zeros: exact
+            outside = [int(v) for v in np.add.reduceat(flags, starts).tolist()]
         return list(zip(lev, dist, outside, strict=True))
 
     def on_block(self, clock: float, s_last: float, checks: tuple,

@@ -823,14 +823,9 @@ class Service:
         if packed:
             # a block whose x came packed is answered in kind: the numbers as bins of
             # little-endian float64
-            f = wire.packed_floats
-            body = {"t": f(batch.t), "mean": f(batch.mean), "std": f(batch.std),
-                    "var": f(batch.var), "lo": f(batch.lo), "hi": f(batch.hi),
-                    "level": level, "dof": f(batch.dof), "status": batch.status,
-                    "trust": trust, "packed": True}
-            if has_id:
-                body["id"] = ids
-            self.pub.send_multipart([topic, wire.packb(body)])
+            self.pub.send_multipart([topic, wire.pack_packed_block(
+                batch.t, batch.mean, batch.std, batch.var, batch.lo, batch.hi, level,
+                batch.dof, batch.status, trust, ids if has_id else None)])
         elif block:
             body = {"t": ts, "mean": batch.mean.tolist(), "std": batch.std.tolist(),
                     "var": batch.var.tolist(), "lo": batch.lo.tolist(),

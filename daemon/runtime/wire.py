@@ -185,6 +185,70 @@ def pack_prediction(t, mean, std, var, lo, hi, level, dof, status, trust, ident=
                      packb(ident)))
 
 
+# A packed block's answer, in its key order: seven bins of float64 (and the level between
+# them), status, trust, packed and (when the block had ids) id.
+_BLOCK_BINS = ("t", "mean", "std", "var", "lo", "hi")
+_BLOCK_KEYS = tuple(bytes([0xA0 | len(k)]) + k.encode() for k in _BLOCK_BINS)
+_K_LEVEL = b"\xa5level\xcb"
+_K_DOF = b"\xa3dof"
+_K_PACKED_TRUE = b"\xa6packed\xc3"
+_LEVEL = struct.Struct(">d")
+# the encodings of a list of k copies of one status (a block's usual status list)
+_STATUS_LISTS: dict = {}
+
+
+def _bin_head(n: int) -> bytes:
+    if n < 0x100:
+        return bytes((0xC4, n))
+    if n < 0x10000:
+        return b"\xc5" + n.to_bytes(2, "big")
+    return b"\xc6" + n.to_bytes(4, "big")
+
+
+def _status_list(status: list) -> bytes:
+    k = len(status)
+    first = status[0] if k else None
+    if k and type(first) is str and status.count(first) == k:
+        key = (first, k)
+        b = _STATUS_LISTS.get(key)
+        if b is None:
+            b = packb(status)
+            if len(_STATUS_LISTS) >= 256:
+                _STATUS_LISTS.clear()  # pure functions of the key: dropping them is safe
+            _STATUS_LISTS[key] = b
+        return b
+    return packb(status)
+
+
+def pack_packed_block(t, mean, std, var, lo, hi, level, dof, status: list, trust,
+                      ids: list | None = None) -> bytes:
+    """The payload of a packed block's answer: the same bytes as ``packb`` of
+    ``{"t": packed_floats(t), "mean": ..., "hi": ..., "level": level, "dof": ...,
+    "status": status, "trust": trust, "packed": True}`` (with ``"id": ids`` last unless
+    ``ids`` is None), built from its parts: a block's status list is usually one status
+    repeated, whose encoding is kept."""
+    if type(level) is not float:
+        f = packed_floats
+        body = {"t": f(t), "mean": f(mean), "std": f(std), "var": f(var), "lo": f(lo),
+                "hi": f(hi), "level": level, "dof": f(dof), "status": status,
+                "trust": trust, "packed": True}
+        if ids is not None:
+            body["id"] = ids
+        return packb(body)
+    parts = [b"\x8b" if ids is None else b"\x8c"]
+    k = _BLOCK_KEYS
+    for key, a in ((k[0], t), (k[1], mean), (k[2], std), (k[3], var), (k[4], lo),
+                   (k[5], hi)):
+        b = packed_floats(a)
+        parts += (key, _bin_head(len(b)), b)
+    b = packed_floats(dof)
+    parts += (_K_LEVEL, _LEVEL.pack(level), _K_DOF, _bin_head(len(b)), b, _K_STATUS,
+              _status_list(status), _K_TRUST, _text(trust), _K_PACKED_TRUE)
+    if ids is not None:
+        parts += (_K_ID, packb(ids))
+    return b"".join(parts)
+
+
 def packed_floats(a) -> bytes:
     """A 1-D float array as the bytes of a packed field: little-endian float64."""
     return np.asarray(a, dtype="<f8").tobytes()
