@@ -175,6 +175,16 @@ def test_a_byte_swapped_packed_time_is_refused():
     assert len(svc.pub.bodies("pred/")) == 1
 
 
+def test_a_block_with_a_time_in_the_future_anywhere_is_refused():
+    # in order, the last time is the latest; out of order, any row may be
+    t0 = plant.DEFAULT_START
+    for ts in ([t0, t0 + 60.0, NOW * 1e3], [t0, NOW * 1e3, t0 + 60.0]):
+        svc = service()
+        svc.process([frames({"t": ts, "x": [X] * 3})])
+        assert svc.runners[MODEL].rejected["bad_time"] == 1, ts
+        assert svc.pub.bodies("pred/") == []
+
+
 def test_future_tolerance_zero_turns_the_check_off_and_reset_clears_the_feed_clock():
     svc = service(future_tolerance="0s")
     t0 = plant.DEFAULT_START

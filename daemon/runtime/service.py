@@ -659,7 +659,8 @@ class Service:
         for frames in batch:
             try:
                 msg = wire.decode_feed(frames, specs, max_bytes)
-                if msg.t[-1] > latest or (msg.block and max(msg.t) > latest):
+                if msg.t[-1] > latest or (msg.block and not msg.increasing
+                                          and max(msg.t) > latest):
                     raise wire.WireError("bad_time", _future_detail(msg.t, latest - tol),
                                          msg.seq)
             except wire.WireError as exc:

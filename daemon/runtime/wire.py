@@ -429,6 +429,15 @@ def _float_array(v) -> np.ndarray | None:
     return arr.astype(float, copy=False) if arr.dtype.kind in "biuf" else None
 
 
+def _all_finite(a: np.ndarray) -> bool:
+    """Whether every value of the float array ``a`` is finite.
+
+    A finite sum settles it in one pass (a nan or an infinity makes the sum nan or
+    infinite); only a sum that overflowed needs the values looked at one by one.
+    """
+    return math.isfinite(float(np.add.reduce(a, axis=None))) or bool(np.isfinite(a).all())
+
+
 def _packed(v: bytes, what: str, count: int | None, per: int = 1) -> np.ndarray:
     """A bin of little-endian float64 as a 1-D float array (a read-only view of ``v``).
 
@@ -455,9 +464,8 @@ def _block_times(t) -> tuple[list, np.ndarray]:
         if k == 0 or k > MAX_BLOCK:
             raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k} "
                                          f"(packed t of {len(t)} bytes)")
-        ok = np.isfinite(tarr)
-        if not ok.all():
-            i = int(np.argmin(ok))
+        if not _all_finite(tarr):
+            i = int(np.argmin(np.isfinite(tarr)))
             raise WireError("bad_time", f"packed t[{i}] is {float(tarr[i])!r}, expected a "
                                         "finite number")
         return tarr.tolist(), tarr
@@ -465,7 +473,7 @@ def _block_times(t) -> tuple[list, np.ndarray]:
     if k == 0 or k > MAX_BLOCK:
         raise WireError("bad_block", f"a block has 1..{MAX_BLOCK} rows, got {k}")
     tarr = _float_array(t)
-    if tarr is not None and tarr.shape == (k,) and np.isfinite(tarr).all():
+    if tarr is not None and tarr.shape == (k,) and _all_finite(tarr):
         return tarr.tolist(), tarr
     check_depth(t)
     ts = [_time(v) for v in t]
@@ -512,9 +520,8 @@ def _packed_rows(x: bytes, k: int, tags) -> np.ndarray:
     """A packed x: k rows of len(tags) little-endian float64, row-major, all finite."""
     n = len(tags)
     arr = _packed(x, "x", k, n).reshape(k, n)
-    ok = np.isfinite(arr)
-    if not ok.all():
-        i, j = divmod(int(np.argmin(ok)), n)
+    if not _all_finite(arr):
+        i, j = divmod(int(np.argmin(np.isfinite(arr))), n)
         raise WireError("bad_x", f"packed x row {i}: value for {tags[j]} is "
                                  f"{float(arr[i, j])!r}, expected a finite number")
     return arr
@@ -534,7 +541,7 @@ def _block_rows(x: list, k: int, tags, index):
     """Rows of a block as a (k, n) float array, or a list of rows on the careful path."""
     n = len(tags)
     arr = _float_array(x)
-    if arr is not None and arr.shape == (k, n) and np.isfinite(arr).all():
+    if arr is not None and arr.shape == (k, n) and _all_finite(arr):
         return arr
     # ragged, dict rows, non-numbers or non-finite values: find and name the culprit
     check_depth(x)
