@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from daemon.config import loads
-from daemon.runtime.runner import ModelRunner
+from daemon.runtime.runner import _FEW, ModelRunner
 from recursive import Posterior, Stabilized, TermDrift
 from recursive.adaptive import Adaptation, RateMatch, VBNoise
 from recursive.basis import Input, Polynomial
@@ -226,7 +226,7 @@ def test_a_visit_of_a_few_samples_gives_the_general_paths_batch_and_detector_sta
     seen = set()
     t = 0.0
     for i in range(300):
-        k = int(rng.choice([1, 1, 1, 2, 3, 4]))  # samples in this visit
+        k = int(rng.choice([1, 1, 1, 2, 3, 4, 7, _FEW]))  # samples in this visit
         ts, xs = [], []
         for _ in range(k):
             t += 10.0

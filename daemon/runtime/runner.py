@@ -43,8 +43,10 @@ _COUNTERS = ("n_features", "n_predictions", "n_lab", "n_learned", "n_gaps", "n_l
 # lab results remembered for learning a late one in drawn-time order (besides the feature
 # buffer's span): each holds a snapshot, and a late result re-applies those drawn after it
 MAX_REWIND = 64
-# a visit with at most this many single samples takes the short path (_predict_few)
-_FEW = 4
+# a visit with at most this many single samples takes the short path (_predict_few):
+# its cost grows by a few microseconds a row from almost nothing, the general path's
+# starts at a few hundred (measured with tools/bench_daemon.py, 200 models)
+_FEW = 16
 
 
 def _affine_terms(basis) -> tuple | None:
