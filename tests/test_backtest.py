@@ -418,6 +418,22 @@ def test_results_the_gate_rejected_are_scored_for_every_model():
     assert not np.any(res.ref_pred["persist"] == hist.lab_y[20])
 
 
+def test_summary_says_when_the_rejected_results_dominate_the_error():
+    # one blunder of ten times the value: its squared error, computed here from the
+    # recursive model's own scores, is most of the total, and the summary says so
+    hist = _hand_history(blunder=[20])
+    res = backtest.backtest(hist, _hand_model(), train=86400.0, lab_delay=3600.0, block=6)
+    s, g = res.scores["model"], res.scores_gated["model"]
+    share = g.rmse ** 2 / (s.n * s.rmse ** 2)
+    assert backtest.gated_share(res) == pytest.approx(share, rel=1e-12) and share > 0.5
+    assert f"make {100 * share:.0f}% of the recursive model's squared error" in \
+        backtest.summary_text(res)
+    clean = backtest.backtest(_hand_history(), _hand_model(), train=86400.0,
+                              lab_delay=3600.0, block=6)
+    assert clean.n_gated == 0 and backtest.gated_share(clean) == 0.0
+    assert "squared error" not in backtest.summary_text(clean)
+
+
 def test_summary_prints_the_ratio_and_four_significant_digits():
     hist = _hand_history(blunder=[20])
     res = backtest.backtest(hist, _hand_model(), train=86400.0, lab_delay=3600.0, block=6)

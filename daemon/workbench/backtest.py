@@ -938,6 +938,20 @@ def coverage_verdict(z, level: float = 0.95) -> dict:
             "mean_band": mb, "biased": abs(mean_z) > mb}
 
 
+#: A share of the squared error above which the gated results are said to dominate it.
+GATED_DOMINATES = 0.5
+
+
+def gated_share(res: BacktestResult) -> float:
+    """The share of the recursive model's squared error (over the scored lab results) that
+    comes from the results its gate rejected (0 when there are none)."""
+    if not res.n_gated:
+        return 0.0
+    s, g = res.scores["model"], res.scores_gated["model"]
+    total = s.n * s.rmse ** 2
+    return float(g.n * g.rmse ** 2 / total) if total > 0 else 0.0
+
+
 def summary_text(res: BacktestResult, unit: str = "") -> str:
     """The backtest summary: scores side by side, alerts raised."""
     h, m = res.history, res.model
@@ -989,6 +1003,12 @@ def summary_text(res: BacktestResult, unit: str = "") -> str:
         parts = ", ".join(f"{k} {_g(res.scores_gated[k].rmse, 0)}" for k in REFERENCES)
         lines.append(f"  RMSE over the {res.n_gated} results the gate rejected, alone:")
         lines.append(f"    {parts}")
+        share = gated_share(res)
+        if share > GATED_DOMINATES:
+            lines.append(f"  those {res.n_gated} results make {100 * share:.0f}% of the "
+                         f"recursive model's squared error (blunders, most likely): the "
+                         f"headline RMSE and its ratio mostly score them; compare the models "
+                         f"on the results the gate accepted (ungated)")
     lines.append("")
     n_alerts = sum(res.alerts.values())
     if n_alerts:
