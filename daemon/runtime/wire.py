@@ -373,9 +373,18 @@ def decode_feed(frames, models: dict, max_bytes: int) -> Feed:
     if spec is None:
         raise WireError("unknown_model", f"no model named {show(name, 80)}")
     msg = unpack(bytes(frames[1]), max_bytes)
+    tags, index = spec
+    if type(msg) is dict and len(msg) == 2:
+        t = msg.get("t")
+        if type(t) is float and t - t == 0.0:
+            x = msg.get("x")
+            if x is not None:
+                # the common message, {"t": a finite float, "x": a row} and nothing else:
+                # what _decode_body makes of it, without looking for the keys it lacks
+                return Feed(name, [t], [_row(x, tags, index)], [None], [None], None, False,
+                            has_y=False, has_id=False)
     if not isinstance(msg, dict):
         raise WireError("not_a_map", f"payload is a {type(msg).__name__}, expected a map")
-    tags, index = spec
     seq = msg.get("seq")
     if seq is not None and (isinstance(seq, bool) or not isinstance(seq, int)):
         raise WireError("bad_id", "seq must be an integer")
