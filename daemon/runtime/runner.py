@@ -103,12 +103,14 @@ def predict_few_together(visits: list) -> dict:
         if res is None:
             continue
         mean, std, var, lo_, hi_, dof, lev = res
-        a = np.array((t, mean, std, var, lo_, hi_, dof))
-        xs, std_l, lev_l = X.tolist(), std.tolist(), lev.tolist()
+        cols = np.array((t, mean, std, var, lo_, hi_, dof)).tolist()
+        xs, lev_l = X.tolist(), lev.tolist()
+        std_l = cols[2]
         start = 0
         for key, _r, vts, _x in group:
             end = start + len(vts)
-            out[key] = (xs[start:end], a[:, start:end], std_l[start:end], lev_l[start:end])
+            out[key] = (xs[start:end], [c[start:end] for c in cols], std_l[start:end],
+                        lev_l[start:end])
             start = end
     return out
 
@@ -402,14 +404,16 @@ class ModelRunner:
         if out is None:
             return None
         mean, std, var, lo, hi, dof, lev = out
-        a = np.array((ts, mean, std, var, lo, hi, dof), dtype=float)
-        return self._finish_few(ts, ids, xs, a, std, lev)
+        # the numbers are floats already; the times are made floats (an int would be
+        # written as a msgpack int)
+        times = ts if all(type(t) is float for t in ts) else [float(t) for t in ts]
+        return self._finish_few(ts, ids, xs, [times, mean, std, var, lo, hi, dof], std, lev)
 
-    def _finish_few(self, ts: list, ids: list, xs: list, a: np.ndarray, std: list,
+    def _finish_few(self, ts: list, ids: list, xs: list, c: list, std: list,
                     lev: list) -> PredBatch:
-        """The rest of :meth:`_predict_few` once the numbers are known: ``a`` the (7, k)
-        array of times, means, stds, variances, interval ends and dofs, ``std`` and ``lev``
-        the stds and leverages as floats, ``xs`` the raw rows as lists of floats."""
+        """The rest of :meth:`_predict_few` once the numbers are known: ``c`` the lists of
+        k floats of the times, means, stds, variances, interval ends and dofs, ``std`` and
+        ``lev`` the stds and leverages, ``xs`` the raw rows as lists of floats."""
         k = len(ts)
         trust, marks = None, ()
         last = self.last_lab_t
@@ -429,9 +433,8 @@ class ModelRunner:
             sa = self.stale_after
             status = ["stale" if t - last > sa else "learning" for t in ts]
         self.n_predictions += k
-        self.last_mean, self.last_std = float(a[1, -1]), std[-1]
+        self.last_mean, self.last_std = c[1][-1], std[-1]
         # lists of floats, as the publisher writes them (no array to convert back)
-        c = a.tolist()
         return PredBatch(c[0], ids, c[1], c[2], c[3], c[4], c[5], c[6], status, trust, marks)
 
     def _aligned(self, ts: list, X: np.ndarray) -> tuple[np.ndarray, list | None]:
