@@ -1102,6 +1102,30 @@ read_row(PyObject *x, Py_ssize_t n, double *d)
     return 0;
 }
 
+/*
+ * ||M d|| for the differences d (n of them): sqrt(sum_i y_i^2), y_i = sum_{j < end_i} M[i, j]
+ * d_j, with end_i = n, or i + 1 when `lower` (the zeros of a lower-triangular M left out).
+ * Each product and sum is rounded on its own (volatile: never one fused multiply-add), in
+ * index order, as the elementwise array expression computes them.
+ */
+static double
+whiten_row(const double *d, const double *M, Py_ssize_t n, int lower)
+{
+    double acc = 0.0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *Mi = M + i * n;
+        double y = d[0] * Mi[0];
+        Py_ssize_t end = lower ? i + 1 : n;
+        for (Py_ssize_t j = 1; j < end; j++) {
+            volatile double p = d[j] * Mi[j];
+            y = y + p;
+        }
+        volatile double q = y * y;
+        acc = i == 0 ? q : acc + q;
+    }
+    return n == 0 ? 0.0 : sqrt(acc);
+}
+
 PyDoc_STRVAR(whiten_norm_doc,
 "whiten_norm($module, x, mean, M, /)\n--\n\n"
 "||M (x - mean)||: sqrt(sum_i y_i^2) with y_i = sum_j M[i, j] (x_j - mean_j).\n\n"
@@ -1135,22 +1159,10 @@ kernel_whiten_norm(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     for (Py_ssize_t j = 0; j < n; j++) {
         d[j] -= mean[j];
     }
-    double acc = 0.0;
-    for (Py_ssize_t i = 0; i < n; i++) {
-        const double *Mi = M + i * n;
-        double y = d[0] * Mi[0];
-        for (Py_ssize_t j = 1; j < n; j++) {
-            /* a product and a sum, each rounded (volatile: never one fused multiply-add),
-             * as the array path computes them */
-            volatile double p = d[j] * Mi[j];
-            y = y + p;
-        }
-        volatile double q = y * y;
-        acc = i == 0 ? q : acc + q;
-    }
+    double norm = whiten_row(d, M, n, 0);
     work_free(&wd);
     release_all(&b);
-    return PyFloat_FromDouble(n == 0 ? 0.0 : sqrt(acc));
+    return PyFloat_FromDouble(norm);
 }
 
 PyDoc_STRVAR(scaled_row_doc,
@@ -1299,20 +1311,7 @@ kernel_whiten_norms(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
             d[j] = x[j] - mean[j];
             finite &= isfinite(d[j]) != 0;
         }
-        Py_ssize_t skip = lower && finite;
-        double acc = 0.0;
-        for (Py_ssize_t i = 0; i < n; i++) {
-            const double *Mi = M + i * n;
-            double y = d[0] * Mi[0];
-            Py_ssize_t end = skip ? i + 1 : n;
-            for (Py_ssize_t j = 1; j < end; j++) {
-                volatile double p = d[j] * Mi[j];
-                y = y + p;
-            }
-            volatile double q = y * y;
-            acc = i == 0 ? q : acc + q;
-        }
-        out[r] = n == 0 ? 0.0 : sqrt(acc);
+        out[r] = whiten_row(d, M, n, lower && finite);
     }
     work_free(&wd);
     release_all(&b);

@@ -63,18 +63,25 @@ def published(svc: Service) -> list[tuple[str, bytes]]:
     return [(topic, msgpack.packb(body)) for topic, body in svc.pub.out]
 
 
-@pytest.mark.parametrize("policy", [*sorted(POLICIES), "stabilized+dead time"])
-def test_burst_paced_and_random_wake_ups_publish_the_same_bytes(feed, policy):
-    burst, paced, chunked = service(policy), service(policy), service(policy)
+def three_ways(feed: list, make, seed: int, most: int) -> tuple:
+    """Three services from ``make()`` fed ``feed``: in one wake-up (a burst), one message per
+    wake-up (paced), and in random wake-ups of 1 to ``most`` messages."""
+    burst, paced, chunked = make(), make(), make()
     burst.process(feed)
     for frames in feed:
         paced.process([frames])
-    rng = np.random.default_rng(4)
+    rng = np.random.default_rng(seed)
     i = 0
     while i < len(feed):
-        k = int(rng.integers(1, 41))
+        k = int(rng.integers(1, most + 1))
         chunked.process(feed[i:i + k])
         i += k
+    return burst, paced, chunked
+
+
+@pytest.mark.parametrize("policy", [*sorted(POLICIES), "stabilized+dead time"])
+def test_burst_paced_and_random_wake_ups_publish_the_same_bytes(feed, policy):
+    burst, paced, chunked = three_ways(feed, lambda: service(policy), seed=4, most=40)
     want = published(paced)
     preds = [b for t, b in paced.pub.out if t.startswith("pred/")]
     # the run must exercise what batching used to change: several trust states, and
@@ -158,16 +165,8 @@ def test_blocks_publish_the_same_bytes_in_one_wake_up_or_many(block_feed, policy
     # many blocks of a wake-up are predicted in one call, with their intervals and the
     # detectors' checks (largest leverage and distance, rows out of range) computed over
     # all their rows at once; each answer must be the one its block gets alone
-    burst, paced, chunked = (block_service(policy) for _ in range(3))
-    burst.process(block_feed)
-    for frames in block_feed:
-        paced.process([frames])
-    rng = np.random.default_rng(5)
-    i = 0
-    while i < len(block_feed):
-        k = int(rng.integers(1, 30))
-        chunked.process(block_feed[i:i + k])
-        i += k
+    burst, paced, chunked = three_ways(block_feed, lambda: block_service(policy), seed=5,
+                                       most=29)
     want = published(paced)
     alerts = [b for t, b in paced.pub.out if t.startswith("alert/")]
     reasons = {r["name"] for a in alerts for r in a.get("reasons", ())}
