@@ -1244,6 +1244,28 @@ kernel_outside(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
     return PyBool_FromLong(flag);
 }
 
+/*
+ * For a kernel writing one value per row of X: the (k,) output, acquired first as
+ * b->view[0], must have as many entries as X (b->view[x]) has rows, and share no memory
+ * with the inputs. On failure everything is released, an exception set and -1 returned.
+ */
+static int
+check_row_output(Buffers *b, int x, const char *const *names)
+{
+    Py_ssize_t k = b->view[x].shape[0];
+    if (b->view[0].shape[0] != k) {
+        PyErr_Format(PyExc_ValueError, "out must have shape (%zd,), got (%zd,)", k,
+                     b->view[0].shape[0]);
+        release_all(b);
+        return -1;
+    }
+    if (check_disjoint(b, names, 1) < 0) {
+        release_all(b);
+        return -1;
+    }
+    return 0;
+}
+
 PyDoc_STRVAR(whiten_norms_doc,
 "whiten_norms($module, out, X, mean, M, /)\n--\n\n"
 "out[r] = whiten_norm(X[r], mean, M) for every row r of the (k, n) float64 array X.\n\n"
@@ -1275,18 +1297,11 @@ kernel_whiten_norms(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         release_all(&b);
         return NULL;
     }
-    Py_ssize_t k = b.view[3].shape[0];
-    if (b.view[0].shape[0] != k) {
-        PyErr_Format(PyExc_ValueError, "out must have shape (%zd,), got (%zd,)", k,
-                     b.view[0].shape[0]);
-        release_all(&b);
-        return NULL;
-    }
     static const char *const names[] = {"out", "mean", "M", "X"};
-    if (check_disjoint(&b, names, 1) < 0) {
-        release_all(&b);
+    if (check_row_output(&b, 3, names) < 0) {
         return NULL;
     }
+    Py_ssize_t k = b.view[3].shape[0];
     double *d = work_get(&wd, n);
     if (d == NULL) {
         release_all(&b);
@@ -1400,18 +1415,11 @@ kernel_outside_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs)
         release_all(&b);
         return NULL;
     }
-    Py_ssize_t k = b.view[3].shape[0];
-    if (b.view[0].shape[0] != k) {
-        PyErr_Format(PyExc_ValueError, "out must have shape (%zd,), got (%zd,)", k,
-                     b.view[0].shape[0]);
-        release_all(&b);
-        return NULL;
-    }
     static const char *const names[] = {"out", "lo", "hi", "X"};
-    if (check_disjoint(&b, names, 1) < 0) {
-        release_all(&b);
+    if (check_row_output(&b, 3, names) < 0) {
         return NULL;
     }
+    Py_ssize_t k = b.view[3].shape[0];
     Py_ssize_t count = 0;
     for (Py_ssize_t r = 0; r < k; r++) {
         const double *x = X + r * n;
