@@ -9,7 +9,6 @@ import numpy as np
 import scipy.linalg
 from scipy.linalg import lapack
 
-from recursive._givens import whiten_norms as _givens_whiten_norms
 from recursive._linalg import whiten_norm as _whiten_norm
 from recursive._linalg import whiten_norms as _whiten_norms
 from recursive.detect._common import (
@@ -239,31 +238,22 @@ class InputRegion:
             self._chol_inv = inv
         if rowwise:
             inv = self._chol_inv
-            n = self._n_inputs
             if _whiten_norm is not None and len(D) <= _KERNEL_ROWS:
-                # row by row in C, the operations of the array path below in its order
+                # row by row in C, the operations of the array path in its order
                 mean, inv_c = self._kernel_arrays()
                 return np.array([_whiten_norm(x, mean, inv_c) for x in A.tolist()],
                                 dtype=float)
-            if _whiten_norms is not _givens_whiten_norms and len(D) > _KERNEL_ROWS:
-                # every row in one C call, the same operations as the array path below
-                out = np.empty(len(A))
-                mean, inv_c = self._kernel_arrays()
-                _whiten_norms(out, np.ascontiguousarray(A, dtype=float), mean, inv_c)
-                return out
             if len(D) <= 2:
                 # plain floats for a row or two: the same operations in the same order as
-                # the array path below, hence the same bits, without its per-call overhead
+                # the array path, hence the same bits, without its per-call overhead
                 Ml = inv.tolist()
                 return np.sqrt(np.array([_row_sq(d, Ml) for d in D.tolist()], dtype=float))
-            # Y[r, i] = sum_j inv[i, j] D[r, j], summed in the order j = 0, 1, ... for every row
-            Y = D[:, :1] * inv[:, 0]
-            for j in range(1, n):
-                Y = Y + D[:, j:j + 1] * inv[:, j]
-            acc = Y[:, 0] * Y[:, 0]
-            for i in range(1, n):
-                acc = acc + Y[:, i] * Y[:, i]
-            return np.sqrt(acc)
+            # every row at once: the C kernel, or its twin's elementwise array expression
+            # (Y[r, i] = sum_j inv[i, j] D[r, j] in the order j = 0, 1, ...; the same bits)
+            out = np.empty(len(A))
+            mean, inv_c = self._kernel_arrays()
+            _whiten_norms(out, np.ascontiguousarray(A, dtype=float), mean, inv_c)
+            return out
         Y = self._chol_inv @ D.T
         return np.sqrt(np.einsum("ij,ij->j", Y, Y))
 
