@@ -225,9 +225,8 @@ class InputRegion:
         if self._count < self._min_count:
             return np.full(A.shape[0], math.nan)
         chol = self._factor()
-        D = A - self._mean
         if isinstance(chol, str):
-            return np.where(np.any(D != 0, axis=1), math.inf, 0.0)
+            return np.where(np.any((A - self._mean) != 0, axis=1), math.inf, 0.0)
         # one product with the inverse factor (kept with the factor) instead of a solve
         # with many right-hand sides, which costs LAPACK several times more for these
         # narrow factors; the distances agree with `distance` to rounding (tested)
@@ -238,23 +237,24 @@ class InputRegion:
             self._chol_inv = inv
         if rowwise:
             inv = self._chol_inv
-            if _whiten_norm is not None and len(D) <= _KERNEL_ROWS:
+            if _whiten_norm is not None and len(A) <= _KERNEL_ROWS:
                 # row by row in C, the operations of the array path in its order
                 mean, inv_c = self._kernel_arrays()
                 return np.array([_whiten_norm(x, mean, inv_c) for x in A.tolist()],
                                 dtype=float)
-            if len(D) <= 2:
+            if len(A) <= 2:
                 # plain floats for a row or two: the same operations in the same order as
                 # the array path, hence the same bits, without its per-call overhead
                 Ml = inv.tolist()
-                return np.sqrt(np.array([_row_sq(d, Ml) for d in D.tolist()], dtype=float))
+                D = (A - self._mean).tolist()
+                return np.sqrt(np.array([_row_sq(d, Ml) for d in D], dtype=float))
             # every row at once: the C kernel, or its twin's elementwise array expression
             # (Y[r, i] = sum_j inv[i, j] D[r, j] in the order j = 0, 1, ...; the same bits)
             out = np.empty(len(A))
             mean, inv_c = self._kernel_arrays()
             _whiten_norms(out, np.ascontiguousarray(A, dtype=float), mean, inv_c)
             return out
-        Y = self._chol_inv @ D.T
+        Y = self._chol_inv @ (A - self._mean).T
         return np.sqrt(np.einsum("ij,ij->j", Y, Y))
 
     def _kernel_arrays(self) -> tuple[np.ndarray, np.ndarray]:
