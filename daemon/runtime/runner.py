@@ -23,6 +23,7 @@ from dataclasses import dataclass, fields, replace
 import numpy as np
 
 from daemon.config import ModelConfig
+from daemon.runtime import wire
 from daemon.runtime.alignment import Aligner
 from daemon.runtime.monitor import STALE_FALLBACK, Monitor
 from recursive import OutOfOrderError, Posterior, Prediction
@@ -687,16 +688,19 @@ class ModelRunner:
 
     def _snapshot(self) -> tuple:
         # the posterior's arrays are replaced by each update, never written in place, so a
-        # copy of its attribute table is a snapshot; the detectors change in place
+        # copy of its attribute table is a snapshot; the detectors change in place, and
+        # their state is kept as one msgpack string (as a checkpoint holds it), not as
+        # dozens of lists and dicts per lab result that every full garbage collection
+        # would visit (and, at hundreds of terms, a list per row of a factor)
         return (dict(self.post.__dict__),
-                None if self.monitor is None else self.monitor.to_state(),
+                None if self.monitor is None else wire.pack(self.monitor.to_state()),
                 self.last_lab_t, self.last_offered_t)
 
     def _restore(self, snap: tuple) -> None:
         post, mon, self.last_lab_t, self.last_offered_t = snap
         self.post.__dict__.update(post)
         if mon is not None:
-            self.monitor.load_state(mon)
+            self.monitor.load_state(wire.unpack(mon, len(mon)))
 
     def _offer(self, t: float, x, y: float, ident, clock: float, phi,
                snapshot: bool = True) -> object:
@@ -958,6 +962,8 @@ class ModelRunner:
         p.__dict__.update(post)
         ps = p.to_state()
         del ps["config"]  # the model's posterior holds it
+        if mon is not None:
+            mon = wire.unpack(mon, len(mon))  # kept packed (see _snapshot)
         return [e.t, list(e.x), e.y, e.ident, e.clock, e.accepted, e.reason,
                 {"posterior": ps, "monitor": mon, "last_lab_t": last_lab_t,
                  "last_offered_t": last_offered_t}]
@@ -982,7 +988,8 @@ class ModelRunner:
             if (mon is None) != (self.monitor is None):
                 raise ValueError("offered lab result with a monitor state that does not "
                                  "match the model's alerts")
-            snap = (post.__dict__, mon, before["last_lab_t"], before["last_offered_t"])
+            snap = (post.__dict__, None if mon is None else wire.pack(mon),
+                    before["last_lab_t"], before["last_offered_t"])
             e = _Offered(t, [float(v) for v in x], float(y), ident, float(clock), snap)
             e.accepted, e.reason = bool(accepted), str(reason)
             self.offered.append(e)
