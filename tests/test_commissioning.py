@@ -46,6 +46,16 @@ def test_commissioning_ends_on_the_first_criterion_met():
     assert back.to_state() == c.to_state() and back.step(1e9, 1)
 
 
+@pytest.mark.parametrize(("t", "learned"), [(math.nan, 0), (math.inf, 0), (True, 0),
+                                            ("one", 0), (1.0, -1), (1.0, True), (1.0, 0.0)])
+def test_commissioning_step_refuses_a_bad_clock_or_count(t, learned):
+    c = Commissioning(labs=3, duration=10.0)
+    with pytest.raises(ValueError, match="t must|learned must"):
+        c.step(t, learned)
+    assert c.start is None and c.remaining(0.0)["labs"] == 3  # nothing changed
+    assert not c.step(5, 0) and c.start == 5  # an int clock is a number
+
+
 def test_lab_interval_is_the_median_and_bounded():
     rng = np.random.default_rng(7)
     drawn = np.cumsum(rng.uniform(3.5, 4.5, 40) * HOUR)

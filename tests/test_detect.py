@@ -486,6 +486,28 @@ def test_std_baseline_geometric_weighted_mean_and_flags():
     assert not r.too_high_abs and not r.too_high_ratio and r.ratio == 100.0
 
 
+
+@pytest.mark.parametrize(("limit_abs", "ratio"), [(1.4, 1.5), (None, None), (None, 1.2)])
+def test_std_baseline_judge_is_step_without_learning(limit_abs, ratio):
+    """judge() gives step()'s ratio and flags, bit for bit, and learns nothing (step() is
+    checked against numpy above)."""
+    rng = np.random.default_rng(702)
+    sb = StdBaseline(half_life=4.0, limit_abs=limit_abs, ratio=ratio)
+    twin = StdBaseline(half_life=4.0, limit_abs=limit_abs, ratio=ratio)
+    for s, lrn in zip(rng.uniform(0.3, 2.5, 40), rng.uniform(size=40) < 0.5, strict=True):
+        got = sb.judge(float(s))
+        want = twin.step(float(s))
+        assert (np.float64(got[0]).tobytes(), got[1:]) == (
+            np.float64(want.ratio).tobytes(), (want.too_high_abs, want.too_high_ratio))
+        assert sb.to_state() == twin.to_state()
+        if lrn:
+            sb.step(s, learn=True)
+            twin.step(s, learn=True)
+    assert sb.judge(np.float32(1.0))[0] == twin.step(1.0).ratio  # any real number
+    for bad in (0.0, -1.0, math.inf, math.nan):
+        with pytest.raises(ValueError, match="std must be finite and > 0"):
+            sb.judge(bad)
+
 # ----------------------------------------------------------------------------------------------
 # input region
 # ----------------------------------------------------------------------------------------------

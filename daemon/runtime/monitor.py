@@ -244,12 +244,12 @@ class Monitor:
         act = self.pred_active
         act.clear()
         if math.isfinite(s_last):
-            b = self.std.step(s_last)
-            self.last["std_ratio"] = b.ratio
-            if b.too_high_abs:
+            ratio, too_abs, too_ratio = self.std.judge(s_last)
+            self.last["std_ratio"] = ratio
+            if too_abs:
                 act["uncertainty"] = (2, s_last, cfg.std_limit)
-            if b.too_high_ratio:
-                act["uncertainty_ratio"] = (1, b.ratio, cfg.std_ratio)
+            if too_ratio:
+                act["uncertainty_ratio"] = (1, ratio, cfg.std_ratio)
         elif s_last == math.inf:
             # a t predictive with dof <= 2 has no finite variance: it is above any limit, and
             # above any multiple of a baseline (a model that forgot nearly everything)

@@ -242,6 +242,25 @@ class StdBaseline:
             return math.nan
         return math.exp(self._lsum / self._wsum)
 
+    def judge(self, std: float) -> tuple[float, bool, bool]:
+        """:meth:`step` without learning, as ``(ratio, too_high_abs, too_high_ratio)``.
+
+        The same values, bit for bit, without building a :class:`StdBaselineStep`: the
+        check a monitor makes of every prediction.
+        """
+        if not (type(std) is float and std > 0.0 and std < _INF):
+            std = float(std)
+            if not (std > 0.0 and std < _INF):
+                raise ValueError(f"std must be finite and > 0, got {std!r}")
+        if self._n:
+            rat = std / math.exp(self._lsum / self._wsum)
+            r = self._ratio
+            too_rat = r is not None and rat > r
+        else:
+            rat, too_rat = math.nan, False
+        lim = self._limit_abs
+        return rat, lim is not None and std > lim, too_rat
+
     def step(self, std: float, learn: bool = False) -> StdBaselineStep:
         """Judge one predictive std against the baseline; learn from it if ``learn``."""
         std = float(std)

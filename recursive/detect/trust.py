@@ -384,10 +384,13 @@ class Commissioning:
         """Advance to clock ``t`` after ``learned`` more lab results; True if it ended now."""
         if not self._active:
             return False
-        t = _finite("t", t)
+        if not (type(t) is float and t - t == 0.0):
+            t = _finite("t", t)
+        if learned or type(learned) is not int:
+            # (the common step, a prediction's, learned nothing: no check of a plain 0)
+            self._learned += _count("learned", learned, 0)
         if self._start is None:
             self._start = t
-        self._learned += _count("learned", learned, 0)
         if (self._labs and self._learned >= self._labs) or \
                 (self._duration and t - self._start >= self._duration):
             self._active = False
