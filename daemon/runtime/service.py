@@ -415,6 +415,11 @@ class Service:
             # a fork of the loop at this WAL position builds, encodes and writes it
             with _gc_paused():
                 store.begin_checkpoint(self.state_body)
+            # what has lived until a checkpoint is the models' learned state, which the
+            # cyclic collector would otherwise visit in every full collection (seconds with
+            # thousands of models); the feed and lab paths make no cyclic garbage (tested),
+            # so frozen objects are freed by reference counting as before
+            gc.freeze()
             self._dirty = False
             self._last_checkpoint = now
         else:
