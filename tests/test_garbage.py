@@ -46,6 +46,15 @@ def _round(n: int, t: float, rng, lab: bool = False) -> list[list]:
     return out
 
 
+def _trained_with_a_burst(n: int):
+    """``n`` models taught 12 lab results each, and a burst of 40 rounds of samples."""
+    svc = _service(n)
+    rng = np.random.default_rng(5)
+    for r in range(12):
+        svc.process(_round(n, -1000.0 + r, rng, lab=True))
+    return svc, rng, [f for r in range(40) for f in _round(n, 10.0 + r, rng)]
+
+
 @pytest.fixture
 def collections():
     """The generations of the collections that start while the test runs."""
@@ -64,11 +73,7 @@ def collections():
 def test_a_wake_up_of_many_models_runs_no_collection_and_leaves_the_collector_as_it_was(
         collections):
     n = 60
-    svc = _service(n)
-    rng = np.random.default_rng(5)
-    for r in range(12):
-        svc.process(_round(n, -1000.0 + r, rng, lab=True))
-    batch = [f for r in range(40) for f in _round(n, 10.0 + r, rng)]
+    svc, rng, batch = _trained_with_a_burst(n)
     assert gc.isenabled()
     collections.clear()
     svc.process(batch)
@@ -87,12 +92,7 @@ def test_a_wake_up_of_many_models_runs_no_collection_and_leaves_the_collector_as
 
 def test_without_the_pause_the_same_wake_up_would_collect(collections):
     """The check above can fail: the same work, with the collector on, does collect."""
-    n = 60
-    svc = _service(n)
-    rng = np.random.default_rng(5)
-    for r in range(12):
-        svc.process(_round(n, -1000.0 + r, rng, lab=True))
-    batch = [f for r in range(40) for f in _round(n, 10.0 + r, rng)]
+    svc, _rng, batch = _trained_with_a_burst(60)
     collections.clear()
     svc._process(batch)  # the body of process(), without its pause
     assert collections
