@@ -660,6 +660,7 @@ class Service:
         """
         if not batch:
             return
+        # inline rather than _gc_paused: a paced feed makes a wake-up of each message
         enabled = gc.isenabled()
         gc.disable()
         try:

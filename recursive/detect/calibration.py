@@ -264,16 +264,8 @@ class StdBaseline:
     def step(self, std: float, learn: bool = False) -> StdBaselineStep:
         """Judge one predictive std against the baseline; learn from it if ``learn``."""
         std = float(std)
-        if not (std > 0.0 and std < _INF):
-            raise ValueError(f"std must be finite and > 0, got {std!r}")
-        if self._n:
-            base = math.exp(self._lsum / self._wsum)
-            rat = std / base
-            too_rat = self._ratio is not None and rat > self._ratio
-        else:
-            base = rat = math.nan
-            too_rat = False
-        too_abs = self._limit_abs is not None and std > self._limit_abs
+        rat, too_abs, too_rat = self.judge(std)
+        base = self.baseline
         if learn:
             w = self._w
             self._wsum = w * self._wsum + 1.0
