@@ -858,13 +858,16 @@ class Service:
                 body["id"] = ids
             self.pub.send_multipart([topic, wire.packb(body)])
         else:
-            mean, std, var = _floats(batch.mean), _floats(batch.std), _floats(batch.var)
-            lo, hi, dof = _floats(batch.lo), _floats(batch.hi), _floats(batch.dof)
+            mean, std, var = batch.mean, batch.std, batch.var
+            lo, hi, dof = batch.lo, batch.hi, batch.dof
+            if type(mean) is not list:  # the general path's arrays (the short path: lists)
+                mean, std, var = _floats(mean), _floats(std), _floats(var)
+                lo, hi, dof = _floats(lo), _floats(hi), _floats(dof)
             status = batch.status
             emit = self._emitter()
             pack = wire.pack_prediction
             trusts = batch.trust
-            marks = dict(batch.marks)
+            marks = dict(batch.marks) if batch.marks else None
             for i, t in enumerate(ts):
                 emit(topic, pack(t, mean[i], std[i], var[i], lo[i], hi[i], level, dof[i],
                                  status[i], trust if trusts is None else trusts[i],
