@@ -314,8 +314,7 @@ class ModelRunner:
                 raise Rejected("duplicate", f"second sample at t={t!r}")
         self.last_x_t = t
         self.n_features += 1
-        # a tuple of floats drops out of the cyclic GC's sight, which keeps collections short
-        self.aligner.push_trusted(t, tuple(row))
+        self.aligner.push_trusted(t, row)  # copied into the buffer's float64 array
         if ident is not None:
             self._remember_id(ident, t)
 
