@@ -691,13 +691,18 @@ class ModelRunner:
         # their state is kept as one msgpack string (as a checkpoint holds it), not as
         # dozens of lists and dicts per lab result that every full garbage collection
         # would visit (and, at hundreds of terms, a list per row of a factor)
-        return (dict(self.post.__dict__),
+        post = dict(self.post.__dict__)
+        # without the prediction caches (derived from the factor, rebuilt when next needed,
+        # to the same bits): at hundreds of terms they are n x n arrays, as large as it
+        post["_cache"], post["_m_cache"] = {}, None
+        return (post,
                 None if self.monitor is None else wire.pack(self.monitor.to_state()),
                 self.last_lab_t, self.last_offered_t)
 
     def _restore(self, snap: tuple) -> None:
         post, mon, self.last_lab_t, self.last_offered_t = snap
         self.post.__dict__.update(post)
+        self.post._cache = {}  # not the snapshot's own (restored again, it stays empty)
         if mon is not None:
             self.monitor.load_state(wire.unpack(mon, len(mon)))
 
