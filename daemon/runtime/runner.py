@@ -964,6 +964,7 @@ class ModelRunner:
         post, mon, last_lab_t, last_offered_t = e.before
         p = Posterior.__new__(type(self.post))
         p.__dict__.update(post)
+        p._cache = {}  # whatever it derives stays out of the snapshot (see _snapshot)
         ps = p.to_state()
         del ps["config"]  # the model's posterior holds it
         if mon is not None:
