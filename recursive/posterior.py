@@ -910,6 +910,23 @@ class Posterior:
             **({} if self._adapt is None else {"adapt": self._adapt.to_dict()}),
         }
 
+    def snapshot(self) -> dict:
+        """The learning state as it is now, for :meth:`restore` (in memory, not plain data).
+
+        Cheap: every update replaces the posterior's arrays and never writes into them, so
+        the snapshot shares them. The prediction caches, derived from the factor and as
+        large as it at hundreds of terms, are left out; :meth:`restore` starts them empty
+        and they are rebuilt when next needed, to the same bits.
+        """
+        d = dict(self.__dict__)
+        d["_cache"] = d["_m_cache"] = None
+        return d
+
+    def restore(self, snap: dict) -> None:
+        """Go back to the state of a :meth:`snapshot` (of a posterior of this config)."""
+        self.__dict__.update(snap)
+        self._cache, self._m_cache = {}, None
+
     def to_state(self) -> dict:
         """Plain-data snapshot (numbers, lists, str, None) with a schema version.
 

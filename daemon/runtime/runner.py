@@ -686,23 +686,17 @@ class ModelRunner:
         return k
 
     def _snapshot(self) -> tuple:
-        # the posterior's arrays are replaced by each update, never written in place, so a
-        # copy of its attribute table is a snapshot; the detectors change in place, and
-        # their state is kept as one msgpack string (as a checkpoint holds it), not as
-        # dozens of lists and dicts per lab result that every full garbage collection
-        # would visit (and, at hundreds of terms, a list per row of a factor)
-        post = dict(self.post.__dict__)
-        # without the prediction caches (derived from the factor, rebuilt when next needed,
-        # to the same bits): at hundreds of terms they are n x n arrays, as large as it
-        post["_cache"], post["_m_cache"] = {}, None
-        return (post,
+        # the detectors change in place; their state is kept as one msgpack string (as a
+        # checkpoint holds it), not as dozens of lists and dicts per lab result that every
+        # full garbage collection would visit (and, at hundreds of terms, a list per row
+        # of a factor)
+        return (self.post.snapshot(),
                 None if self.monitor is None else wire.pack(self.monitor.to_state()),
                 self.last_lab_t, self.last_offered_t)
 
     def _restore(self, snap: tuple) -> None:
         post, mon, self.last_lab_t, self.last_offered_t = snap
-        self.post.__dict__.update(post)
-        self.post._cache = {}  # not the snapshot's own (restored again, it stays empty)
+        self.post.restore(post)
         if mon is not None:
             self.monitor.load_state(wire.unpack(mon, len(mon)))
 
@@ -963,8 +957,7 @@ class ModelRunner:
     def _offered_state(self, e: _Offered) -> list:
         post, mon, last_lab_t, last_offered_t = e.before
         p = Posterior.__new__(type(self.post))
-        p.__dict__.update(post)
-        p._cache = {}  # whatever it derives stays out of the snapshot (see _snapshot)
+        p.restore(post)
         ps = p.to_state()
         del ps["config"]  # the model's posterior holds it
         if mon is not None:
@@ -993,7 +986,7 @@ class ModelRunner:
             if (mon is None) != (self.monitor is None):
                 raise ValueError("offered lab result with a monitor state that does not "
                                  "match the model's alerts")
-            snap = (post.__dict__, None if mon is None else wire.pack(mon),
+            snap = (post.snapshot(), None if mon is None else wire.pack(mon),
                     before["last_lab_t"], before["last_offered_t"])
             e = _Offered(t, [float(v) for v in x], float(y), ident, float(clock), snap)
             e.accepted, e.reason = bool(accepted), str(reason)
