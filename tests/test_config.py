@@ -106,7 +106,7 @@ DAEMON_DEFAULTS = {
     "state_dir": "state",
     "log_level": "info",
     "log_format": "text",
-    "batch_limit": 16384,
+    "batch_limit": 65536,
     "batch_bytes": 64 * 1024 * 1024,
     "max_message_bytes": 2**20,
     "reconnect_ivl": 0.1,
