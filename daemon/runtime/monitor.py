@@ -365,14 +365,81 @@ class Monitor:
                              last_lab_t)
         return [self.state], [(0, ev)] if ev else []
 
-    def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
-        """True if no row would make a reason active and none is active or held now."""
+    def on_prediction_few(self, ts: list, xs: list, std: list, leverage: list,
+                          last_lab_t: float | None) -> tuple[list | None, list]:
+        """:meth:`on_prediction_rows` of a few rows given as lists of floats (``xs`` the raw
+        inputs), in plain float arithmetic: the same values, bit for bit, the same steps, and
+        the same shortcut for quiet rows (only the last is stepped; the trust is then None,
+        the current state for all rows)."""
+        k = len(ts)
+        if k == 1:
+            return self.on_prediction_row(ts[0], xs[0], std[0], leverage[0], last_lab_t)
+        dist = None
+        if self.cfg.region_limit > 0 and self.region.ready:
+            row = self.region.distance_row
+            dist = [row(x) for x in xs]
+        oor = self.basis.row_out_of_range
+        outside = [int(oor(x)) for x in xs]
+        step = self._pred_step
+        if self._quiet_few(ts, std, leverage, dist, outside, last_lab_t):
+            ev = step(ts[-1], std[-1], leverage[-1], None if dist is None else dist[-1],
+                      outside[-1], last_lab_t)
+            assert not ev  # _quiet_few promised that nothing changes
+            return None, []
+        trust, marks = [], []
+        for j in range(k):
+            ev = step(ts[j], std[j], leverage[j], None if dist is None else dist[j],
+                      outside[j], last_lab_t)
+            if ev:
+                marks.append((j, ev))
+            trust.append(self.state)
+        return trust, marks
+
+    def _quiet_held(self, ts) -> bool:
+        """Whether the state allows the quiet shortcut for rows at ``ts``: nothing active or
+        held, and no commissioning step that matters (its start set by the first row, or its
+        end within these rows)."""
         if self.lab_active or self.trust.level or self.trust.reasons:
             return False
         com = self.commissioning
-        if com.active and com.params()["duration"] and (
-                com.start is None or ts[-1] - com.start >= com.params()["duration"]):
-            return False  # commissioning may end within these rows: step them one by one
+        if com.active:
+            if com.start is None:
+                return False  # the first row's time starts it: step them one by one
+            duration = com.params()["duration"]
+            if duration and ts[-1] - com.start >= duration:
+                return False  # commissioning may end within these rows
+        return True
+
+    def _quiet_few(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
+        """:meth:`_quiet_rows` of lists of floats (``outside`` counts per row)."""
+        if not self._quiet_held(ts):
+            return False
+        total = sum(std)
+        if total - total != 0.0:
+            return False  # inf or nan rows: rare, step them one by one
+        cfg = self.cfg
+        top = max(std)
+        if cfg.std_limit is not None and top > cfg.std_limit:
+            return False
+        if cfg.std_ratio > 0:
+            base = self.std.baseline
+            if math.isfinite(base) and top / base > cfg.std_ratio:
+                return False
+        lim = cfg.leverage_limit
+        if lim > 0 and any(v > lim for v in leverage):
+            return False
+        if dist is not None:
+            lim = cfg.region_limit
+            if any(v > lim for v in dist):
+                return False
+        if any(outside):
+            return False
+        return not (last_lab_t is not None and ts[-1] - last_lab_t > self._stale_after)
+
+    def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
+        """True if no row would make a reason active and none is active or held now."""
+        if not self._quiet_held(ts):
+            return False
         cfg = self.cfg
         if not np.isfinite(std).all():
             return False  # inf or nan rows: rare, take the row-by-row path

@@ -418,15 +418,9 @@ class ModelRunner:
         trust, marks = None, ()
         last = self.last_lab_t
         if self.monitor is not None:
-            # each row stepped as if it had come alone: what on_prediction_rows publishes
-            # (its shortcut for quiet rows steps only the last one, to the same effect)
-            step = self.monitor.on_prediction_row
-            trust, marks = [], []
-            for j in range(k):
-                tr, mk = step(ts[j], xs[j], std[j], lev[j], last)
-                trust += tr
-                if mk:
-                    marks.append((j, mk[0][1]))
+            # each row stepped as if it had come alone (quiet rows: only the last, to the
+            # same effect), as on_prediction_rows does on the general path
+            trust, marks = self.monitor.on_prediction_few(ts, xs, std, lev, last)
         if not self.post.identified or self.frozen or last is None:
             status = [self.status_at(ts[0])] * k
         else:
