@@ -1144,3 +1144,4 @@ def test_trust_follows_the_rules_of_its_notes_on_random_reasons(count, clear_tim
             if acknowledge:
                 tr.acknowledge()
             assert (tr.state, tr.reasons, tr.acknowledged) == (state, reasons, acked), t
+            assert tr.holding == bool(reasons), t

@@ -399,7 +399,7 @@ class Monitor:
         """Whether the state allows the quiet shortcut for rows at ``ts``: nothing active or
         held, and no commissioning step that matters (its start set by the first row, or its
         end within these rows)."""
-        if self.lab_active or self.trust.level or self.trust.reasons:
+        if self.lab_active or self.trust.level or self.trust.holding:
             return False
         com = self.commissioning
         if com.active:
@@ -474,7 +474,7 @@ class Monitor:
             return [{"t": clock, "kind": "state", "old": COMMISSIONING, "new": trust.state,
                      "reasons": _reasons(trust.reasons), "acknowledged": trust.acknowledged}]
         if not self.lab_active and not self.pred_active and self.trust.level == 0 \
-                and not self.trust.reasons:
+                and not self.trust.holding:
             return []  # nothing active and nothing held: a trust step would change nothing
         active = {**self.lab_active, **self.pred_active}
         # the entries are built here as (int, float, float): no need to validate them again

@@ -118,6 +118,11 @@ class Trust:
         return self._result(self._level).reasons
 
     @property
+    def holding(self) -> bool:
+        """Whether any reason is held (``bool(reasons)``, without building them)."""
+        return bool(self._reasons)
+
+    @property
     def acknowledged(self) -> bool:
         """True when reasons are held and all are acknowledged at their current level."""
         return self._result(self._level).acknowledged
