@@ -165,6 +165,17 @@ def test_single_message_with_list_x():
     assert rows(msg) == [ROW]
 
 
+@pytest.mark.parametrize("extra", [{}, {"seq": 7}, {"seq": 8, "src": "dcs-a"}])
+def test_the_common_message_is_the_feed_the_named_tuple_makes(extra):
+    # the single-sample message is built without the named tuple's keywords: every field,
+    # defaults included, must be what the keyword form gives
+    msg = decode({"t": 100.0, "x": ROW, **extra})
+    want = wire.Feed(MODEL, [100.0], [ROW], [None], [None], extra.get("seq"), False,
+                     has_y=False, has_id=False, src=extra.get("src"))
+    assert type(msg) is wire.Feed
+    assert msg._asdict() == want._asdict()
+
+
 def test_x_as_a_map_is_put_in_input_order():
     by_tag = dict(zip(TAGS, ROW, strict=True))
     msg = decode({"t": 5, "x": dict(reversed(list(by_tag.items())))})
