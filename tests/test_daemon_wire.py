@@ -108,6 +108,41 @@ def test_a_prediction_with_numbers_that_are_not_floats_is_the_map_too():
         assert wire.pack_prediction(*nums, "learning", "normal") == msgpack.packb(body)
 
 
+def test_a_visits_predictions_are_the_bytes_msgpack_gives_each_map():
+    # reference: msgpack.packb of each row's dict, for visits whose rows share the status and
+    # trust or not, with and without ids, and with numbers that are not floats
+    rng = np.random.default_rng(6)
+    statuses = ("learning", "stale", "unidentified")
+    trusts = (None, "normal", "caution")
+    for i in range(400):
+        k = int(rng.integers(1, 6))
+        cols = [[float(v) for v in rng.standard_normal(k)] for _ in range(7)]
+        if i % 7 == 0:
+            cols[int(rng.integers(7))][0] = int(rng.integers(-5, 5))
+        if i % 11 == 0:
+            cols[int(rng.integers(7))][-1] = math.nan
+        level = 0.95 if i % 13 else 1
+        status = [statuses[0]] * k if i % 3 else [str(rng.choice(statuses)) for _ in range(k)]
+        if i % 4 == 0:
+            trust = [str(rng.choice(trusts[1:])) for _ in range(k)]
+        elif i % 4 == 1:
+            trust = [trusts[2]] * k
+        else:
+            trust = trusts[i % 3]
+        ids = None if i % 5 else [None if rng.random() < 0.3 else int(j) for j in range(k)]
+        got = wire.pack_predictions(*cols[:6], level, cols[6], status, trust, ids)
+        want = []
+        for j in range(k):
+            nums = [cols[0][j], cols[1][j], cols[2][j], cols[3][j], cols[4][j], cols[5][j],
+                    level, cols[6][j]]
+            tr = trust[j] if type(trust) is list else trust
+            body = dict(zip(PRED_KEYS, [*nums, status[j], tr], strict=True))
+            if ids is not None and ids[j] is not None:
+                body["id"] = ids[j]
+            want.append(msgpack.packb(body))
+        assert got == want, i
+
+
 def test_a_packed_block_answer_is_the_bytes_msgpack_gives_its_map():
     # reference: msgpack.packb of the dict the daemon used to build, over the sizes where
     # the bin header (8-bit, 16-bit, 32-bit length) and the status array header change

@@ -863,20 +863,22 @@ class Service:
             if type(mean) is not list:  # the general path's arrays (the short path: lists)
                 mean, std, var = _floats(mean), _floats(std), _floats(var)
                 lo, hi, dof = _floats(lo), _floats(hi), _floats(dof)
-            status = batch.status
             emit = self._emitter()
-            pack = wire.pack_prediction
-            trusts = batch.trust
-            marks = dict(batch.marks) if batch.marks else None
-            for i, t in enumerate(ts):
-                emit(topic, pack(t, mean[i], std[i], var[i], lo[i], hi[i], level, dof[i],
-                                 status[i], trust if trusts is None else trusts[i],
-                                 ids[i] if has_id else None))
-                if marks and i in marks:
-                    # each sample's alerts right after its own prediction, as if it had
-                    # come alone
-                    runner.alerts += marks[i]
-                    self._alerts(runner)
+            payloads = wire.pack_predictions(
+                ts, mean, std, var, lo, hi, level, dof, batch.status,
+                trust if batch.trust is None else batch.trust, ids if has_id else None)
+            if not batch.marks:
+                for p in payloads:
+                    emit(topic, p)
+            else:
+                marks = dict(batch.marks)
+                for i, p in enumerate(payloads):
+                    emit(topic, p)
+                    if i in marks:
+                        # each sample's alerts right after its own prediction, as if it had
+                        # come alone
+                        runner.alerts += marks[i]
+                        self._alerts(runner)
         if runner.alerts:
             self._alerts(runner)
 

@@ -8,6 +8,7 @@ Blocks may carry their numbers packed: msgpack bins of little-endian float64, re
 
 from __future__ import annotations
 
+import itertools
 import math
 import struct
 from typing import NamedTuple
@@ -183,6 +184,34 @@ def pack_prediction(t, mean, std, var, lo, hi, level, dof, status, trust, ident=
         return b"".join((head, _K_STATUS, _text(status), _K_TRUST, _text(trust)))
     return b"".join((head, _K_STATUS, _text(status), _K_TRUST, _text(trust), _K_ID,
                      packb(ident)))
+
+
+def pack_predictions(ts: list, mean: list, std: list, var: list, lo: list, hi: list,
+                     level: float, dof: list, status: list, trust, ids: list | None = None
+                     ) -> list[bytes]:
+    """:func:`pack_prediction` of each row of a visit, the same bytes: ``trust`` one value
+    for all rows or a list of one per row, ``ids`` None when no row has one.
+
+    The rows' common tail (the status and trust, where those are the same for all) is
+    encoded once.
+    """
+    k = len(ts)
+    if type(trust) is list and k and trust.count(trust[0]) == k:
+        trust = trust[0]
+    uniform = k > 0 and type(trust) is not list and status.count(status[0]) == k
+    if not (uniform and ids is None and type(level) is float and _FLOATS.issuperset(
+            map(type, itertools.chain(ts, mean, std, var, lo, hi, dof)))):
+        tr = trust if type(trust) is list else [trust] * k
+        idl = [None] * k if ids is None else ids
+        return [pack_prediction(ts[i], mean[i], std[i], var[i], lo[i], hi[i], level, dof[i],
+                                status[i], tr[i], idl[i]) for i in range(k)]
+    tail = b"".join((_K_STATUS, _text(status[0]), _K_TRUST, _text(trust)))
+    head = _PRED_HEAD.pack
+    k0, k1, k2, k3, k4, k5, k6, k7 = _PRED_KEYS
+    join = b"".join
+    return [join((head(_MAP10, k0, t, k1, m, k2, s, k3, v, k4, a, k5, b, k6, level, k7, d),
+                  tail))
+            for t, m, s, v, a, b, d in zip(ts, mean, std, var, lo, hi, dof)]
 
 
 # A packed block's answer, in its key order: seven bins of float64 (and the level between
