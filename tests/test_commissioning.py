@@ -36,6 +36,7 @@ def test_commissioning_ends_on_the_first_criterion_met():
     assert c.step(102.0, 1)  # third lab result
     assert not c.active and not c.step(103.0, 1) and c.remaining(103.0) == {}
     c = Commissioning(labs=3, duration=10.0)
+    assert c.duration == c.params()["duration"] == 10.0
     c.step(100.0)
     assert not c.step(109.9) and c.step(110.0)  # the duration, before three results
     c = Commissioning(labs=0, duration=0.0)

@@ -405,7 +405,7 @@ class Monitor:
         if com.active:
             if com.start is None:
                 return False  # the first row's time starts it: step them one by one
-            duration = com.params()["duration"]
+            duration = com.duration
             if duration and ts[-1] - com.start >= duration:
                 return False  # commissioning may end within these rows
         return True
@@ -425,8 +425,8 @@ class Monitor:
             base = self.std.baseline
             if math.isfinite(base) and top / base > cfg.std_ratio:
                 return False
-        lim = cfg.leverage_limit
-        if lim > 0 and any(v > lim for v in leverage):
+        # finite stds mean no nan leverage (the std grows with it): the largest decides
+        if cfg.leverage_limit > 0 and max(leverage) > cfg.leverage_limit:
             return False
         if dist is not None:
             lim = cfg.region_limit

@@ -376,6 +376,11 @@ class Commissioning:
         """Clock value of the first step (None before it)."""
         return self._start
 
+    @property
+    def duration(self) -> float:
+        """The longest commissioning in clock units (0: no such criterion)."""
+        return self._duration
+
     def remaining(self, t: float) -> dict:
         """What is left at clock ``t``: ``{"labs": n or None, "time": s or None}`` (None for
         a criterion that is off); empty once commissioning has ended."""
