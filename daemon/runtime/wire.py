@@ -211,7 +211,7 @@ def pack_predictions(ts: list, mean: list, std: list, var: list, lo: list, hi: l
     join = b"".join
     return [join((head(_MAP10, k0, t, k1, m, k2, s, k3, v, k4, a, k5, b, k6, level, k7, d),
                   tail))
-            for t, m, s, v, a, b, d in zip(ts, mean, std, var, lo, hi, dof)]
+            for t, m, s, v, a, b, d in zip(ts, mean, std, var, lo, hi, dof, strict=True)]
 
 
 # A packed block's answer, in its key order: seven bins of float64 (and the level between
