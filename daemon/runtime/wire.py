@@ -196,6 +196,10 @@ def pack_predictions(ts: list, mean: list, std: list, var: list, lo: list, hi: l
     encoded once.
     """
     k = len(ts)
+    if k == 1:  # a paced feed's visit: nothing to share
+        return [pack_prediction(ts[0], mean[0], std[0], var[0], lo[0], hi[0], level, dof[0],
+                                status[0], trust[0] if type(trust) is list else trust,
+                                None if ids is None else ids[0])]
     if type(trust) is list and k and trust.count(trust[0]) == k:
         trust = trust[0]
     uniform = k > 0 and type(trust) is not list and status.count(status[0]) == k
