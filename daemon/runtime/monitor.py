@@ -417,33 +417,28 @@ class Monitor:
         total = sum(std)
         if total - total != 0.0:
             return False  # inf or nan rows: rare, step them one by one
-        cfg = self.cfg
-        top = max(std)
-        if cfg.std_limit is not None and top > cfg.std_limit:
-            return False
-        if cfg.std_ratio > 0:
-            base = self.std.baseline
-            if math.isfinite(base) and top / base > cfg.std_ratio:
-                return False
+        lim = self.cfg.region_limit
         # finite stds mean no nan leverage (the std grows with it): the largest decides
-        if cfg.leverage_limit > 0 and max(leverage) > cfg.leverage_limit:
-            return False
-        if dist is not None:
-            lim = cfg.region_limit
-            if any(v > lim for v in dist):
-                return False
-        if any(outside):
-            return False
-        return not (last_lab_t is not None and ts[-1] - last_lab_t > self._stale_after)
+        return self._quiet_tops(ts[-1], max(std), max(leverage),
+                                dist is not None and any(v > lim for v in dist),
+                                any(outside), last_lab_t)
 
     def _quiet_rows(self, ts, std, leverage, dist, outside, last_lab_t) -> bool:
         """True if no row would make a reason active and none is active or held now."""
         if not self._quiet_held(ts):
             return False
-        cfg = self.cfg
         if not np.isfinite(std).all():
             return False  # inf or nan rows: rare, take the row-by-row path
-        top = float(std.max())
+        return self._quiet_tops(ts[-1], float(std.max()), float(leverage.max()),
+                                dist is not None and bool((dist > self.cfg.region_limit).any()),
+                                bool(outside.any()), last_lab_t)
+
+    def _quiet_tops(self, t_last: float, top: float, top_leverage: float, far: bool,
+                    outside: bool, last_lab_t: float | None) -> bool:
+        """Whether rows of finite stds up to ``top`` and leverages up to ``top_leverage``,
+        the last at ``t_last``, make no reason active (``far``: a row outside the learned
+        region, ``outside``: one out of range)."""
+        cfg = self.cfg
         if cfg.std_limit is not None and top > cfg.std_limit:
             return False
         if cfg.std_ratio > 0:
@@ -451,15 +446,11 @@ class Monitor:
             base = self.std.baseline
             if math.isfinite(base) and top / base > cfg.std_ratio:
                 return False
-        if cfg.leverage_limit > 0 and float(leverage.max()) > cfg.leverage_limit:
+        if cfg.leverage_limit > 0 and top_leverage > cfg.leverage_limit:
             return False
-        if dist is not None and float(dist.max()) > cfg.region_limit:
+        if far or outside:
             return False
-        if outside.any():
-            return False
-        if last_lab_t is not None and ts[-1] - last_lab_t > self._stale_after:
-            return False
-        return True
+        return not (last_lab_t is not None and t_last - last_lab_t > self._stale_after)
 
     def _evaluate(self, clock: float, learned: int = 0) -> list[dict]:
         if self.clock is not None and clock < self.clock:
