@@ -648,6 +648,24 @@ class Posterior:
                 and self._noise_std is None and type(self._forgetting) is Stabilized
                 and _linalg.HAVE_KERNEL)
 
+    def _rows_many_part(self) -> tuple[np.ndarray, np.ndarray]:
+        """What :func:`predict_rows_many` takes of this posterior: the pencil's ``m``, and
+        one array of its ``kappa``, ``c0`` and ``dc`` followed by the half-life, the last
+        time (nan: none), ``nu``, ``nu0``, ``ss``, ``ss0`` and the unpenalized count.
+
+        Kept with the pencil until the posterior changes (every change clears the cache),
+        so a wake-up reads one small array per model instead of a dozen attributes.
+        """
+        part = self._cache.get("rows_many")
+        if part is None:
+            f = self._forgetting
+            m, kappa, c0, dc = f._pencil(self._R, self._z, self._prior, self._cache)
+            prior, tl = self._prior, self._t_last
+            tail = (f.half_life, math.nan if tl is None else tl, self._nu, prior.nu0,
+                    self._ss, prior.ss0, float(self._p_flat))
+            part = self._cache["rows_many"] = (m, np.concatenate((kappa, c0, dc, tail)))
+        return part
+
     @property
     def rowwise(self) -> bool:
         """Whether a batch prediction with times is computed row by row.
@@ -1043,30 +1061,25 @@ def predict_rows_many(posts: list, P: np.ndarray, ts: np.ndarray, owner: np.ndar
     """
     if not np.isfinite(ts).all():
         return None
-    G = len(posts)
-    Ms, kap, c0s, dcs = [], [], [], []
-    hl = np.empty(G)
-    # per posterior: t_last (nan: none), nu, nu0, ss, ss0, unpenalized count, p
-    par = np.empty((7, G))
-    for g, post in enumerate(posts):
-        f = post._forgetting
-        m, kappa, c0, dc = f._pencil(post._R, post._z, post._prior, post._cache)
+    n = P.shape[1]
+    Ms, parts = [], []
+    for post in posts:
+        m, part = post._rows_many_part()
         Ms.append(m)
-        kap.append(kappa)
-        c0s.append(c0)
-        dcs.append(dc)
-        hl[g] = f.half_life
-        prior = post._prior
-        tl = post._t_last
-        par[:, g] = (math.nan if tl is None else tl, post._nu, prior.nu0, post._ss,
-                     prior.ss0, post._p_flat, 0.5 + _check_level(levels[g]) / 2.0)
-    rows = par[:, owner]
-    tl, nu_s, nu0, ss_s, ss0, p_flat, p_row = rows
+        parts.append(part)
+    # per posterior, one row: kappa, c0, dc (n each), then half-life, t_last, nu, nu0, ss,
+    # ss0 and the unpenalized count
+    A = np.array(parts)
+    kap, c0s, dcs = (np.ascontiguousarray(A[:, i * n:(i + 1) * n]) for i in range(3))
+    hl = np.ascontiguousarray(A[:, 3 * n])
+    p_of = {lv: 0.5 + _check_level(lv) / 2.0 for lv in set(levels)}
+    tl, nu_s, nu0, ss_s, ss0, p_flat = A[:, 3 * n + 1:].T[:, owner]
+    p_row = np.array([p_of[lv] for lv in levels])[owner]
     # predict_rows: t - t_last, or 0 when nothing has elapsed (or nothing was learned yet)
     dts = np.where(ts > tl, ts - tl, 0.0)
     out = np.empty((3, len(ts)))
-    _linalg.stabilized_rows_many(out, np.concatenate(Ms), np.array(kap), np.array(c0s),
-                                 np.array(dcs), hl, P, dts, owner.astype(float))
+    _linalg.stabilized_rows_many(out, np.concatenate(Ms), kap, c0s, dcs, hl, P, dts,
+                                 owner.astype(float))
     mean, lev, d = out
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         nus = d * nu_s + (1.0 - d) * nu0

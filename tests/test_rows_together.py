@@ -113,6 +113,18 @@ def test_predict_rows_many_has_the_bits_of_each_posteriors_predict_rows():
     # the run reached the cases it was built for: finite, infinite and nan variances
     var = many[2]
     assert np.isfinite(var).any() and (np.isinf(var) | np.isnan(var)).any()
+    # what a posterior keeps for these calls follows its learning: one learns, one is
+    # restored from an older snapshot, and the next call again has each one's own bits
+    snap = posts[4].snapshot()
+    posts[4].update(np.r_[1.0, rng.standard_normal(4)], 2.0, posts[4].t_last + 7.0)
+    before = predict_rows_many(posts, P, np.array(ts), owner, levels)
+    posts[1].update(np.r_[1.0, rng.standard_normal(4)], -3.0, posts[1].t_last + 2.0)
+    posts[4].restore(snap)
+    after = predict_rows_many(posts, P, np.array(ts), owner, levels)
+    for j, g in enumerate(owner.tolist()):
+        alone = posts[g].predict_rows(P[j:j + 1], [ts[j]], levels[g])
+        assert packed(*[a[j:j + 1] for a in after]) == packed(*alone), (j, g, ts[j])
+    assert packed(*before) != packed(*after)
 
 
 def test_predict_rows_many_declines_a_time_that_is_not_finite():
